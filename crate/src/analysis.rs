@@ -1,0 +1,202 @@
+//! One recipe run on one tensor: the dequantized values, the error figures per tensor, per
+//! group and per input column, and the bit budget. Every front end reaches the core through
+//! [`analyze`].
+
+use crate::cost::BitCost;
+use crate::error::{Error, Result};
+use crate::grid::{GroupParams, IntGrid};
+use crate::metrics::{ColumnFigures, ColumnSums, ErrorFigures, ErrorSums, GroupFigures};
+use crate::recipe::{Granularity, Recipe};
+use crate::tensor::Tensor;
+use ndarray::Array2;
+
+/// Everything one analysis produces.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Analysis {
+    /// The recipe that was run.
+    pub recipe: Recipe,
+    /// The reconstruction x̂, in the tensor's 2-D view.
+    pub dequantized: Array2<f32>,
+    /// Fitted scale and zero point of every group, row-major as in `groups`.
+    pub params: Vec<GroupParams>,
+    /// Whole-tensor figures.
+    pub totals: ErrorFigures,
+    /// Per-group figures.
+    pub groups: GroupFigures,
+    /// Per-input-column figures.
+    pub columns: ColumnFigures,
+    /// The bit budget.
+    pub cost: BitCost,
+}
+
+/// Run `recipe` on `tensor`.
+pub fn analyze(tensor: &Tensor, recipe: &Recipe) -> Result<Analysis> {
+    recipe.validate()?;
+    let (rows, cols) = (tensor.rows(), tensor.cols());
+    if rows * cols == 0 {
+        return Err(Error::BadShape { shape: tensor.shape.clone(), detail: "it has no elements".into() });
+    }
+    let non_finite = tensor.non_finite();
+    if let Some((first_row, first_col)) = non_finite.first {
+        return Err(Error::NonFinite { nan: non_finite.nan, inf: non_finite.inf, first_row, first_col });
+    }
+
+    let grid = IntGrid::new(recipe);
+    let overflow = |row, col| move |e: crate::grid::ScaleOverflow| Error::ScaleOverflow {
+        scale: e.0,
+        dtype: recipe.scale_dtype.name(),
+        row,
+        col,
+    };
+    let width = match recipe.granularity {
+        Granularity::Group(g) => g,
+        Granularity::Row | Granularity::Tensor => cols,
+    };
+    let whole_tensor = match recipe.granularity {
+        Granularity::Tensor => {
+            let (lo, hi) = tensor.values.iter().fold((0f32, 0f32), |(lo, hi), &v| (lo.min(v), hi.max(v)));
+            Some(grid.fit_range(lo, hi).map_err(overflow(0, 0))?)
+        }
+        _ => None,
+    };
+
+    let (grid_rows, per_row) = match recipe.granularity {
+        Granularity::Tensor => (1, 1),
+        g => (rows, g.groups_per_row(cols)),
+    };
+    let mut sums = vec![ErrorSums::default(); grid_rows * per_row];
+    let mut params = Vec::with_capacity(if whole_tensor.is_some() { 1 } else { sums.len() });
+    params.extend(whole_tensor);
+    let mut columns = ColumnSums::new(cols);
+    let mut dequantized = Array2::<f32>::zeros((rows, cols));
+
+    for (r, (x_row, mut out_row)) in tensor.values.rows().into_iter().zip(dequantized.rows_mut()).enumerate() {
+        let x_row = x_row.to_slice().expect("row-major tensor");
+        let out_row = out_row.as_slice_mut().expect("row-major output");
+        for (k, (x, out)) in x_row.chunks(width).zip(out_row.chunks_mut(width)).enumerate() {
+            let p = match whole_tensor {
+                Some(p) => p,
+                None => {
+                    let p = grid.fit(x).map_err(overflow(r, k * width))?;
+                    params.push(p);
+                    p
+                }
+            };
+            grid.quantize_into(p, x, out);
+            let index = if whole_tensor.is_some() { 0 } else { r * per_row + k };
+            sums[index].add(x, out);
+        }
+        columns.add_row(x_row, out_row);
+    }
+
+    let mut total = ErrorSums::default();
+    sums.iter().for_each(|s| total.merge(s));
+    let group_size = matches!(recipe.granularity, Granularity::Group(_)).then_some(width);
+    Ok(Analysis {
+        recipe: *recipe,
+        dequantized,
+        params,
+        totals: total.figures(),
+        groups: GroupFigures::from_sums(grid_rows, per_row, group_size, &sums),
+        columns: columns.figures(),
+        cost: BitCost::of(recipe, rows, cols, tensor.dtype.bits()),
+    })
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::recipe::ScaleDType;
+    use crate::tensor::DType;
+
+    fn tensor(rows: usize, cols: usize, seed: u64) -> Tensor {
+        let mut rng = crate::demo::Rng::new(seed);
+        let values = Array2::from_shape_fn((rows, cols), |_| rng.normal() as f32);
+        Tensor::from_values("t", DType::F32, values)
+    }
+
+    /// Rebuild every element with the scalar reference of the grid, group by group.
+    fn reference(t: &Tensor, recipe: &Recipe) -> Vec<f32> {
+        let grid = IntGrid::new(recipe);
+        let width = match recipe.granularity {
+            Granularity::Group(g) => g,
+            _ => t.cols(),
+        };
+        let all: Vec<f32> = t.values.iter().copied().collect();
+        let global = grid.fit(&all).unwrap();
+        let mut out = Vec::new();
+        for row in t.values.rows() {
+            let row: Vec<f32> = row.to_vec();
+            for group in row.chunks(width) {
+                let p = if recipe.granularity == Granularity::Tensor { global } else { grid.fit(group).unwrap() };
+                out.extend(group.iter().map(|&v| (grid.code_reference(p, v) - p.zero) * p.scale));
+            }
+        }
+        out
+    }
+
+    #[test]
+    fn matches_the_scalar_reference_over_odd_shapes() {
+        let shapes = [(1, 1), (3, 7), (2, 8), (5, 129), (4, 300), (1, 1000)];
+        let granularities = [Granularity::Tensor, Granularity::Row, Granularity::Group(8), Granularity::Group(128)];
+        for (i, &(rows, cols)) in shapes.iter().enumerate() {
+            let t = tensor(rows, cols, i as u64);
+            for granularity in granularities {
+                for (bits, symmetric) in [(2, false), (3, true), (4, false), (8, true)] {
+                    let recipe = Recipe { bits, granularity, symmetric, scale_dtype: ScaleDType::BF16 };
+                    let a = analyze(&t, &recipe).unwrap();
+                    let got: Vec<f32> = a.dequantized.iter().copied().collect();
+                    assert_eq!(got, reference(&t, &recipe), "{rows}x{cols} {}", recipe.label());
+                    assert_eq!(a.params.len() as u64, a.cost.groups);
+                    assert_eq!(a.groups.mse.len(), a.groups.rows * a.groups.per_row);
+                    if granularity == Granularity::Tensor {
+                        let one = f64::from(a.groups.mse[0]);
+                        assert!((one - a.totals.mse).abs() <= 1e-6 * a.totals.mse.max(1e-30));
+                    }
+                }
+            }
+        }
+    }
+
+    #[test]
+    fn group_figures_add_up_to_the_totals() {
+        let t = tensor(6, 300, 9);
+        let a = analyze(&t, &Recipe { granularity: Granularity::Group(128), ..Recipe::default() }).unwrap();
+        assert_eq!((a.groups.rows, a.groups.per_row, a.groups.group_size), (6, 3, Some(128)));
+        // Each row has groups of 128, 128 and 44 elements.
+        let weighted: f64 = a
+            .groups
+            .mse
+            .iter()
+            .enumerate()
+            .map(|(i, &m)| m as f64 * if i % 3 == 2 { 44.0 } else { 128.0 })
+            .sum();
+        assert!((weighted / 1800.0 - a.totals.mse).abs() < 1e-6 * a.totals.mse);
+    }
+
+    #[test]
+    fn refuses_what_cannot_be_quantized() {
+        let mut t = tensor(2, 3, 1);
+        t.values[[1, 2]] = f32::NAN;
+        assert!(matches!(
+            analyze(&t, &Recipe::default()),
+            Err(Error::NonFinite { nan: 1, inf: 0, first_row: 1, first_col: 2 })
+        ));
+        let empty = Tensor::from_values("e", DType::F32, Array2::zeros((3, 0)));
+        assert!(matches!(analyze(&empty, &Recipe::default()), Err(Error::BadShape { .. })));
+        let mut big = tensor(1, 16, 2);
+        big.values[[0, 9]] = 3e9;
+        assert!(matches!(analyze(&big, &Recipe::default()), Err(Error::ScaleOverflow { row: 0, col: 0, .. })));
+        let g = Recipe { granularity: Granularity::Group(8), ..Recipe::default() };
+        assert!(matches!(analyze(&big, &g), Err(Error::ScaleOverflow { row: 0, col: 8, .. })));
+        assert!(analyze(&t, &Recipe { bits: 12, ..Recipe::default() }).is_err());
+    }
+
+    #[test]
+    fn an_all_zero_tensor_is_exact() {
+        let t = Tensor::from_values("z", DType::F16, Array2::zeros((3, 20)));
+        let a = analyze(&t, &Recipe { granularity: Granularity::Group(8), ..Recipe::default() }).unwrap();
+        assert!(a.totals.exact);
+        assert!(a.params.iter().all(|p| p.scale == 1.0));
+    }
+}

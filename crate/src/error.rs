@@ -1,0 +1,145 @@
+//! The one error type of the core. Every variant carries the facts a user needs to act on it;
+//! `Display` renders one plain sentence. Front ends add context (a file name) and never panic.
+
+use std::fmt;
+
+/// Everything that can go wrong between bytes and an analysis.
+#[derive(Debug, Clone, PartialEq)]
+pub enum Error {
+    /// Reading from the byte source failed (a file system or browser error).
+    Io {
+        /// What the operating system or browser said.
+        message: String,
+    },
+    /// The data ends before a part that the header promises.
+    Truncated {
+        /// Which part was being read.
+        what: &'static str,
+        /// Bytes needed from the start of the source.
+        needed: u64,
+        /// Bytes the source actually has.
+        available: u64,
+    },
+    /// The bytes are not in the expected format at all.
+    BadFormat {
+        /// The format that was expected, for example "NumPy .npy".
+        format: &'static str,
+        /// What is wrong, in plain words.
+        detail: String,
+    },
+    /// The file's element type is one the tool cannot read.
+    UnsupportedDtype {
+        /// The type as the file spells it.
+        dtype: String,
+        /// Why it is refused, or what to do instead.
+        hint: String,
+    },
+    /// A tensor name that the file does not contain.
+    NoSuchTensor {
+        /// The requested name.
+        name: String,
+        /// A few names that do exist, to help the user.
+        available: Vec<String>,
+    },
+    /// The file holds several tensors and the caller did not say which.
+    TensorNotChosen {
+        /// How many tensors the file holds.
+        count: usize,
+    },
+    /// Pasted text that does not form a matrix.
+    Parse {
+        /// 1-based line of the problem.
+        line: usize,
+        /// 1-based column (character) of the problem.
+        column: usize,
+        /// What is wrong there.
+        detail: String,
+    },
+    /// A shape that cannot be analysed (empty, or too large to hold).
+    BadShape {
+        /// The shape as given.
+        shape: Vec<usize>,
+        /// Why it is refused.
+        detail: String,
+    },
+    /// The tensor holds NaN or infinite values, so no scale can be fitted.
+    NonFinite {
+        /// Count of NaN values.
+        nan: usize,
+        /// Count of infinite values.
+        inf: usize,
+        /// Row of the first non-finite value (in the 2-D view).
+        first_row: usize,
+        /// Column of the first non-finite value (in the 2-D view).
+        first_col: usize,
+    },
+    /// A recipe that cannot be applied.
+    BadRecipe {
+        /// What is wrong and what is allowed.
+        detail: String,
+    },
+    /// A scale too large for its storage type.
+    ScaleOverflow {
+        /// The scale that was needed.
+        scale: f32,
+        /// The storage type that cannot hold it.
+        dtype: &'static str,
+        /// Row of the group that needed it.
+        row: usize,
+        /// First column of that group.
+        col: usize,
+    },
+}
+
+impl fmt::Display for Error {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        match self {
+            Error::Io { message } => write!(f, "could not read the data: {message}"),
+            Error::Truncated { what, needed, available } => write!(
+                f,
+                "the file is truncated: the {what} needs {needed} bytes but the file has only {available}"
+            ),
+            Error::BadFormat { format, detail } => write!(f, "not a valid {format} file: {detail}"),
+            Error::UnsupportedDtype { dtype, hint } => {
+                write!(f, "element type '{dtype}' is not supported: {hint}")
+            }
+            Error::NoSuchTensor { name, available } => {
+                write!(f, "no tensor named '{name}'")?;
+                if !available.is_empty() {
+                    write!(f, "; the file has: {}", available.join(", "))?;
+                }
+                Ok(())
+            }
+            Error::TensorNotChosen { count } => write!(
+                f,
+                "the file holds {count} tensors; choose one by name (for example with --tensor)"
+            ),
+            Error::Parse { line, column, detail } => {
+                write!(f, "line {line}, column {column}: {detail}")
+            }
+            Error::BadShape { shape, detail } => write!(f, "shape {shape:?} cannot be analysed: {detail}"),
+            Error::NonFinite { nan, inf, first_row, first_col } => write!(
+                f,
+                "the tensor holds {nan} NaN and {inf} infinite values (first at row {first_row}, column {first_col}); \
+                 quantization needs finite values"
+            ),
+            Error::BadRecipe { detail } => write!(f, "invalid recipe: {detail}"),
+            Error::ScaleOverflow { scale, dtype, row, col } => write!(
+                f,
+                "the scale {scale:e} needed at row {row}, column {col} overflows {dtype}; \
+                 choose a wider scale type (bf16 or f32)"
+            ),
+        }
+    }
+}
+
+impl std::error::Error for Error {}
+
+impl From<std::io::Error> for Error {
+    fn from(err: std::io::Error) -> Self {
+        Error::Io { message: err.to_string() }
+    }
+}
+
+/// The core's result type.
+pub type Result<T> = std::result::Result<T, Error>;

@@ -1,0 +1,188 @@
+//! Uniform integer grids with round-to-nearest.
+//!
+//! For a group x of a row and b bits, in f32, rounding half to even and dividing by the scale:
+//!
+//! * asymmetric: lo = min(min x, 0), hi = max(max x, 0), s = (hi − lo)/(2^b − 1) rounded to
+//!   the scale's storage type, z = clamp(round(−lo/s), 0, 2^b − 1),
+//!   q = clamp(round(x/s) + z, 0, 2^b − 1), x̂ = (q − z)·s;
+//! * symmetric: s = max|x| / (2^(b−1) − 1) rounded to its type, q = clamp(round(x/s),
+//!   −2^(b−1), 2^(b−1) − 1), x̂ = q·s.
+//!
+//! A scale of 0 (an all-zero group) becomes 1; keeping 0 inside [lo, hi] so that zero is exactly
+//! representable is common practice. Both modes share one kernel, with z = 0 for symmetric grids.
+
+use crate::recipe::{Recipe, ScaleDType};
+
+/// The fitted parameters of one group.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct GroupParams {
+    /// Step between grid points, as stored.
+    pub scale: f32,
+    /// Code of the value 0 (always 0 for symmetric grids); a whole number kept as f32.
+    pub zero: f32,
+}
+
+/// An integer grid: its code range and how its scale is stored.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct IntGrid {
+    /// Smallest code.
+    pub qmin: f32,
+    /// Largest code.
+    pub qmax: f32,
+    /// Whether the grid is symmetric around zero.
+    pub symmetric: bool,
+    /// Storage type of the scale.
+    pub scale_dtype: ScaleDType,
+}
+
+/// A scale too large for its storage type.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct ScaleOverflow(pub f32);
+
+impl IntGrid {
+    /// The grid a recipe describes.
+    pub fn new(recipe: &Recipe) -> Self {
+        let levels = (1u32 << recipe.bits) as f32;
+        let (qmin, qmax) = if recipe.symmetric { (-levels / 2.0, levels / 2.0 - 1.0) } else { (0.0, levels - 1.0) };
+        IntGrid { qmin, qmax, symmetric: recipe.symmetric, scale_dtype: recipe.scale_dtype }
+    }
+
+    /// Fit the scale (and zero point) of one group from its value range.
+    pub fn fit(&self, group: &[f32]) -> Result<GroupParams, ScaleOverflow> {
+        let (lo, hi) = min_max(group);
+        self.fit_range(lo, hi)
+    }
+
+    /// Fit from a known range [lo, hi] of the group's values.
+    pub fn fit_range(&self, lo: f32, hi: f32) -> Result<GroupParams, ScaleOverflow> {
+        let (lo, hi) = (lo.min(0.0), hi.max(0.0));
+        let raw = if self.symmetric { (-lo).max(hi) / self.qmax } else { (hi - lo) / self.qmax };
+        let scale = if raw == 0.0 { 1.0 } else { self.scale_dtype.round(raw).ok_or(ScaleOverflow(raw))? };
+        let zero = if self.symmetric { 0.0 } else { (-lo / scale).round_ties_even().clamp(0.0, self.qmax) };
+        Ok(GroupParams { scale, zero })
+    }
+
+    /// Quantize and dequantize `x` into `out` (the fast kernel).
+    pub fn quantize_into(&self, p: GroupParams, x: &[f32], out: &mut [f32]) {
+        let (qmin, qmax) = (self.qmin, self.qmax);
+        for (o, &v) in out.iter_mut().zip(x) {
+            let q = (round_half_even_small(v / p.scale) + p.zero).clamp(qmin, qmax);
+            *o = (q - p.zero) * p.scale;
+        }
+    }
+
+    /// The code of one value, the plain scalar reference the fast kernel is tested against.
+    pub fn code_reference(&self, p: GroupParams, v: f32) -> f32 {
+        ((v / p.scale).round_ties_even() + p.zero).clamp(self.qmin, self.qmax)
+    }
+}
+
+/// Smallest and largest value of a slice ((0, 0) for an empty one, which then gets scale 1).
+pub fn min_max(x: &[f32]) -> (f32, f32) {
+    // Eight independent lanes let the compiler vectorise the reduction.
+    let mut lo = [0f32; 8];
+    let mut hi = [0f32; 8];
+    let chunks = x.chunks_exact(8);
+    let tail = chunks.remainder();
+    for chunk in chunks {
+        for i in 0..8 {
+            lo[i] = lo[i].min(chunk[i]);
+            hi[i] = hi[i].max(chunk[i]);
+        }
+    }
+    let mut lo = lo.iter().copied().fold(0f32, f32::min);
+    let mut hi = hi.iter().copied().fold(0f32, f32::max);
+    for &v in tail {
+        lo = lo.min(v);
+        hi = hi.max(v);
+    }
+    (lo, hi)
+}
+
+/// Round half to even for values whose result is later clamped to a small code range.
+///
+/// Adding and subtracting 1.5·2^23 rounds an f32 of magnitude below 2^22 to an integer with the
+/// current rounding mode, which is round-to-nearest-even (IEEE 754). Clamping first to ±2^20
+/// changes nothing after the caller's clamp to at most ±256 and keeps the trick exact; it avoids
+/// a library call on targets without a rounding instruction.
+#[inline(always)]
+fn round_half_even_small(y: f32) -> f32 {
+    const MAGIC: f32 = 12_582_912.0; // 1.5 · 2^23
+    const LIMIT: f32 = 1_048_576.0; // 2^20
+    (y.clamp(-LIMIT, LIMIT) + MAGIC) - MAGIC
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::recipe::Granularity;
+
+    fn grid(bits: u8, symmetric: bool) -> IntGrid {
+        IntGrid::new(&Recipe { bits, symmetric, granularity: Granularity::Row, scale_dtype: ScaleDType::F32 })
+    }
+
+    #[test]
+    fn fast_rounding_matches_round_ties_even() {
+        let mut values: Vec<f32> = (-2000..=2000).map(|i| i as f32 * 0.25).collect();
+        values.extend([0.5, 1.5, 2.5, -0.5, -2.5, 1e7, -1e7, 3.4e38, -0.0, 0.49999997, 8388607.5]);
+        for v in values {
+            let fast = round_half_even_small(v).clamp(-256.0, 256.0);
+            assert_eq!(fast, v.round_ties_even().clamp(-256.0, 256.0), "value {v}");
+        }
+    }
+
+    #[test]
+    fn fast_kernel_matches_the_scalar_reference_over_odd_sizes() {
+        let mut rng = crate::demo::Rng::new(7);
+        for bits in 2..=8 {
+            for symmetric in [false, true] {
+                let g = grid(bits, symmetric);
+                for len in [0usize, 1, 7, 8, 9, 127, 129] {
+                    let x: Vec<f32> = (0..len).map(|_| rng.normal() as f32 * 3.0 + 0.5).collect();
+                    let p = g.fit(&x).unwrap();
+                    let mut out = vec![0f32; len];
+                    g.quantize_into(p, &x, &mut out);
+                    for (&v, &o) in x.iter().zip(&out) {
+                        assert_eq!(o, (g.code_reference(p, v) - p.zero) * p.scale);
+                    }
+                }
+            }
+        }
+    }
+
+    #[test]
+    fn asymmetric_fit_follows_the_stated_rule() {
+        // 2 bits: 4 levels over [-1, 2]: scale 1, zero 1, codes of -1, 0.4, 2 are 0, 1, 3.
+        let g = grid(2, false);
+        let p = g.fit(&[-1.0, 0.4, 2.0]).unwrap();
+        assert_eq!(p, GroupParams { scale: 1.0, zero: 1.0 });
+        // An all-positive group still includes 0: [0, 3] over 3 steps.
+        assert_eq!(g.fit(&[1.0, 3.0]).unwrap(), GroupParams { scale: 1.0, zero: 0.0 });
+        assert_eq!(g.fit(&[0.0, 0.0]).unwrap(), GroupParams { scale: 1.0, zero: 0.0 });
+    }
+
+    #[test]
+    fn symmetric_grid_uses_the_negative_extra_code() {
+        let g = grid(4, true);
+        assert_eq!((g.qmin, g.qmax), (-8.0, 7.0));
+        let p = g.fit(&[-14.0, 7.0]).unwrap();
+        assert_eq!(p.scale, 2.0);
+        let mut out = [0f32; 2];
+        g.quantize_into(p, &[-14.0, 7.0], &mut out);
+        assert_eq!(out, [-14.0, 8.0]);
+    }
+
+    #[test]
+    fn overflowing_scales_are_reported() {
+        let g = IntGrid::new(&Recipe { bits: 2, ..Recipe::default() });
+        assert!(g.fit(&[0.0, 1e6]).is_err());
+    }
+
+    #[test]
+    fn min_max_includes_zero() {
+        assert_eq!(min_max(&[]), (0.0, 0.0));
+        assert_eq!(min_max(&[3.0; 11]), (0.0, 3.0));
+        let x: Vec<f32> = (0..19).map(|i| i as f32 - 4.0).collect();
+        assert_eq!(min_max(&x), (-4.0, 14.0));
+    }
+}

@@ -1,0 +1,237 @@
+//! The `bitloupe` command: parse the arguments, call the core, print or write, and map errors to
+//! one line on stderr and a non-zero exit code.
+
+#[cfg(target_arch = "wasm32")]
+fn main() {}
+
+#[cfg(not(target_arch = "wasm32"))]
+fn main() -> std::process::ExitCode {
+    cli::main()
+}
+
+#[cfg(not(target_arch = "wasm32"))]
+mod cli {
+    use bitloupe::report::Report;
+    use bitloupe::tensor::{self, npy, text, Listing};
+    use bitloupe::{analyze, Granularity, ReadOptions, Recipe, ScaleDType, Tensor};
+    use clap::{Args, Parser, Subcommand};
+    use std::path::{Path, PathBuf};
+    use std::process::ExitCode;
+
+    /// Inspect how quantizing one weight tensor changes it: error, where it lands, and the bit cost.
+    #[derive(Parser)]
+    #[command(name = "bitloupe", version)]
+    struct Cli {
+        #[command(subcommand)]
+        command: Command,
+    }
+
+    #[derive(Subcommand)]
+    enum Command {
+        /// List the tensors of a .npy or .safetensors file (reads only the header).
+        Inspect {
+            /// The file to list.
+            file: PathBuf,
+            #[command(flatten)]
+            read: ReadArgs,
+        },
+        /// Quantize one tensor and report the error and the bit cost.
+        Quantize {
+            /// A .npy or .safetensors file, or a .txt/.csv/.tsv matrix.
+            file: PathBuf,
+            /// Which tensor of a file holding several.
+            #[arg(long)]
+            tensor: Option<String>,
+            #[command(flatten)]
+            read: ReadArgs,
+            #[command(flatten)]
+            recipe: RecipeArgs,
+            /// Write the dequantized tensor as float32 .npy in the source shape.
+            #[arg(long, value_name = "DEQ.npy")]
+            out: Option<PathBuf>,
+            /// Write the full JSON report here instead of printing a summary.
+            #[arg(long, value_name = "REPORT.json")]
+            report: Option<PathBuf>,
+        },
+        /// Write the built-in demo weight (seeded, invented) as a .npy file.
+        Demo {
+            /// Where to write it.
+            #[arg(long, value_name = "DEMO.npy")]
+            out: PathBuf,
+        },
+    }
+
+    #[derive(Args)]
+    struct ReadArgs {
+        /// Read raw 2-byte .npy elements (descr V2 or u2) as bfloat16.
+        #[arg(long)]
+        bf16: bool,
+    }
+
+    /// Recipe flags; anything left out takes the core's default.
+    #[derive(Args)]
+    struct RecipeArgs {
+        /// Bits per weight, 2 to 8.
+        #[arg(long)]
+        bits: Option<u8>,
+        /// Elements sharing a scale: a group size (8 to 4096), 'row' or 'tensor'.
+        #[arg(long, value_name = "N|row|tensor")]
+        group: Option<String>,
+        /// Symmetric grid (no zero point).
+        #[arg(long, conflicts_with = "asym")]
+        sym: bool,
+        /// Asymmetric grid with a zero point.
+        #[arg(long)]
+        asym: bool,
+        /// Storage type of the scales.
+        #[arg(long, value_name = "f16|bf16|f32")]
+        scale_dtype: Option<String>,
+    }
+
+    impl RecipeArgs {
+        fn recipe(&self) -> bitloupe::Result<Recipe> {
+            let default = Recipe::default();
+            let recipe = Recipe {
+                bits: self.bits.unwrap_or(default.bits),
+                granularity: self.group.as_deref().map(str::parse::<Granularity>).transpose()?.unwrap_or(default.granularity),
+                symmetric: if self.sym { true } else if self.asym { false } else { default.symmetric },
+                scale_dtype: self.scale_dtype.as_deref().map(str::parse::<ScaleDType>).transpose()?.unwrap_or(default.scale_dtype),
+            };
+            recipe.validate()?;
+            Ok(recipe)
+        }
+    }
+
+    /// A failure with the context the user needs, printed as one line.
+    struct Failure(String);
+
+    impl Failure {
+        fn at(path: &Path) -> impl Fn(bitloupe::Error) -> Failure + '_ {
+            move |e| Failure(format!("{}: {e}", path.display()))
+        }
+    }
+
+    impl From<bitloupe::Error> for Failure {
+        fn from(e: bitloupe::Error) -> Self {
+            Failure(e.to_string())
+        }
+    }
+
+    pub fn main() -> ExitCode {
+        let cli = Cli::parse();
+        match run(cli.command) {
+            Ok(()) => ExitCode::SUCCESS,
+            Err(Failure(message)) => {
+                eprintln!("bitloupe: {message}");
+                ExitCode::FAILURE
+            }
+        }
+    }
+
+    fn run(command: Command) -> Result<(), Failure> {
+        match command {
+            Command::Inspect { file, read } => {
+                let (_, listing) = open(&file, read.options())?;
+                print!("{}", describe(&listing));
+                Ok(())
+            }
+            Command::Quantize { file, tensor, read, recipe, out, report } => {
+                let recipe = recipe.recipe()?;
+                let tensor = load(&file, tensor.as_deref(), read.options())?;
+                let analysis = analyze(&tensor, &recipe).map_err(Failure::at(&file))?;
+                let report_doc = Report::new(&tensor, &analysis);
+                let mut outputs = Vec::new();
+                if let Some(path) = out {
+                    let values = analysis.dequantized.as_slice().expect("row-major");
+                    outputs.push((path, npy::write_f32(values, &tensor.shape)));
+                }
+                match report {
+                    Some(path) => outputs.push((path, report_doc.to_json().into_bytes())),
+                    None => println!("{}", report_doc.summary()),
+                }
+                write_all_or_nothing(&outputs)
+            }
+            Command::Demo { out } => {
+                let demo = bitloupe::demo::weight();
+                let bytes = npy::write_f32(demo.values.as_slice().expect("row-major"), &demo.shape);
+                write_all_or_nothing(&[(out, bytes)])
+            }
+        }
+    }
+
+    impl ReadArgs {
+        fn options(&self) -> ReadOptions {
+            ReadOptions { raw16_as_bf16: self.bf16 }
+        }
+    }
+
+    fn is_text(path: &Path) -> bool {
+        matches!(
+            path.extension().and_then(|e| e.to_str()).map(str::to_ascii_lowercase).as_deref(),
+            Some("txt" | "csv" | "tsv")
+        )
+    }
+
+    fn open(path: &Path, options: ReadOptions) -> Result<(std::fs::File, Listing), Failure> {
+        let file = std::fs::File::open(path).map_err(|e| Failure(format!("{}: cannot open: {e}", path.display())))?;
+        let listing = tensor::list(&file, options).map_err(Failure::at(path))?;
+        Ok((file, listing))
+    }
+
+    fn load(path: &Path, name: Option<&str>, options: ReadOptions) -> Result<Tensor, Failure> {
+        if is_text(path) {
+            let content = std::fs::read_to_string(path).map_err(|e| Failure(format!("{}: cannot read: {e}", path.display())))?;
+            let mut tensor = text::parse(&content).map_err(Failure::at(path))?;
+            tensor.name = path.file_stem().map(|s| s.to_string_lossy().into_owned()).unwrap_or_default();
+            return Ok(tensor);
+        }
+        let (file, listing) = open(path, options)?;
+        let entry = listing.choose(name).map_err(Failure::at(path))?;
+        tensor::read(&file, entry).map_err(Failure::at(path))
+    }
+
+    fn describe(listing: &Listing) -> String {
+        let mut out = format!("{} tensor(s), {:?} file\n", listing.entries.len(), listing.kind);
+        let width = listing.entries.iter().map(|e| e.name.len()).max().unwrap_or(0).max(4);
+        out.push_str(&format!("{:<width$}  {:<6}  {:<20}  {:>12}\n", "name", "dtype", "shape", "bytes"));
+        for e in &listing.entries {
+            let name = if e.name.is_empty() { "(array)" } else { &e.name };
+            let dtype = match e.element {
+                Some(el) => el.dtype.name().to_string(),
+                None => format!("{} (unsupported)", e.dtype_label),
+            };
+            out.push_str(&format!("{name:<width$}  {dtype:<6}  {:<20}  {:>12}\n", format!("{:?}", e.shape), e.bytes));
+        }
+        out
+    }
+
+    /// Write every output to a temporary file beside its target, then rename them all, so a
+    /// failure never leaves a partial output behind.
+    fn write_all_or_nothing(outputs: &[(PathBuf, Vec<u8>)]) -> Result<(), Failure> {
+        let temp_of = |path: &Path| {
+            let mut name = path.file_name().unwrap_or_default().to_os_string();
+            name.push(format!(".partial-{}", std::process::id()));
+            path.with_file_name(name)
+        };
+        let cleanup = |upto: usize| {
+            for (path, _) in &outputs[..upto] {
+                let _ = std::fs::remove_file(temp_of(path));
+            }
+        };
+        for (i, (path, bytes)) in outputs.iter().enumerate() {
+            if let Err(e) = std::fs::write(temp_of(path), bytes) {
+                cleanup(i + 1);
+                return Err(Failure(format!("{}: cannot write: {e}", path.display())));
+            }
+        }
+        for (i, (path, _)) in outputs.iter().enumerate() {
+            if let Err(e) = std::fs::rename(temp_of(path), path) {
+                for (later, _) in &outputs[i..] {
+                    let _ = std::fs::remove_file(temp_of(later));
+                }
+                return Err(Failure(format!("{}: cannot write: {e}", path.display())));
+            }
+        }
+        Ok(())
+    }
+}

@@ -1,0 +1,255 @@
+//! Error figures of a reconstruction x̂ of x, per tensor, per group and per input column.
+//!
+//! * MSE = Σ(x − x̂)²/n; max absolute error = max |x − x̂|;
+//! * SQNR = 10·log10(Σx² / Σ(x − x̂)²) dB (signal-to-quantization-noise ratio; an exact
+//!   reconstruction has no finite SQNR and is reported as exact);
+//! * relative Frobenius error = ‖x − x̂‖_F / ‖x‖_F.
+//!
+//! Per input column j of the original weights: max |w_j|, RMS, the RMS of the column's error,
+//! and an outlier score max |w_j| / median over columns of max |w| (a score of
+//! [`OUTLIER_SCORE`] or more marks an outlier column). Sums are kept in f64.
+
+use serde::Serialize;
+
+/// Columns whose largest magnitude is at least this many times the median column's are marked
+/// as outliers (our threshold: "several times larger than the typical column").
+pub const OUTLIER_SCORE: f32 = 4.0;
+
+/// Running sums for one set of elements (a group or the whole tensor).
+#[derive(Debug, Clone, Copy, Default, PartialEq)]
+pub struct ErrorSums {
+    /// Number of elements.
+    pub count: usize,
+    /// Σ(x − x̂)².
+    pub sum_sq_err: f64,
+    /// Σx².
+    pub sum_sq: f64,
+    /// max |x − x̂|.
+    pub max_abs_err: f32,
+}
+
+impl ErrorSums {
+    /// Add the elements of `x` and their reconstruction `x_hat`.
+    pub fn add(&mut self, x: &[f32], x_hat: &[f32]) {
+        // Four lanes break the dependency chain of the f64 sums so the loop pipelines.
+        let mut err = [0f64; 4];
+        let mut sig = [0f64; 4];
+        let mut max = [0f32; 4];
+        let (xc, hc) = (x.chunks_exact(4), x_hat.chunks_exact(4));
+        let (xt, ht) = (xc.remainder(), hc.remainder());
+        for (a, b) in xc.zip(hc) {
+            for i in 0..4 {
+                let e = a[i] - b[i];
+                err[i] += f64::from(e) * f64::from(e);
+                sig[i] += f64::from(a[i]) * f64::from(a[i]);
+                max[i] = max[i].max(e.abs());
+            }
+        }
+        for (&a, &b) in xt.iter().zip(ht) {
+            let e = a - b;
+            err[0] += f64::from(e) * f64::from(e);
+            sig[0] += f64::from(a) * f64::from(a);
+            max[0] = max[0].max(e.abs());
+        }
+        self.count += x.len();
+        self.sum_sq_err += err.iter().sum::<f64>();
+        self.sum_sq += sig.iter().sum::<f64>();
+        self.max_abs_err = max.iter().copied().fold(self.max_abs_err, f32::max);
+    }
+
+    /// Combine with the sums of another set.
+    pub fn merge(&mut self, other: &ErrorSums) {
+        self.count += other.count;
+        self.sum_sq_err += other.sum_sq_err;
+        self.sum_sq += other.sum_sq;
+        self.max_abs_err = self.max_abs_err.max(other.max_abs_err);
+    }
+
+    /// Mean squared error (0 for no elements).
+    pub fn mse(&self) -> f64 {
+        if self.count == 0 { 0.0 } else { self.sum_sq_err / self.count as f64 }
+    }
+
+    /// Relative Frobenius error (0 when both signal and error are 0).
+    pub fn rel_err(&self) -> f64 {
+        if self.sum_sq_err == 0.0 { 0.0 } else { (self.sum_sq_err / self.sum_sq).sqrt() }
+    }
+
+    /// The finished figures.
+    pub fn figures(&self) -> ErrorFigures {
+        let exact = self.sum_sq_err == 0.0;
+        ErrorFigures {
+            mse: self.mse(),
+            max_abs_err: self.max_abs_err,
+            sqnr_db: (!exact).then(|| 10.0 * (self.sum_sq / self.sum_sq_err).log10()),
+            exact,
+            rel_fro_err: self.rel_err(),
+        }
+    }
+}
+
+/// Error figures of a whole tensor.
+#[derive(Debug, Clone, Copy, PartialEq, Serialize)]
+pub struct ErrorFigures {
+    /// Mean squared error.
+    pub mse: f64,
+    /// Largest absolute error.
+    pub max_abs_err: f32,
+    /// SQNR in dB; `None` when the reconstruction is exact.
+    pub sqnr_db: Option<f64>,
+    /// Whether the reconstruction is exact (no error at all).
+    pub exact: bool,
+    /// ‖x − x̂‖_F / ‖x‖_F.
+    pub rel_fro_err: f64,
+}
+
+/// Per-group figures laid out as a [rows × per_row] grid, row-major.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct GroupFigures {
+    /// Rows of the grid (1 for a per-tensor recipe).
+    pub rows: usize,
+    /// Groups in each row of the grid.
+    pub per_row: usize,
+    /// Elements per group (the last group of a row may be shorter); `None` for per-row and
+    /// per-tensor recipes.
+    pub group_size: Option<usize>,
+    /// MSE of each group.
+    pub mse: Vec<f32>,
+    /// Largest absolute error of each group.
+    pub max_abs_err: Vec<f32>,
+    /// Relative error ‖x − x̂‖/‖x‖ of each group.
+    pub rel_err: Vec<f32>,
+}
+
+impl GroupFigures {
+    /// Figures from each group's sums.
+    pub fn from_sums(rows: usize, per_row: usize, group_size: Option<usize>, sums: &[ErrorSums]) -> Self {
+        GroupFigures {
+            rows,
+            per_row,
+            group_size,
+            mse: sums.iter().map(|s| s.mse() as f32).collect(),
+            max_abs_err: sums.iter().map(|s| s.max_abs_err).collect(),
+            rel_err: sums.iter().map(|s| s.rel_err() as f32).collect(),
+        }
+    }
+}
+
+/// Running per-column sums over the rows of a tensor.
+#[derive(Debug, Clone, PartialEq)]
+pub struct ColumnSums {
+    rows: usize,
+    max_abs: Vec<f32>,
+    sum_sq: Vec<f64>,
+    sum_sq_err: Vec<f64>,
+}
+
+impl ColumnSums {
+    /// Empty sums for `cols` columns.
+    pub fn new(cols: usize) -> Self {
+        ColumnSums { rows: 0, max_abs: vec![0.0; cols], sum_sq: vec![0.0; cols], sum_sq_err: vec![0.0; cols] }
+    }
+
+    /// Add one row and its reconstruction.
+    pub fn add_row(&mut self, x: &[f32], x_hat: &[f32]) {
+        self.rows += 1;
+        let columns = self.max_abs.iter_mut().zip(self.sum_sq.iter_mut()).zip(self.sum_sq_err.iter_mut());
+        for (((max, sq), err), (&a, &b)) in columns.zip(x.iter().zip(x_hat)) {
+            *max = max.max(a.abs());
+            *sq += f64::from(a) * f64::from(a);
+            let e = f64::from(a - b);
+            *err += e * e;
+        }
+    }
+
+    /// The finished figures.
+    pub fn figures(&self) -> ColumnFigures {
+        let n = self.rows.max(1) as f64;
+        let mut sorted = self.max_abs.clone();
+        sorted.sort_by(f32::total_cmp);
+        let median = sorted.get(sorted.len() / 2).copied().unwrap_or(0.0);
+        // A tensor whose typical column is all zero still gets finite scores.
+        let typical = if median > 0.0 { median } else { sorted.last().copied().filter(|&m| m > 0.0).unwrap_or(1.0) };
+        ColumnFigures {
+            max_abs: self.max_abs.clone(),
+            rms: self.sum_sq.iter().map(|s| (s / n).sqrt() as f32).collect(),
+            err_rms: self.sum_sq_err.iter().map(|s| (s / n).sqrt() as f32).collect(),
+            outlier_score: self.max_abs.iter().map(|m| m / typical).collect(),
+        }
+    }
+}
+
+/// Per-input-column figures of the original weights and of the error.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct ColumnFigures {
+    /// max |w| of each column.
+    pub max_abs: Vec<f32>,
+    /// RMS of each column.
+    pub rms: Vec<f32>,
+    /// RMS of each column's quantization error.
+    pub err_rms: Vec<f32>,
+    /// max |w_j| / median column max |w|.
+    pub outlier_score: Vec<f32>,
+}
+
+impl ColumnFigures {
+    /// Outlier columns (score ≥ [`OUTLIER_SCORE`]), largest score first.
+    pub fn outliers(&self) -> Vec<usize> {
+        let mut cols: Vec<usize> = (0..self.outlier_score.len()).filter(|&j| self.outlier_score[j] >= OUTLIER_SCORE).collect();
+        cols.sort_by(|&a, &b| self.outlier_score[b].total_cmp(&self.outlier_score[a]));
+        cols
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn sums_match_the_definitions_for_odd_lengths() {
+        for len in [0usize, 1, 3, 4, 5, 13] {
+            let x: Vec<f32> = (0..len).map(|i| i as f32 - 2.0).collect();
+            let h: Vec<f32> = x.iter().map(|v| v + 0.5).collect();
+            let mut s = ErrorSums::default();
+            s.add(&x, &h);
+            let sig: f64 = x.iter().map(|&v| f64::from(v).powi(2)).sum();
+            assert_eq!(s.count, len);
+            assert_eq!(s.sum_sq_err, 0.25 * len as f64);
+            assert_eq!(s.sum_sq, sig);
+            assert_eq!(s.max_abs_err, if len == 0 { 0.0 } else { 0.5 });
+        }
+    }
+
+    #[test]
+    fn exact_reconstruction_is_reported_as_exact() {
+        let mut s = ErrorSums::default();
+        s.add(&[1.0, -2.0], &[1.0, -2.0]);
+        let f = s.figures();
+        assert!(f.exact && f.sqnr_db.is_none() && f.rel_fro_err == 0.0 && f.mse == 0.0);
+        let mut zero = ErrorSums::default();
+        zero.add(&[0.0; 3], &[0.0; 3]);
+        assert!(zero.figures().exact && zero.figures().rel_fro_err == 0.0);
+    }
+
+    #[test]
+    fn sqnr_of_a_tenth_amplitude_error_is_20_db() {
+        let mut s = ErrorSums::default();
+        s.add(&[1.0, -1.0, 1.0, -1.0], &[0.9, -0.9, 0.9, -0.9]);
+        let f = s.figures();
+        assert!((f.sqnr_db.unwrap() - 20.0).abs() < 1e-5);
+        assert!((f.rel_fro_err - 0.1).abs() < 1e-6);
+    }
+
+    #[test]
+    fn columns_score_outliers_against_the_median() {
+        let mut c = ColumnSums::new(5);
+        c.add_row(&[1.0, 1.0, 10.0, -1.0, 1.0], &[1.0, 1.0, 9.0, -1.0, 1.0]);
+        c.add_row(&[-1.0, 0.5, 2.0, 1.0, 0.0], &[-1.0, 0.5, 2.0, 1.0, 0.0]);
+        let f = c.figures();
+        assert_eq!(f.max_abs, vec![1.0, 1.0, 10.0, 1.0, 1.0]);
+        assert_eq!(f.outlier_score[2], 10.0);
+        assert_eq!(f.outliers(), vec![2]);
+        assert!((f.err_rms[2] - (0.5f32).sqrt()).abs() < 1e-6);
+        assert_eq!(ColumnSums::new(3).figures().outlier_score, vec![0.0; 3]);
+    }
+}

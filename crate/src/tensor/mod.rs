@@ -1,0 +1,365 @@
+//! Tensors in, as a 2-D `f32` view.
+//!
+//! Every reader works over a [`ByteSource`] ("read this byte range"), so a whole file, a memory
+//! slice and a browser `Blob` serve the same code, and a large `.safetensors` file is listed from
+//! its header alone before one tensor's own byte range is read.
+//!
+//! Shape convention (common practice for linear layers, y = x·Wᵀ): a 2-D tensor is
+//! [rows = output channels, cols = input channels]; 1-D is one row; N-D with N ≥ 3 is viewed as
+//! [dim0, product of the rest] (convolution kernels); a 0-D scalar is 1×1.
+
+pub mod dtype;
+pub mod npy;
+pub mod safetensors;
+pub mod text;
+
+use crate::error::{Error, Result};
+use ndarray::Array2;
+use serde::Serialize;
+
+pub use dtype::{DType, Element};
+
+/// Largest element count the tool will load. In wasm the whole heap is 4 GiB and an analysis
+/// holds about 2.5 copies of the tensor in f32, so the cap keeps one copy at 1 GiB there.
+#[cfg(target_arch = "wasm32")]
+pub const MAX_ELEMENTS: usize = 1 << 28;
+/// Largest element count the tool will load natively (16 GiB of f32).
+#[cfg(not(target_arch = "wasm32"))]
+pub const MAX_ELEMENTS: usize = 1 << 32;
+
+/// Random access to bytes: a file, a memory buffer or a browser `Blob`.
+pub trait ByteSource {
+    /// Total length in bytes.
+    fn len(&self) -> u64;
+    /// Fill `buf` with the bytes starting at `offset`; the caller has checked the range.
+    fn read_at(&self, offset: u64, buf: &mut [u8]) -> Result<()>;
+    /// True when the source holds no bytes.
+    fn is_empty(&self) -> bool {
+        self.len() == 0
+    }
+}
+
+impl ByteSource for [u8] {
+    fn len(&self) -> u64 {
+        <[u8]>::len(self) as u64
+    }
+    fn read_at(&self, offset: u64, buf: &mut [u8]) -> Result<()> {
+        let start = usize::try_from(offset).map_err(|_| Error::Io { message: "offset out of range".into() })?;
+        let end = start.checked_add(buf.len()).filter(|&end| end <= <[u8]>::len(self));
+        match end {
+            Some(end) => {
+                buf.copy_from_slice(&self[start..end]);
+                Ok(())
+            }
+            None => Err(Error::Io { message: "read past the end of the buffer".into() }),
+        }
+    }
+}
+
+#[cfg(not(target_arch = "wasm32"))]
+impl ByteSource for std::fs::File {
+    fn len(&self) -> u64 {
+        self.metadata().map(|m| m.len()).unwrap_or(0)
+    }
+    fn read_at(&self, offset: u64, buf: &mut [u8]) -> Result<()> {
+        #[cfg(unix)]
+        {
+            std::os::unix::fs::FileExt::read_exact_at(self, buf, offset)?;
+        }
+        #[cfg(not(unix))]
+        {
+            use std::io::{Read, Seek, SeekFrom};
+            let mut file = self;
+            file.seek(SeekFrom::Start(offset))?;
+            file.read_exact(buf)?;
+        }
+        Ok(())
+    }
+}
+
+/// Read `len` bytes at `offset`, refusing ranges that leave the source.
+pub(crate) fn read_range<S: ByteSource + ?Sized>(src: &S, offset: u64, len: u64, what: &'static str) -> Result<Vec<u8>> {
+    let available = src.len();
+    let needed = offset.checked_add(len).ok_or(Error::Truncated { what, needed: u64::MAX, available })?;
+    if needed > available {
+        return Err(Error::Truncated { what, needed, available });
+    }
+    let len = usize::try_from(len).map_err(|_| Error::BadShape {
+        shape: vec![],
+        detail: format!("{len} bytes cannot be addressed on this machine"),
+    })?;
+    let mut buf = vec![0u8; len];
+    src.read_at(offset, &mut buf)?;
+    Ok(buf)
+}
+
+/// One tensor as a file lists it, before any of its data is read.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct TensorEntry {
+    /// Name in the file ("" for a `.npy` file, which holds one unnamed array).
+    pub name: String,
+    /// The element type as the file spells it.
+    pub dtype_label: String,
+    /// How to decode the elements, or `None` when the type is not supported.
+    #[serde(skip)]
+    pub element: Option<Element>,
+    /// Shape as stored.
+    pub shape: Vec<usize>,
+    /// Absolute offset of the first data byte in the source.
+    pub offset: u64,
+    /// Length of the data in bytes.
+    pub bytes: u64,
+    /// Whether the data is stored in column-major (Fortran) order.
+    pub fortran_order: bool,
+}
+
+/// The container formats the tool reads.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize)]
+#[serde(rename_all = "lowercase")]
+pub enum FileKind {
+    /// NumPy `.npy`, one array.
+    Npy,
+    /// `.safetensors`, a JSON header and named tensors.
+    Safetensors,
+}
+
+/// Options for reading.
+#[derive(Debug, Clone, Copy, Default, PartialEq, Eq)]
+pub struct ReadOptions {
+    /// Treat raw 2-byte elements (`.npy` descr `V2` or `u2`) as bfloat16 bit patterns.
+    pub raw16_as_bf16: bool,
+}
+
+/// What a file holds.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct Listing {
+    /// Container format.
+    pub kind: FileKind,
+    /// Its tensors, in natural name order.
+    pub entries: Vec<TensorEntry>,
+}
+
+impl Listing {
+    /// The entry to read: by name, or the only one when no name is given.
+    pub fn choose(&self, name: Option<&str>) -> Result<&TensorEntry> {
+        match name {
+            Some(name) => self.entries.iter().find(|e| e.name == name).ok_or_else(|| Error::NoSuchTensor {
+                name: name.to_string(),
+                available: self.entries.iter().take(8).map(|e| e.name.clone()).collect(),
+            }),
+            None if self.entries.len() == 1 => Ok(&self.entries[0]),
+            None => Err(Error::TensorNotChosen { count: self.entries.len() }),
+        }
+    }
+}
+
+/// Identify the container from its first bytes and list its tensors (header only).
+pub fn list<S: ByteSource + ?Sized>(src: &S, opts: ReadOptions) -> Result<Listing> {
+    let head = read_range(src, 0, src.len().min(16), "file start")?;
+    let (kind, mut entries) = if head.starts_with(npy::MAGIC) {
+        (FileKind::Npy, vec![npy::read_header(src, opts)?])
+    } else if head.len() > 8 && head[8] == b'{' {
+        (FileKind::Safetensors, safetensors::read_header(src)?)
+    } else if head.is_empty() {
+        return Err(Error::BadFormat { format: "tensor", detail: "the file is empty".into() });
+    } else {
+        return Err(Error::BadFormat {
+            format: "tensor",
+            detail: "it starts neither with the NumPy .npy magic nor with a safetensors header".into(),
+        });
+    };
+    entries.sort_by(|a, b| natural_cmp(&a.name, &b.name));
+    Ok(Listing { kind, entries })
+}
+
+/// Read one listed tensor's data (its own byte range only) into the 2-D f32 view.
+pub fn read<S: ByteSource + ?Sized>(src: &S, entry: &TensorEntry) -> Result<Tensor> {
+    let element = entry.element.ok_or_else(|| Error::UnsupportedDtype {
+        dtype: entry.dtype_label.clone(),
+        hint: format!("supported types are {}", DType::SUPPORTED),
+    })?;
+    let (rows, cols) = view_2d(&entry.shape)?;
+    let count = rows * cols;
+    let bytes = read_range(src, entry.offset, entry.bytes, "tensor data")?;
+    let mut values = vec![0f32; count];
+    element.decode(&bytes, &mut values);
+    drop(bytes);
+    if entry.fortran_order && entry.shape.len() > 1 {
+        values = fortran_to_c(values, &entry.shape);
+    }
+    let values = Array2::from_shape_vec((rows, cols), values).expect("length checked by view_2d");
+    Ok(Tensor { name: entry.name.clone(), dtype: element.dtype, shape: entry.shape.clone(), values })
+}
+
+/// Reorder column-major data into row-major order for the same shape.
+fn fortran_to_c(values: Vec<f32>, shape: &[usize]) -> Vec<f32> {
+    use ndarray::{ArrayD, IxDyn, ShapeBuilder};
+    let array = ArrayD::from_shape_vec(IxDyn(shape).f(), values).expect("length matches shape");
+    array.as_standard_layout().iter().copied().collect()
+}
+
+/// The number of elements of a shape, refusing overflow and sizes past [`MAX_ELEMENTS`].
+pub fn element_count(shape: &[usize]) -> Result<usize> {
+    let count = shape.iter().try_fold(1usize, |acc, &d| acc.checked_mul(d));
+    match count {
+        Some(count) if count <= MAX_ELEMENTS => Ok(count),
+        _ => Err(Error::BadShape {
+            shape: shape.to_vec(),
+            detail: format!("more than {MAX_ELEMENTS} elements, which is beyond what this build can hold"),
+        }),
+    }
+}
+
+/// The 2-D view [rows, cols] of a stored shape.
+pub fn view_2d(shape: &[usize]) -> Result<(usize, usize)> {
+    let count = element_count(shape)?;
+    Ok(match shape {
+        [] => (1, 1),
+        [n] => (1, *n),
+        [rows, ..] if *rows == 0 => (0, element_count(&shape[1..])?),
+        [rows, ..] => (*rows, count / rows),
+    })
+}
+
+/// A tensor ready for analysis.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Tensor {
+    /// Name in its file, or a label the front end chose.
+    pub name: String,
+    /// The element type it was stored in (the baseline for size ratios).
+    pub dtype: DType,
+    /// Shape as stored.
+    pub shape: Vec<usize>,
+    /// Values in the 2-D view [rows = output channels, cols = input channels].
+    pub values: Array2<f32>,
+}
+
+/// Where NaN and infinite values sit in a tensor.
+#[derive(Debug, Clone, Copy, Default, PartialEq, Eq, Serialize)]
+pub struct NonFiniteCount {
+    /// Count of NaN values.
+    pub nan: usize,
+    /// Count of infinite values.
+    pub inf: usize,
+    /// (row, column) of the first one in row-major order.
+    pub first: Option<(usize, usize)>,
+}
+
+impl Tensor {
+    /// Wrap values already in the 2-D view; the stored shape is taken to be that view.
+    pub fn from_values(name: impl Into<String>, dtype: DType, values: Array2<f32>) -> Self {
+        let shape = values.shape().to_vec();
+        Tensor { name: name.into(), dtype, shape, values }
+    }
+
+    /// Number of rows (output channels).
+    pub fn rows(&self) -> usize {
+        self.values.nrows()
+    }
+
+    /// Number of columns (input channels).
+    pub fn cols(&self) -> usize {
+        self.values.ncols()
+    }
+
+    /// Count NaN and infinite values.
+    pub fn non_finite(&self) -> NonFiniteCount {
+        let mut count = NonFiniteCount::default();
+        let cols = self.cols().max(1);
+        for (i, v) in self.values.iter().enumerate() {
+            if !v.is_finite() {
+                if v.is_nan() {
+                    count.nan += 1;
+                } else {
+                    count.inf += 1;
+                }
+                count.first.get_or_insert((i / cols, i % cols));
+            }
+        }
+        count
+    }
+
+    /// Smallest and largest finite value, or `None` when there is none.
+    pub fn finite_range(&self) -> Option<(f32, f32)> {
+        self.values.iter().filter(|v| v.is_finite()).fold(None, |acc, &v| match acc {
+            None => Some((v, v)),
+            Some((lo, hi)) => Some((lo.min(v), hi.max(v))),
+        })
+    }
+}
+
+/// Order names so that "layer.2" comes before "layer.10".
+pub fn natural_cmp(a: &str, b: &str) -> std::cmp::Ordering {
+    use std::cmp::Ordering;
+    let (mut a, mut b) = (a.as_bytes(), b.as_bytes());
+    loop {
+        match (a.first(), b.first()) {
+            (None, None) => return Ordering::Equal,
+            (None, Some(_)) => return Ordering::Less,
+            (Some(_), None) => return Ordering::Greater,
+            (Some(x), Some(y)) if x.is_ascii_digit() && y.is_ascii_digit() => {
+                let da = a.iter().take_while(|c| c.is_ascii_digit()).count();
+                let db = b.iter().take_while(|c| c.is_ascii_digit()).count();
+                let (na, nb) = (trim_zeros(&a[..da]), trim_zeros(&b[..db]));
+                let order = na.len().cmp(&nb.len()).then_with(|| na.cmp(nb));
+                if order != Ordering::Equal {
+                    return order;
+                }
+                a = &a[da..];
+                b = &b[db..];
+            }
+            (Some(x), Some(y)) => {
+                if x != y {
+                    return x.cmp(y);
+                }
+                a = &a[1..];
+                b = &b[1..];
+            }
+        }
+    }
+}
+
+fn trim_zeros(digits: &[u8]) -> &[u8] {
+    let zeros = digits.iter().take_while(|&&c| c == b'0').count();
+    &digits[zeros..]
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn views_follow_the_layer_convention() {
+        assert_eq!(view_2d(&[]).unwrap(), (1, 1));
+        assert_eq!(view_2d(&[7]).unwrap(), (1, 7));
+        assert_eq!(view_2d(&[3, 5]).unwrap(), (3, 5));
+        assert_eq!(view_2d(&[4, 3, 3, 2]).unwrap(), (4, 18));
+        assert_eq!(view_2d(&[0, 5]).unwrap(), (0, 5));
+        assert_eq!(view_2d(&[5, 0]).unwrap(), (5, 0));
+        assert!(matches!(view_2d(&[usize::MAX, 3]), Err(Error::BadShape { .. })));
+    }
+
+    #[test]
+    fn natural_order_reads_numbers_as_numbers() {
+        let mut names = vec!["b.10", "b.2", "a", "b.01x", "b.1"];
+        names.sort_by(|a, b| natural_cmp(a, b));
+        assert_eq!(names, vec!["a", "b.1", "b.01x", "b.2", "b.10"]);
+    }
+
+    #[test]
+    fn non_finite_values_are_counted_and_located() {
+        let values = Array2::from_shape_vec((2, 3), vec![1.0, 2.0, 3.0, f32::NAN, f32::INFINITY, f32::NAN]).unwrap();
+        let t = Tensor::from_values("t", DType::F32, values);
+        let count = t.non_finite();
+        assert_eq!((count.nan, count.inf, count.first), (2, 1, Some((1, 0))));
+        assert_eq!(t.finite_range(), Some((1.0, 3.0)));
+    }
+
+    #[test]
+    fn slices_refuse_reads_past_their_end() {
+        let bytes = [1u8, 2, 3];
+        let src = &bytes[..];
+        assert!(matches!(read_range(src, 2, 2, "x"), Err(Error::Truncated { needed: 4, available: 3, .. })));
+        assert_eq!(read_range(src, 1, 2, "x").unwrap(), vec![2, 3]);
+    }
+}

@@ -1,0 +1,305 @@
+//! NumPy `.npy` files, format versions 1.0, 2.0 and 3.0.
+//!
+//! Layout, from the NumPy Enhancement Proposal NEP 1 and `numpy.lib.format`: the magic
+//! `\x93NUMPY`, a major and minor version byte, the header length (u16 little-endian in 1.0,
+//! u32 in 2.0 and 3.0), then a Python dict literal with `descr`, `fortran_order` and `shape`,
+//! padded with spaces and ended by a newline so that the data starts on a 64-byte boundary.
+//! Version 3.0 differs from 2.0 only in allowing UTF-8 in the header.
+
+use super::{element_count, read_range, ByteSource, DType, Element, ReadOptions, TensorEntry};
+use crate::error::{Error, Result};
+
+/// The six bytes every `.npy` file starts with.
+pub const MAGIC: &[u8] = b"\x93NUMPY";
+
+/// Headers larger than this are refused rather than read into memory.
+const MAX_HEADER_BYTES: u64 = 1 << 20;
+
+const FORMAT: &str = "NumPy .npy";
+
+fn bad(detail: impl Into<String>) -> Error {
+    Error::BadFormat { format: FORMAT, detail: detail.into() }
+}
+
+/// Parse the header of a `.npy` source into the entry of its single array.
+pub fn read_header<S: ByteSource + ?Sized>(src: &S, opts: ReadOptions) -> Result<TensorEntry> {
+    let preamble = read_range(src, 0, 8, "header")?;
+    if &preamble[..6] != MAGIC {
+        return Err(bad("missing the \\x93NUMPY magic"));
+    }
+    let major = preamble[6];
+    let (len_bytes, start) = match major {
+        1 => (2u64, 10u64),
+        2 | 3 => (4, 12),
+        _ => return Err(bad(format!("format version {major}.{} is unknown (1.0, 2.0 and 3.0 are read)", preamble[7]))),
+    };
+    let len_field = read_range(src, 8, len_bytes, "header length")?;
+    let header_len = match *len_field.as_slice() {
+        [a, b] => u64::from(u16::from_le_bytes([a, b])),
+        [a, b, c, d] => u64::from(u32::from_le_bytes([a, b, c, d])),
+        _ => unreachable!("two or four bytes were read"),
+    };
+    if header_len > MAX_HEADER_BYTES {
+        return Err(bad(format!("the header claims {header_len} bytes, more than the {MAX_HEADER_BYTES} allowed")));
+    }
+    let header = read_range(src, start, header_len, "header")?;
+    let text = std::str::from_utf8(&header).map_err(|_| bad("the header is not text"))?;
+    let fields = HeaderFields::parse(text)?;
+    let element = fields.element(opts)?;
+    let count = element_count(&fields.shape)?;
+    let itemsize = fields.itemsize as u64;
+    let bytes = (count as u64).checked_mul(itemsize).ok_or_else(|| Error::BadShape {
+        shape: fields.shape.clone(),
+        detail: "the byte size overflows".into(),
+    })?;
+    let offset = start + header_len;
+    let available = src.len();
+    if offset.checked_add(bytes).is_none_or(|end| end > available) {
+        return Err(Error::Truncated { what: "array data", needed: offset.saturating_add(bytes), available });
+    }
+    Ok(TensorEntry {
+        name: String::new(),
+        dtype_label: fields.descr.clone(),
+        element,
+        shape: fields.shape,
+        offset,
+        bytes,
+        fortran_order: fields.fortran_order,
+    })
+}
+
+/// The three keys of a `.npy` header.
+struct HeaderFields {
+    descr: String,
+    itemsize: usize,
+    fortran_order: bool,
+    shape: Vec<usize>,
+}
+
+impl HeaderFields {
+    fn parse(text: &str) -> Result<Self> {
+        let mut parser = Literal { text, pos: 0 };
+        let dict = parser.value()?;
+        let Value::Dict(items) = dict else { return Err(bad("the header is not a dict")) };
+        let get = |key: &str| items.iter().find(|(k, _)| k == key).map(|(_, v)| v);
+        let descr = match get("descr") {
+            Some(Value::Str(s)) => s.clone(),
+            Some(Value::List(_)) => {
+                return Err(Error::UnsupportedDtype {
+                    dtype: "structured".into(),
+                    hint: "structured (record) arrays have no single number type; save one field as its own array".into(),
+                })
+            }
+            _ => return Err(bad("the header has no 'descr' string")),
+        };
+        let fortran_order = match get("fortran_order") {
+            Some(Value::Bool(b)) => *b,
+            _ => return Err(bad("the header has no 'fortran_order' flag")),
+        };
+        let shape = match get("shape") {
+            Some(Value::List(dims)) => dims
+                .iter()
+                .map(|d| match d {
+                    Value::Int(n) => usize::try_from(*n).map_err(|_| bad(format!("shape dimension {n} is not valid"))),
+                    _ => Err(bad("the shape holds something other than integers")),
+                })
+                .collect::<Result<Vec<_>>>()?,
+            _ => return Err(bad("the header has no 'shape' tuple")),
+        };
+        let itemsize = descr
+            .get(2..)
+            .and_then(|s| s.parse::<usize>().ok())
+            .filter(|&n| (1..=64).contains(&n))
+            .unwrap_or(1);
+        Ok(HeaderFields { descr, itemsize, fortran_order, shape })
+    }
+
+    fn element(&self, opts: ReadOptions) -> Result<Option<Element>> {
+        let unsupported = |hint: &str| Error::UnsupportedDtype { dtype: self.descr.clone(), hint: hint.into() };
+        let mut chars = self.descr.chars();
+        let order = chars.next().ok_or_else(|| bad("empty 'descr'"))?;
+        let big_endian = match order {
+            '<' | '|' | '=' => false,
+            '>' => true,
+            _ => return Err(unsupported("the byte order mark is missing")),
+        };
+        let code = chars.as_str();
+        let dtype = match code {
+            "f2" => DType::F16,
+            "f4" => DType::F32,
+            "f8" => DType::F64,
+            "i1" => DType::I8,
+            "u1" => DType::U8,
+            "i2" => DType::I16,
+            "i4" => DType::I32,
+            "u4" => DType::U32,
+            "u2" | "V2" if opts.raw16_as_bf16 => DType::BF16,
+            "u2" => DType::U16,
+            "V2" => return Err(unsupported("raw 2-byte values: if they are bfloat16, ask to read them as bf16 (--bf16)")),
+            c if c.starts_with('O') => return Err(unsupported("object arrays hold Python objects, not numbers")),
+            c if c.starts_with('U') || c.starts_with('S') => return Err(unsupported("text arrays hold no numbers")),
+            c if c.starts_with('c') => return Err(unsupported("complex numbers cannot be quantized as real weights")),
+            _ => return Err(unsupported(&format!("supported types are {}", DType::SUPPORTED))),
+        };
+        Ok(Some(Element { dtype, big_endian }))
+    }
+}
+
+/// The subset of Python literals that `.npy` headers use.
+enum Value {
+    Str(String),
+    Int(i64),
+    Bool(bool),
+    List(Vec<Value>),
+    Dict(Vec<(String, Value)>),
+}
+
+struct Literal<'a> {
+    text: &'a str,
+    pos: usize,
+}
+
+impl Literal<'_> {
+    fn skip_space(&mut self) {
+        let rest = &self.text[self.pos..];
+        self.pos += rest.len() - rest.trim_start().len();
+    }
+
+    fn peek(&mut self) -> Option<char> {
+        self.skip_space();
+        self.text[self.pos..].chars().next()
+    }
+
+    fn expect(&mut self, c: char) -> Result<()> {
+        if self.peek() == Some(c) {
+            self.pos += c.len_utf8();
+            Ok(())
+        } else {
+            Err(bad(format!("expected '{c}' at header position {}", self.pos)))
+        }
+    }
+
+    /// Items up to `close`, allowing a trailing comma, as Python does.
+    fn items<T>(&mut self, close: char, mut item: impl FnMut(&mut Self) -> Result<T>) -> Result<Vec<T>> {
+        let mut out = Vec::new();
+        loop {
+            if self.peek() == Some(close) {
+                self.pos += 1;
+                return Ok(out);
+            }
+            out.push(item(self)?);
+            match self.peek() {
+                Some(',') => self.pos += 1,
+                Some(c) if c == close => {}
+                _ => return Err(bad(format!("expected ',' or '{close}' at header position {}", self.pos))),
+            }
+        }
+    }
+
+    fn value(&mut self) -> Result<Value> {
+        match self.peek() {
+            Some('{') => {
+                self.pos += 1;
+                let items = self.items('}', |p| {
+                    let Value::Str(key) = p.value()? else { return Err(bad("a header key is not a string")) };
+                    p.expect(':')?;
+                    Ok((key, p.value()?))
+                })?;
+                Ok(Value::Dict(items))
+            }
+            Some(open @ ('(' | '[')) => {
+                self.pos += 1;
+                let close = if open == '(' { ')' } else { ']' };
+                Ok(Value::List(self.items(close, Self::value)?))
+            }
+            Some(quote @ ('\'' | '"')) => {
+                let body = &self.text[self.pos + 1..];
+                let end = body.find(quote).ok_or_else(|| bad("a string in the header is not closed"))?;
+                self.pos += end + 2;
+                Ok(Value::Str(body[..end].to_string()))
+            }
+            Some(c) if c.is_ascii_digit() || c == '-' => {
+                let rest = &self.text[self.pos..];
+                let len = rest
+                    .char_indices()
+                    .find(|&(i, ch)| !(ch.is_ascii_digit() || (i == 0 && ch == '-') || ch == 'L'))
+                    .map_or(rest.len(), |(i, _)| i);
+                let digits = rest[..len].trim_end_matches('L');
+                self.pos += len;
+                digits.parse().map(Value::Int).map_err(|_| bad(format!("'{digits}' is not an integer")))
+            }
+            _ => {
+                for (word, value) in [("True", true), ("False", false)] {
+                    if self.text[self.pos..].starts_with(word) {
+                        self.pos += word.len();
+                        return Ok(Value::Bool(value));
+                    }
+                }
+                Err(bad(format!("unexpected text at header position {}", self.pos)))
+            }
+        }
+    }
+}
+
+/// Serialise f32 values of `shape` (row-major) as a version 1.0 `.npy` file.
+pub fn write_f32(values: &[f32], shape: &[usize]) -> Vec<u8> {
+    let dims = match shape {
+        [n] => format!("({n},)"),
+        _ => format!("({})", shape.iter().map(usize::to_string).collect::<Vec<_>>().join(", ")),
+    };
+    let mut header = format!("{{'descr': '<f4', 'fortran_order': False, 'shape': {dims}, }}");
+    // Pad so that magic (6) + version (2) + length (2) + header ends on a 64-byte boundary.
+    let unpadded = 10 + header.len() + 1;
+    header.push_str(&" ".repeat((64 - unpadded % 64) % 64));
+    header.push('\n');
+    let mut out = Vec::with_capacity(10 + header.len() + values.len() * 4);
+    out.extend_from_slice(MAGIC);
+    out.extend_from_slice(&[1, 0]);
+    out.extend_from_slice(&(header.len() as u16).to_le_bytes());
+    out.extend_from_slice(header.as_bytes());
+    for v in values {
+        out.extend_from_slice(&v.to_le_bytes());
+    }
+    out
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::tensor;
+
+    #[test]
+    fn written_files_read_back() {
+        for shape in [vec![], vec![5], vec![2, 3], vec![2, 1, 2]] {
+            let n: usize = shape.iter().product();
+            let values: Vec<f32> = (0..n).map(|i| i as f32 * 0.5 - 1.0).collect();
+            let bytes = write_f32(&values, &shape);
+            assert_eq!((bytes.len() - 4 * n) % 64, 0, "data starts on a 64-byte boundary");
+            let listing = tensor::list(&bytes[..], ReadOptions::default()).unwrap();
+            let entry = listing.choose(None).unwrap();
+            assert_eq!(entry.shape, shape);
+            let t = tensor::read(&bytes[..], entry).unwrap();
+            assert_eq!(t.values.iter().copied().collect::<Vec<_>>(), values);
+        }
+    }
+
+    #[test]
+    fn header_literals_parse_with_python_spacing() {
+        let f = HeaderFields::parse("{'descr': '>i2', 'fortran_order': True, 'shape': (3, 4, ), }  \n").unwrap();
+        assert_eq!((f.descr.as_str(), f.fortran_order, f.shape, f.itemsize), (">i2", true, vec![3, 4], 2));
+        assert!(HeaderFields::parse("{'descr': [('a', '<f4')], 'fortran_order': False, 'shape': (2,)}").is_err());
+        assert!(HeaderFields::parse("{'descr': '<f4', 'shape': (2,)}").is_err());
+        assert!(HeaderFields::parse("{'descr': '<f4', 'fortran_order': False, 'shape': (-2,)}").is_err());
+        assert!(HeaderFields::parse("{'descr': '<f4'").is_err());
+    }
+
+    #[test]
+    fn refuses_objects_and_raw_pairs_unless_asked() {
+        let f = HeaderFields::parse("{'descr': '|O', 'fortran_order': False, 'shape': (2,)}").unwrap();
+        assert!(matches!(f.element(ReadOptions::default()), Err(Error::UnsupportedDtype { .. })));
+        let f = HeaderFields::parse("{'descr': '<V2', 'fortran_order': False, 'shape': (2,)}").unwrap();
+        assert!(f.element(ReadOptions::default()).is_err());
+        let e = f.element(ReadOptions { raw16_as_bf16: true }).unwrap().unwrap();
+        assert_eq!(e.dtype, DType::BF16);
+    }
+}

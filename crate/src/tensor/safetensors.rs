@@ -1,0 +1,161 @@
+//! `.safetensors` files, read lazily.
+//!
+//! Layout, from the format's published specification: an unsigned 64-bit little-endian header
+//! size N, then N bytes of UTF-8 JSON mapping each tensor name to `dtype`, `shape` and
+//! `data_offsets` [begin, end) relative to the byte after the header (plus an optional
+//! `__metadata__` map of strings), then the data, little-endian and row-major. Listing reads the
+//! header alone; a tensor is then read from its own byte range.
+
+use super::{element_count, read_range, ByteSource, DType, Element, TensorEntry};
+use crate::error::{Error, Result};
+use serde_json::Value;
+
+/// Headers larger than this are refused before they are read (the format's reference
+/// implementation uses the same 100 MB bound).
+pub const MAX_HEADER_BYTES: u64 = 100_000_000;
+
+const FORMAT: &str = "safetensors";
+
+fn bad(detail: impl Into<String>) -> Error {
+    Error::BadFormat { format: FORMAT, detail: detail.into() }
+}
+
+/// Byte size of each element type name the format defines, and how to decode the supported ones.
+fn element_of(label: &str) -> (Option<usize>, Option<Element>) {
+    let dtype = match label {
+        "F16" => DType::F16,
+        "BF16" => DType::BF16,
+        "F32" => DType::F32,
+        "F64" => DType::F64,
+        "I8" => DType::I8,
+        "U8" => DType::U8,
+        "I16" => DType::I16,
+        "U16" => DType::U16,
+        "I32" => DType::I32,
+        "U32" => DType::U32,
+        "BOOL" | "F8_E4M3" | "F8_E5M2" => return (Some(1), None),
+        "I64" | "U64" | "F64_C" | "C64" => return (Some(8), None),
+        _ => return (None, None),
+    };
+    (Some(dtype.size()), Some(Element::little(dtype)))
+}
+
+/// List every tensor from the header alone.
+pub fn read_header<S: ByteSource + ?Sized>(src: &S) -> Result<Vec<TensorEntry>> {
+    let size_field = read_range(src, 0, 8, "header size")?;
+    let header_len = u64::from_le_bytes(size_field.try_into().expect("eight bytes"));
+    if header_len > MAX_HEADER_BYTES {
+        return Err(bad(format!("the header claims {header_len} bytes, more than the {MAX_HEADER_BYTES} allowed")));
+    }
+    let header = read_range(src, 8, header_len, "header")?;
+    let data_start = 8 + header_len;
+    let data_len = src.len() - data_start;
+    let json: Value = serde_json::from_slice(&header).map_err(|e| bad(format!("the header is not valid JSON ({e})")))?;
+    let Value::Object(map) = json else { return Err(bad("the header is not a JSON object")) };
+    let mut entries = Vec::with_capacity(map.len());
+    for (name, info) in &map {
+        if name == "__metadata__" {
+            continue;
+        }
+        entries.push(entry(name, info, data_start, data_len)?);
+    }
+    Ok(entries)
+}
+
+fn entry(name: &str, info: &Value, data_start: u64, data_len: u64) -> Result<TensorEntry> {
+    let field = |key: &str| info.get(key).ok_or_else(|| bad(format!("tensor '{name}' has no '{key}'")));
+    let dtype_label = field("dtype")?
+        .as_str()
+        .ok_or_else(|| bad(format!("tensor '{name}' has a dtype that is not a string")))?
+        .to_string();
+    let shape = field("shape")?
+        .as_array()
+        .and_then(|dims| dims.iter().map(|d| d.as_u64().and_then(|d| usize::try_from(d).ok())).collect::<Option<Vec<_>>>())
+        .ok_or_else(|| bad(format!("tensor '{name}' has a shape that is not a list of sizes")))?;
+    let offsets = field("data_offsets")?
+        .as_array()
+        .and_then(|o| match o.as_slice() {
+            [b, e] => Some((b.as_u64()?, e.as_u64()?)),
+            _ => None,
+        })
+        .ok_or_else(|| bad(format!("tensor '{name}' has data_offsets that are not two byte positions")))?;
+    let (begin, end) = offsets;
+    if begin > end || end > data_len {
+        return Err(Error::Truncated {
+            what: "tensor data",
+            needed: data_start.saturating_add(end.max(begin)),
+            available: data_start + data_len,
+        });
+    }
+    let (itemsize, element) = element_of(&dtype_label);
+    if let Some(itemsize) = itemsize {
+        let count = element_count(&shape)? as u64;
+        if count.checked_mul(itemsize as u64) != Some(end - begin) {
+            return Err(bad(format!(
+                "tensor '{name}' has {} bytes of data but its shape {shape:?} of {dtype_label} needs {}",
+                end - begin,
+                count.saturating_mul(itemsize as u64)
+            )));
+        }
+    }
+    Ok(TensorEntry {
+        name: name.to_string(),
+        dtype_label,
+        element,
+        shape,
+        offset: data_start + begin,
+        bytes: end - begin,
+        fortran_order: false,
+    })
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::tensor::{self, ReadOptions};
+
+    fn file(header: &str, data: &[u8]) -> Vec<u8> {
+        let mut out = (header.len() as u64).to_le_bytes().to_vec();
+        out.extend_from_slice(header.as_bytes());
+        out.extend_from_slice(data);
+        out
+    }
+
+    #[test]
+    fn lists_then_reads_one_range() {
+        let mut data = Vec::new();
+        data.extend_from_slice(&[1u8, 255]);
+        for v in [1.5f32, -2.0] {
+            data.extend_from_slice(&v.to_le_bytes());
+        }
+        let bytes = file(
+            r#"{"__metadata__":{"k":"v"},"w":{"dtype":"F32","shape":[1,2],"data_offsets":[2,10]},"m":{"dtype":"I8","shape":[2],"data_offsets":[0,2]},"b":{"dtype":"BOOL","shape":[1],"data_offsets":[0,1]}}"#,
+            &data,
+        );
+        let listing = tensor::list(&bytes[..], ReadOptions::default()).unwrap();
+        let names: Vec<_> = listing.entries.iter().map(|e| e.name.as_str()).collect();
+        assert_eq!(names, ["b", "m", "w"]);
+        let w = tensor::read(&bytes[..], listing.choose(Some("w")).unwrap()).unwrap();
+        assert_eq!(w.values.as_slice().unwrap(), &[1.5, -2.0]);
+        let m = tensor::read(&bytes[..], listing.choose(Some("m")).unwrap()).unwrap();
+        assert_eq!(m.values.as_slice().unwrap(), &[1.0, -1.0]);
+        assert!(matches!(tensor::read(&bytes[..], listing.choose(Some("b")).unwrap()), Err(Error::UnsupportedDtype { .. })));
+        assert!(matches!(listing.choose(Some("x")), Err(Error::NoSuchTensor { .. })));
+        assert!(matches!(listing.choose(None), Err(Error::TensorNotChosen { count: 3 })));
+    }
+
+    #[test]
+    fn refuses_lying_headers() {
+        let lying_size = file(r#"{"w":{"dtype":"F32","shape":[3],"data_offsets":[0,8]}}"#, &[0; 8]);
+        assert!(matches!(read_header(&lying_size[..]), Err(Error::BadFormat { .. })));
+        let past_end = file(r#"{"w":{"dtype":"F32","shape":[2],"data_offsets":[0,8]}}"#, &[0; 4]);
+        assert!(matches!(read_header(&past_end[..]), Err(Error::Truncated { .. })));
+        let mut huge = u64::MAX.to_le_bytes().to_vec();
+        huge.push(b'{');
+        assert!(matches!(read_header(&huge[..]), Err(Error::BadFormat { .. })));
+        let cut = &file(r#"{"w":{}}"#, &[])[..10];
+        assert!(matches!(read_header(cut), Err(Error::Truncated { .. })));
+        let not_json = file("{nope", &[]);
+        assert!(matches!(read_header(&not_json[..]), Err(Error::BadFormat { .. })));
+    }
+}
