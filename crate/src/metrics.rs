@@ -7,7 +7,7 @@
 //!
 //! Per input column j of the original weights: max |w_j|, RMS, the RMS of the column's error,
 //! and an outlier score max |w_j| / median over columns of max |w| (a score of
-//! [`OUTLIER_SCORE`] or more marks an outlier column). Sums are kept in f64.
+//! [`OUTLIER_SCORE`] or more marks an outlier column). Differences and sums are taken in f64.
 
 use serde::Serialize;
 
@@ -39,17 +39,17 @@ impl ErrorSums {
         let (xt, ht) = (xc.remainder(), hc.remainder());
         for (a, b) in xc.zip(hc) {
             for i in 0..4 {
-                let e = a[i] - b[i];
-                err[i] += f64::from(e) * f64::from(e);
+                let e = f64::from(a[i]) - f64::from(b[i]);
+                err[i] += e * e;
                 sig[i] += f64::from(a[i]) * f64::from(a[i]);
-                max[i] = max[i].max(e.abs());
+                max[i] = max[i].max(e.abs() as f32);
             }
         }
         for (&a, &b) in xt.iter().zip(ht) {
-            let e = a - b;
-            err[0] += f64::from(e) * f64::from(e);
+            let e = f64::from(a) - f64::from(b);
+            err[0] += e * e;
             sig[0] += f64::from(a) * f64::from(a);
-            max[0] = max[0].max(e.abs());
+            max[0] = max[0].max(e.abs() as f32);
         }
         self.count += x.len();
         self.sum_sq_err += err.iter().sum::<f64>();
@@ -157,7 +157,7 @@ impl ColumnSums {
         for (((max, sq), err), (&a, &b)) in columns.zip(x.iter().zip(x_hat)) {
             *max = max.max(a.abs());
             *sq += f64::from(a) * f64::from(a);
-            let e = f64::from(a - b);
+            let e = f64::from(a) - f64::from(b);
             *err += e * e;
         }
     }

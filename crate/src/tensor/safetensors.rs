@@ -144,6 +144,31 @@ mod tests {
         assert!(matches!(listing.choose(None), Err(Error::TensorNotChosen { count: 3 })));
     }
 
+    /// Counts the bytes a reader asks for.
+    struct Counting<'a>(&'a [u8], std::cell::Cell<u64>);
+
+    impl ByteSource for Counting<'_> {
+        fn len(&self) -> u64 {
+            self.0.len() as u64
+        }
+        fn read_at(&self, offset: u64, buf: &mut [u8]) -> Result<()> {
+            self.1.set(self.1.get() + buf.len() as u64);
+            self.0.read_at(offset, buf)
+        }
+    }
+
+    #[test]
+    fn listing_reads_the_header_only_and_reading_one_tensor_reads_its_range_only() {
+        let header = r#"{"a":{"dtype":"F32","shape":[1000,1000],"data_offsets":[0,4000000]},"b":{"dtype":"F16","shape":[3],"data_offsets":[4000000,4000006]}}"#;
+        let bytes = file(header, &vec![0u8; 4_000_006]);
+        let src = Counting(&bytes, std::cell::Cell::new(0));
+        let listing = tensor::list(&src, ReadOptions::default()).unwrap();
+        assert!(src.1.get() <= 16 + 8 + header.len() as u64, "listing read {} bytes", src.1.get());
+        src.1.set(0);
+        tensor::read(&src, listing.choose(Some("b")).unwrap()).unwrap();
+        assert_eq!(src.1.get(), 6);
+    }
+
     #[test]
     fn refuses_lying_headers() {
         let lying_size = file(r#"{"w":{"dtype":"F32","shape":[3],"data_offsets":[0,8]}}"#, &[0; 8]);
