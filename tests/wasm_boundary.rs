@@ -1,0 +1,77 @@
+//! The wasm boundary and the core, compiled for wasm32 and run under Node by wasm-bindgen-test.
+//! Errors must arrive as JS errors with the core's message, never as panics.
+#![cfg(target_arch = "wasm32")]
+
+use bitloupe::wasm::{demo_weight, open_bytes, parse_text, recipe_defaults};
+use bitloupe::{analyze, tensor, ReadOptions};
+use wasm_bindgen::prelude::*;
+use wasm_bindgen_test::*;
+
+fn message(err: JsError) -> String {
+    let value: JsValue = err.into();
+    value.dyn_into::<js_sys::Error>().map(|e| String::from(e.message())).unwrap_or_default()
+}
+
+fn recipe(json: &str) -> JsValue {
+    js_sys::JSON::parse(json).unwrap()
+}
+
+fn get(obj: &JsValue, key: &str) -> JsValue {
+    js_sys::Reflect::get(obj, &JsValue::from_str(key)).unwrap()
+}
+
+const WEIGHT: &[u8] = include_bytes!("../fixtures/quant_weight.npy");
+const EXPECTED_0: &[u8] = include_bytes!("../fixtures/quant_expected_0.npy");
+
+/// Source: the numpy reference of `fixtures/make_fixtures.py`, case 0 (4-bit asymmetric, g128,
+/// f16 scales): the same element-by-element agreement as the native cross-check, in wasm.
+#[wasm_bindgen_test]
+fn core_matches_the_numpy_reference_in_wasm() {
+    let read = |bytes: &[u8]| {
+        let listing = tensor::list(bytes, ReadOptions::default()).unwrap();
+        tensor::read(bytes, listing.choose(None).unwrap()).unwrap()
+    };
+    let (weight, expected) = (read(WEIGHT), read(EXPECTED_0));
+    let a = analyze(&weight, &bitloupe::Recipe::default()).unwrap();
+    assert!(a.dequantized.iter().zip(expected.values.iter()).all(|(g, w)| g == w));
+}
+
+#[wasm_bindgen_test]
+fn the_boundary_runs_a_recipe_and_hands_out_typed_arrays() {
+    let defaults = recipe_defaults().unwrap();
+    assert_eq!(get(&get(&defaults, "recipe"), "bits").as_f64(), Some(4.0));
+    let handle = open_bytes(WEIGHT, None, false).unwrap();
+    assert_eq!(get(&handle.info().unwrap(), "cols").as_f64(), Some(300.0));
+    let analysis = handle.analyze(recipe(r#"{"bits": 3, "granularity": {"group": 64}, "symmetric": true, "scale_dtype": "bf16"}"#)).unwrap();
+    let summary = analysis.summary();
+    assert_eq!(get(&summary, "label").as_string().unwrap(), "int3 sym g64 bf16");
+    assert_eq!(analysis.group_mse().length(), 37 * 5);
+    assert_eq!(analysis.column_max_abs().length(), 300);
+    let report: serde_json::Value = serde_json::from_str(&analysis.report_json()).unwrap();
+    assert_eq!(report["groups"]["mse"].as_array().unwrap().len(), 37 * 5);
+    let npy = analysis.dequantized_npy();
+    assert_eq!(npy.len(), 128 + 37 * 300 * 4);
+}
+
+#[wasm_bindgen_test]
+fn the_demo_weight_costs_4_15625_bits_at_the_default_recipe() {
+    let analysis = demo_weight().analyze(JsValue::UNDEFINED).unwrap();
+    assert_eq!(get(&analysis.summary(), "bits_per_weight").as_f64(), Some(4.15625));
+    assert_eq!(analysis.group_mse().length(), 1024 * 32);
+}
+
+#[wasm_bindgen_test]
+fn bad_inputs_become_js_errors_with_the_core_message() {
+    let expect = |err: Option<JsError>, needle: &str| {
+        let text = message(err.expect("an error"));
+        assert!(text.contains(needle), "expected '{needle}' in '{text}'");
+    };
+    expect(parse_text("1 2 3\n4 5").err(), "line 2, column 1");
+    expect(open_bytes(&WEIGHT[..WEIGHT.len() - 7], None, false).err(), "truncated");
+    expect(open_bytes(b"hello", None, false).err(), "magic");
+    let handle = parse_text("1 nan\n2 3").unwrap();
+    expect(handle.analyze(JsValue::UNDEFINED).err(), "1 NaN");
+    let ok = parse_text("1 2\n3 4").unwrap();
+    expect(ok.analyze(recipe(r#"{"bits": 12}"#)).err(), "12 bits");
+    expect(ok.analyze(recipe(r#"{"bitz": 4}"#)).err(), "invalid recipe");
+}

@@ -182,12 +182,20 @@ mod cli {
         if is_text(path) {
             let content = std::fs::read_to_string(path).map_err(|e| Failure(format!("{}: cannot read: {e}", path.display())))?;
             let mut tensor = text::parse(&content).map_err(Failure::at(path))?;
-            tensor.name = path.file_stem().map(|s| s.to_string_lossy().into_owned()).unwrap_or_default();
+            tensor.name = stem(path);
             return Ok(tensor);
         }
         let (file, listing) = open(path, options)?;
         let entry = listing.choose(name).map_err(Failure::at(path))?;
-        tensor::read(&file, entry).map_err(Failure::at(path))
+        let mut tensor = tensor::read(&file, entry).map_err(Failure::at(path))?;
+        if tensor.name.is_empty() {
+            tensor.name = stem(path);
+        }
+        Ok(tensor)
+    }
+
+    fn stem(path: &Path) -> String {
+        path.file_stem().map(|s| s.to_string_lossy().into_owned()).unwrap_or_default()
     }
 
     fn describe(listing: &Listing) -> String {

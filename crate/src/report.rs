@@ -128,6 +128,14 @@ impl<'a> Report<'a> {
         }
     }
 
+    /// The same report without the per-group lists, for front ends that take those as typed
+    /// arrays instead.
+    pub fn without_group_lists(mut self) -> Self {
+        self.groups.mse = &[];
+        self.groups.max_abs_err = &[];
+        self
+    }
+
     /// The report as pretty JSON.
     pub fn to_json(&self) -> String {
         serde_json::to_string_pretty(self).expect("reports hold only finite numbers and strings")

@@ -1,0 +1,269 @@
+//! The WebAssembly boundary: thin wrappers over the core for the page's Worker.
+//!
+//! A tensor stays in wasm memory behind an opaque [`TensorHandle`]; JavaScript receives small
+//! results as plain objects (serde-wasm-bindgen) and bulk figures as `Float32Array`s (one copy
+//! out of wasm memory). Every fallible call returns `Result<_, JsError>`; a panic hook reports
+//! anything unexpected to the console instead of an opaque "unreachable".
+
+use crate::analysis::{analyze, Analysis};
+use crate::error::Error;
+use crate::recipe::Recipe;
+use crate::report::Report;
+use crate::tensor::{self, ByteSource, ReadOptions, Tensor};
+use serde::Serialize;
+use wasm_bindgen::prelude::*;
+
+fn js_error(err: Error) -> JsError {
+    JsError::new(&err.to_string())
+}
+
+fn to_js<T: Serialize + ?Sized>(value: &T) -> Result<JsValue, JsError> {
+    value
+        .serialize(&serde_wasm_bindgen::Serializer::json_compatible())
+        .map_err(|e| JsError::new(&e.to_string()))
+}
+
+/// Install the panic hook once, when the module starts.
+#[wasm_bindgen(start)]
+pub fn start() {
+    console_error_panic_hook::set_once();
+}
+
+/// The default recipe and the allowed ranges: the page builds its controls from these.
+#[wasm_bindgen(js_name = recipeDefaults)]
+pub fn recipe_defaults() -> Result<JsValue, JsError> {
+    #[derive(Serialize)]
+    struct Defaults {
+        recipe: Recipe,
+        bits: [u8; 2],
+        group_sizes: [usize; 2],
+        max_elements: usize,
+    }
+    to_js(&Defaults {
+        recipe: Recipe::default(),
+        bits: [*crate::recipe::BITS.start(), *crate::recipe::BITS.end()],
+        group_sizes: [*crate::recipe::GROUP_SIZES.start(), *crate::recipe::GROUP_SIZES.end()],
+        max_elements: tensor::MAX_ELEMENTS,
+    })
+}
+
+/// A browser `Blob` (or `File`) read synchronously range by range; only Workers have
+/// `FileReaderSync`, which is where the core runs.
+struct BlobSource {
+    blob: web_sys::Blob,
+    reader: web_sys::FileReaderSync,
+}
+
+impl BlobSource {
+    fn new(blob: web_sys::Blob) -> Result<Self, JsError> {
+        let reader = web_sys::FileReaderSync::new()
+            .map_err(|_| JsError::new("files can only be read inside the page's worker"))?;
+        Ok(BlobSource { blob, reader })
+    }
+}
+
+impl ByteSource for BlobSource {
+    fn len(&self) -> u64 {
+        self.blob.size() as u64
+    }
+    fn read_at(&self, offset: u64, buf: &mut [u8]) -> crate::Result<()> {
+        let io = |what: &str| Error::Io { message: what.to_string() };
+        let end = offset + buf.len() as u64;
+        let slice = self.blob.slice_with_f64_and_f64(offset as f64, end as f64).map_err(|_| io("the file could not be sliced"))?;
+        let array = self.reader.read_as_array_buffer(&slice).map_err(|_| io("the browser could not read the file"))?;
+        let bytes = js_sys::Uint8Array::new(&array);
+        if bytes.length() as usize != buf.len() {
+            return Err(io("the file changed or ended while it was being read"));
+        }
+        bytes.copy_to(buf);
+        Ok(())
+    }
+}
+
+fn options(raw16_as_bf16: bool) -> ReadOptions {
+    ReadOptions { raw16_as_bf16 }
+}
+
+/// List the tensors of a `.npy` or `.safetensors` file from its header alone.
+#[wasm_bindgen(js_name = listFile)]
+pub fn list_file(file: web_sys::Blob, raw16_as_bf16: bool) -> Result<JsValue, JsError> {
+    let src = BlobSource::new(file)?;
+    to_js(&tensor::list(&src, options(raw16_as_bf16)).map_err(js_error)?)
+}
+
+/// Read one tensor of a file (its own byte range only); `name` may be omitted for one-tensor files.
+#[wasm_bindgen(js_name = openFile)]
+pub fn open_file(file: web_sys::Blob, name: Option<String>, raw16_as_bf16: bool) -> Result<TensorHandle, JsError> {
+    let src = BlobSource::new(file)?;
+    open_source(&src, name, raw16_as_bf16)
+}
+
+/// Read one tensor from bytes already in memory.
+#[wasm_bindgen(js_name = openBytes)]
+pub fn open_bytes(bytes: &[u8], name: Option<String>, raw16_as_bf16: bool) -> Result<TensorHandle, JsError> {
+    open_source(bytes, name, raw16_as_bf16)
+}
+
+fn open_source<S: ByteSource + ?Sized>(src: &S, name: Option<String>, raw16_as_bf16: bool) -> Result<TensorHandle, JsError> {
+    let listing = tensor::list(src, options(raw16_as_bf16)).map_err(js_error)?;
+    let entry = listing.choose(name.as_deref()).map_err(js_error)?;
+    Ok(TensorHandle { tensor: tensor::read(src, entry).map_err(js_error)? })
+}
+
+/// Parse a pasted matrix.
+#[wasm_bindgen(js_name = parseText)]
+pub fn parse_text(text: &str) -> Result<TensorHandle, JsError> {
+    Ok(TensorHandle { tensor: tensor::text::parse(text).map_err(js_error)? })
+}
+
+/// The built-in demo weight.
+#[wasm_bindgen(js_name = demoWeight)]
+pub fn demo_weight() -> TensorHandle {
+    TensorHandle { tensor: crate::demo::weight() }
+}
+
+/// A tensor held in wasm memory.
+#[wasm_bindgen]
+pub struct TensorHandle {
+    tensor: Tensor,
+}
+
+#[wasm_bindgen]
+impl TensorHandle {
+    /// Name, dtype, shape, 2-D view, value range and non-finite counts.
+    pub fn info(&self) -> Result<JsValue, JsError> {
+        #[derive(Serialize)]
+        struct Info<'a> {
+            name: &'a str,
+            dtype: &'static str,
+            shape: &'a [usize],
+            rows: usize,
+            cols: usize,
+            elements: usize,
+            min: Option<f32>,
+            max: Option<f32>,
+            nan: usize,
+            inf: usize,
+            first_non_finite: Option<(usize, usize)>,
+        }
+        let t = &self.tensor;
+        let range = t.finite_range();
+        let nf = t.non_finite();
+        to_js(&Info {
+            name: &t.name,
+            dtype: t.dtype.name(),
+            shape: &t.shape,
+            rows: t.rows(),
+            cols: t.cols(),
+            elements: t.values.len(),
+            min: range.map(|r| r.0),
+            max: range.map(|r| r.1),
+            nan: nf.nan,
+            inf: nf.inf,
+            first_non_finite: nf.first,
+        })
+    }
+
+    /// Run a recipe (a plain object with any of the recipe's fields; the rest take defaults).
+    pub fn analyze(&self, recipe: JsValue) -> Result<AnalysisHandle, JsError> {
+        // Through JSON text rather than serde-wasm-bindgen, which skips unknown keys: a
+        // misspelt field must be an error, not a silent default.
+        let recipe: Recipe = if recipe.is_undefined() || recipe.is_null() {
+            Recipe::default()
+        } else {
+            let text = js_sys::JSON::stringify(&recipe).ok().and_then(|s| s.as_string()).unwrap_or_default();
+            serde_json::from_str(&text).map_err(|e| JsError::new(&format!("invalid recipe: {e}")))?
+        };
+        let analysis = analyze(&self.tensor, &recipe).map_err(js_error)?;
+        let summary = to_js(&Report::new(&self.tensor, &analysis).without_group_lists())?;
+        let report_json = Report::new(&self.tensor, &analysis).to_json();
+        Ok(AnalysisHandle { analysis, summary, report_json, shape: self.tensor.shape.clone() })
+    }
+
+    /// Values of one row, for the histogram.
+    #[wasm_bindgen(js_name = rowValues)]
+    pub fn row_values(&self, row: usize) -> Result<js_sys::Float32Array, JsError> {
+        let row = self.tensor.values.row(row.min(self.tensor.rows().saturating_sub(1)));
+        Ok(js_sys::Float32Array::from(row.as_slice().ok_or_else(|| JsError::new("row is not contiguous"))?))
+    }
+}
+
+/// The result of one recipe on one tensor.
+#[wasm_bindgen]
+pub struct AnalysisHandle {
+    analysis: Analysis,
+    summary: JsValue,
+    report_json: String,
+    shape: Vec<usize>,
+}
+
+#[wasm_bindgen]
+impl AnalysisHandle {
+    /// Headline figures, bit budget and outlier columns (the JSON report without group lists).
+    pub fn summary(&self) -> JsValue {
+        self.summary.clone()
+    }
+
+    /// The complete JSON report.
+    #[wasm_bindgen(js_name = reportJson)]
+    pub fn report_json(&self) -> String {
+        self.report_json.clone()
+    }
+
+    /// MSE of every group, row-major over [groups.rows × groups.per_row].
+    #[wasm_bindgen(js_name = groupMse)]
+    pub fn group_mse(&self) -> js_sys::Float32Array {
+        js_sys::Float32Array::from(self.analysis.groups.mse.as_slice())
+    }
+
+    /// Relative error of every group.
+    #[wasm_bindgen(js_name = groupRelErr)]
+    pub fn group_rel_err(&self) -> js_sys::Float32Array {
+        js_sys::Float32Array::from(self.analysis.groups.rel_err.as_slice())
+    }
+
+    /// Largest absolute error of every group.
+    #[wasm_bindgen(js_name = groupMaxErr)]
+    pub fn group_max_err(&self) -> js_sys::Float32Array {
+        js_sys::Float32Array::from(self.analysis.groups.max_abs_err.as_slice())
+    }
+
+    /// max |w| of every input column.
+    #[wasm_bindgen(js_name = columnMaxAbs)]
+    pub fn column_max_abs(&self) -> js_sys::Float32Array {
+        js_sys::Float32Array::from(self.analysis.columns.max_abs.as_slice())
+    }
+
+    /// RMS of the error of every input column.
+    #[wasm_bindgen(js_name = columnErrRms)]
+    pub fn column_err_rms(&self) -> js_sys::Float32Array {
+        js_sys::Float32Array::from(self.analysis.columns.err_rms.as_slice())
+    }
+
+    /// Outlier score of every input column.
+    #[wasm_bindgen(js_name = columnOutlierScore)]
+    pub fn column_outlier_score(&self) -> js_sys::Float32Array {
+        js_sys::Float32Array::from(self.analysis.columns.outlier_score.as_slice())
+    }
+
+    /// Scale and zero point of one group (row-major index), for drawing its grid.
+    #[wasm_bindgen(js_name = groupGrid)]
+    pub fn group_grid(&self, index: usize) -> Result<JsValue, JsError> {
+        #[derive(Serialize)]
+        struct Grid {
+            scale: f32,
+            zero: f32,
+            qmin: f32,
+            qmax: f32,
+        }
+        let p = self.analysis.params.get(index).ok_or_else(|| JsError::new("no such group"))?;
+        let grid = crate::grid::IntGrid::new(&self.analysis.recipe);
+        to_js(&Grid { scale: p.scale, zero: p.zero, qmin: grid.qmin, qmax: grid.qmax })
+    }
+
+    /// The dequantized tensor as a float32 `.npy` file in the source's stored shape.
+    #[wasm_bindgen(js_name = dequantizedNpy)]
+    pub fn dequantized_npy(&self) -> Vec<u8> {
+        crate::tensor::npy::write_f32(self.analysis.dequantized.as_slice().expect("row-major"), &self.shape)
+    }
+}
