@@ -36,11 +36,25 @@ pub fn analyze(tensor: &Tensor, recipe: &Recipe) -> Result<Analysis> {
     if rows * cols == 0 {
         return Err(Error::BadShape { shape: tensor.shape.clone(), detail: "it has no elements".into() });
     }
-    let non_finite = tensor.non_finite();
-    if let Some((first_row, first_col)) = non_finite.first {
-        return Err(Error::NonFinite { nan: non_finite.nan, inf: non_finite.inf, first_row, first_col });
+    // Finiteness is checked after the run rather than by a separate pass over the tensor: a NaN
+    // makes the error sums NaN, an infinity makes its scale overflow, and either way the
+    // precise count and location are then looked up.
+    let run = quantize_all(tensor, recipe);
+    let non_finite = match &run {
+        Ok(analysis) => analysis.totals.mse.is_nan(),
+        Err(_) => true,
+    };
+    if non_finite {
+        let count = tensor.non_finite();
+        if let Some((first_row, first_col)) = count.first {
+            return Err(Error::NonFinite { nan: count.nan, inf: count.inf, first_row, first_col });
+        }
     }
+    run
+}
 
+fn quantize_all(tensor: &Tensor, recipe: &Recipe) -> Result<Analysis> {
+    let (rows, cols) = (tensor.rows(), tensor.cols());
     let grid = IntGrid::new(recipe);
     let overflow = |row, col| move |e: crate::grid::ScaleOverflow| Error::ScaleOverflow {
         scale: e.0,
@@ -54,8 +68,8 @@ pub fn analyze(tensor: &Tensor, recipe: &Recipe) -> Result<Analysis> {
     };
     let whole_tensor = match recipe.granularity {
         Granularity::Tensor => {
-            let (lo, hi) = tensor.values.iter().fold((0f32, 0f32), |(lo, hi), &v| (lo.min(v), hi.max(v)));
-            Some(grid.fit_range(lo, hi).map_err(overflow(0, 0))?)
+            let all = tensor.values.as_slice().expect("row-major tensor");
+            Some(grid.fit(all).map_err(overflow(0, 0))?)
         }
         _ => None,
     };
@@ -182,6 +196,12 @@ mod tests {
             analyze(&t, &Recipe::default()),
             Err(Error::NonFinite { nan: 1, inf: 0, first_row: 1, first_col: 2 })
         ));
+        let mut inf = tensor(3, 40, 4);
+        inf.values[[2, 33]] = f32::NEG_INFINITY;
+        assert!(matches!(
+            analyze(&inf, &Recipe { granularity: Granularity::Tensor, ..Recipe::default() }),
+            Err(Error::NonFinite { nan: 0, inf: 1, first_row: 2, first_col: 33 })
+        ));
         let empty = Tensor::from_values("e", DType::F32, Array2::zeros((3, 0)));
         assert!(matches!(analyze(&empty, &Recipe::default()), Err(Error::BadShape { .. })));
         let mut big = tensor(1, 16, 2);
@@ -190,6 +210,17 @@ mod tests {
         let g = Recipe { granularity: Granularity::Group(8), ..Recipe::default() };
         assert!(matches!(analyze(&big, &g), Err(Error::ScaleOverflow { row: 0, col: 8, .. })));
         assert!(analyze(&t, &Recipe { bits: 12, ..Recipe::default() }).is_err());
+    }
+
+    #[test]
+    fn huge_finite_values_keep_finite_figures() {
+        // Squares of 1e20 overflow f32; the sums must fall back to f64.
+        let mut t = tensor(2, 64, 5);
+        t.values.mapv_inplace(|v| v * 1e20);
+        let a = analyze(&t, &Recipe { scale_dtype: ScaleDType::F32, granularity: Granularity::Group(32), ..Recipe::default() }).unwrap();
+        assert!(a.totals.sqnr_db.unwrap().is_finite() && a.totals.mse.is_finite());
+        let plain = analyze(&tensor(2, 64, 5), &Recipe { scale_dtype: ScaleDType::F32, granularity: Granularity::Group(32), ..Recipe::default() }).unwrap();
+        assert!((a.totals.sqnr_db.unwrap() - plain.totals.sqnr_db.unwrap()).abs() < 0.01);
     }
 
     #[test]

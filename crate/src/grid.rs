@@ -49,13 +49,7 @@ impl IntGrid {
 
     /// Fit the scale (and zero point) of one group from its value range.
     pub fn fit(&self, group: &[f32]) -> Result<GroupParams, ScaleOverflow> {
-        let (lo, hi) = min_max(group);
-        self.fit_range(lo, hi)
-    }
-
-    /// Fit from a known range [lo, hi] of the group's values.
-    pub fn fit_range(&self, lo: f32, hi: f32) -> Result<GroupParams, ScaleOverflow> {
-        let (lo, hi) = (lo.min(0.0), hi.max(0.0));
+        let (lo, hi) = min_max(group); // both include 0
         let raw = if self.symmetric { (-lo).max(hi) / self.qmax } else { (hi - lo) / self.qmax };
         let scale = if raw == 0.0 { 1.0 } else { self.scale_dtype.round(raw).ok_or(ScaleOverflow(raw))? };
         let zero = if self.symmetric { 0.0 } else { (-lo / scale).round_ties_even().clamp(0.0, self.qmax) };
@@ -84,10 +78,12 @@ pub fn min_max(x: &[f32]) -> (f32, f32) {
     let mut hi = [0f32; 8];
     let chunks = x.chunks_exact(8);
     let tail = chunks.remainder();
+    // Plain comparisons rather than f32::min/max (whose NaN rules block one-instruction
+    // vector code): the tensor was checked to be finite before any group is fitted.
     for chunk in chunks {
         for i in 0..8 {
-            lo[i] = lo[i].min(chunk[i]);
-            hi[i] = hi[i].max(chunk[i]);
+            lo[i] = if chunk[i] < lo[i] { chunk[i] } else { lo[i] };
+            hi[i] = if chunk[i] > hi[i] { chunk[i] } else { hi[i] };
         }
     }
     let mut lo = lo.iter().copied().fold(0f32, f32::min);

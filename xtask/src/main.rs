@@ -1,1 +1,289 @@
-fn main() {}
+//! bitloupe's build helper, run as `cargo xtask <command>`.
+//!
+//! * `serve [--port N]`: install what is missing, build the page into `dist/`, serve it on
+//!   127.0.0.1 (the main command of the README);
+//! * `build`: the same without serving;
+//! * `test`: install what is missing and run every test: native, wasm under Node, and the
+//!   browser tests in headless Chromium;
+//! * `bench`: the native benchmarks.
+//!
+//! Every tool the project needs is installed here when missing, so a fresh machine needs only
+//! cargo to start.
+
+use std::path::{Path, PathBuf};
+use std::process::Command;
+
+type Result<T = ()> = std::result::Result<T, String>;
+
+fn main() {
+    let args: Vec<String> = std::env::args().skip(1).collect();
+    let result = match args.first().map(String::as_str) {
+        Some("serve") => serve(&args[1..]),
+        Some("build") => build().map(|_| ()),
+        Some("test") => test(),
+        Some("bench") => run(Command::new("cargo").args(["bench", "-p", "bitloupe"]).current_dir(root())),
+        _ => Err("usage: cargo xtask serve [--port N] | build | test | bench".into()),
+    };
+    if let Err(message) = result {
+        eprintln!("xtask: {message}");
+        std::process::exit(1);
+    }
+}
+
+fn root() -> PathBuf {
+    Path::new(env!("CARGO_MANIFEST_DIR")).parent().expect("xtask sits in the workspace").to_path_buf()
+}
+
+fn run(cmd: &mut Command) -> Result {
+    let shown = format!("{cmd:?}");
+    let status = cmd.status().map_err(|e| format!("could not start {shown}: {e}"))?;
+    if status.success() { Ok(()) } else { Err(format!("{shown} failed ({status})")) }
+}
+
+fn output(cmd: &mut Command) -> Option<String> {
+    cmd.output().ok().filter(|o| o.status.success()).map(|o| String::from_utf8_lossy(&o.stdout).into_owned())
+}
+
+fn step(what: &str) {
+    eprintln!("\n== {what}");
+}
+
+// ---------------------------------------------------------------- installing what is missing
+
+fn ensure_wasm_target() -> Result {
+    let installed = output(Command::new("rustup").args(["target", "list", "--installed"])).unwrap_or_default();
+    if !installed.lines().any(|l| l.trim() == "wasm32-unknown-unknown") {
+        step("installing the wasm32-unknown-unknown target");
+        run(Command::new("rustup").args(["target", "add", "wasm32-unknown-unknown"]))?;
+    }
+    Ok(())
+}
+
+/// The `wasm-bindgen` version in Cargo.lock; the CLI must match it exactly.
+fn locked_wasm_bindgen_version() -> Result<String> {
+    let lock = std::fs::read_to_string(root().join("Cargo.lock")).map_err(|e| format!("Cargo.lock: {e}"))?;
+    let mut lines = lock.lines();
+    while let Some(line) = lines.next() {
+        if line.trim() == "name = \"wasm-bindgen\"" {
+            if let Some(version) = lines.next().and_then(|l| l.trim().strip_prefix("version = \"")) {
+                return Ok(version.trim_end_matches('"').to_string());
+            }
+        }
+    }
+    Err("Cargo.lock has no wasm-bindgen entry".into())
+}
+
+fn ensure_wasm_bindgen() -> Result {
+    let version = locked_wasm_bindgen_version()?;
+    let current = output(Command::new("wasm-bindgen").arg("--version")).unwrap_or_default();
+    if current.split_whitespace().nth(1) != Some(version.as_str()) {
+        step(&format!("installing wasm-bindgen-cli {version} (the version in Cargo.lock)"));
+        run(Command::new("cargo").args(["install", "--force", "wasm-bindgen-cli", "--version", &version]))?;
+    }
+    Ok(())
+}
+
+fn apt_install(packages: &[&str]) -> Result {
+    step(&format!("installing {} from Debian's packages", packages.join(", ")));
+    run(Command::new("apt-get").arg("update"))?;
+    run(Command::new("apt-get").args(["install", "-y", "--no-install-recommends"]).args(packages).env("DEBIAN_FRONTEND", "noninteractive"))
+}
+
+fn ensure_node() -> Result {
+    if output(Command::new("node").arg("--version")).is_none() || output(Command::new("npm").arg("--version")).is_none() {
+        apt_install(&["nodejs", "npm"])?;
+    }
+    Ok(())
+}
+
+fn ensure_npm_packages() -> Result {
+    ensure_node()?;
+    let installed = ["playwright-core", "uplot"].iter().all(|p| root().join("node_modules").join(p).join("package.json").exists());
+    if !installed {
+        step("installing the page's npm packages (npm ci)");
+        run(Command::new("npm").args(["ci", "--no-audit", "--no-fund"]).current_dir(root()))?;
+    }
+    Ok(())
+}
+
+const CHROMIUM: &str = "/usr/bin/chromium";
+
+fn ensure_chromium() -> Result {
+    if !Path::new(CHROMIUM).exists() {
+        apt_install(&["chromium"])?;
+    }
+    Ok(())
+}
+
+// ---------------------------------------------------------------- building the page
+
+/// Build the wasm module and assemble the page in `dist/`; returns the folder.
+fn build() -> Result<PathBuf> {
+    ensure_wasm_target()?;
+    ensure_wasm_bindgen()?;
+    ensure_npm_packages()?;
+    let root = root();
+    step("building the core for wasm32 (release)");
+    run(Command::new("cargo")
+        .args(["build", "--release", "--lib", "-p", "bitloupe", "--target", "wasm32-unknown-unknown"])
+        .current_dir(&root))?;
+    let dist = root.join("dist");
+    let staging = root.join("target").join("dist-staging");
+    let _ = std::fs::remove_dir_all(&staging);
+    std::fs::create_dir_all(staging.join("pkg")).map_err(|e| e.to_string())?;
+    let wasm = root.join("target/wasm32-unknown-unknown/release/bitloupe.wasm");
+    run(Command::new("wasm-bindgen")
+        .args(["--target", "web", "--no-typescript", "--out-dir"])
+        .arg(staging.join("pkg"))
+        .arg(&wasm))?;
+    copy_dir(&root.join("www"), &staging)?;
+    let vendor = staging.join("vendor");
+    std::fs::create_dir_all(&vendor).map_err(|e| e.to_string())?;
+    for (from, to) in [("uplot/dist/uPlot.iife.min.js", "uPlot.iife.min.js"), ("uplot/dist/uPlot.min.css", "uPlot.min.css")] {
+        std::fs::copy(root.join("node_modules").join(from), vendor.join(to)).map_err(|e| format!("{from}: {e}"))?;
+    }
+    write_precache_list(&staging)?;
+    // Replace dist/ only once the new build is complete.
+    let _ = std::fs::remove_dir_all(&dist);
+    std::fs::rename(&staging, &dist).map_err(|e| format!("dist: {e}"))?;
+    eprintln!("page built in {}", dist.display());
+    Ok(dist)
+}
+
+fn copy_dir(from: &Path, to: &Path) -> Result {
+    for entry in std::fs::read_dir(from).map_err(|e| format!("{}: {e}", from.display()))? {
+        let entry = entry.map_err(|e| e.to_string())?;
+        let target = to.join(entry.file_name());
+        if entry.path().is_dir() {
+            std::fs::create_dir_all(&target).map_err(|e| e.to_string())?;
+            copy_dir(&entry.path(), &target)?;
+        } else {
+            std::fs::copy(entry.path(), &target).map_err(|e| format!("{}: {e}", entry.path().display()))?;
+        }
+    }
+    Ok(())
+}
+
+/// The service worker pre-caches every built file; list them with a build stamp so that a new
+/// build replaces the old cache.
+fn write_precache_list(dist: &Path) -> Result {
+    let mut files = Vec::new();
+    collect_files(dist, dist, &mut files)?;
+    files.sort();
+    let stamp = std::time::SystemTime::now().duration_since(std::time::UNIX_EPOCH).map(|d| d.as_secs()).unwrap_or(0);
+    let list = files.iter().map(|f| format!("  './{f}',")).collect::<Vec<_>>().join("\n");
+    let text = format!("// Written by `cargo xtask build`.\nself.PRECACHE_VERSION = 'bitloupe-{stamp}';\nself.PRECACHE_FILES = [\n  './',\n{list}\n];\n");
+    std::fs::write(dist.join("precache.js"), text).map_err(|e| e.to_string())
+}
+
+fn collect_files(base: &Path, dir: &Path, out: &mut Vec<String>) -> Result {
+    for entry in std::fs::read_dir(dir).map_err(|e| e.to_string())? {
+        let path = entry.map_err(|e| e.to_string())?.path();
+        if path.is_dir() {
+            collect_files(base, &path, out)?;
+        } else {
+            let rel = path.strip_prefix(base).expect("inside base").to_string_lossy().replace('\\', "/");
+            if rel != "sw.js" {
+                out.push(rel);
+            }
+        }
+    }
+    Ok(())
+}
+
+// ---------------------------------------------------------------- serving
+
+/// Allows only the page's own files: no request to any other origin is possible.
+const CSP: &str = "default-src 'self'; script-src 'self' 'wasm-unsafe-eval'; worker-src 'self'; \
+    style-src 'self' 'unsafe-inline'; img-src 'self' data: blob:; connect-src 'self'; \
+    object-src 'none'; base-uri 'none'; form-action 'none'";
+
+fn content_type(path: &Path) -> &'static str {
+    match path.extension().and_then(|e| e.to_str()).unwrap_or("") {
+        "html" => "text/html; charset=utf-8",
+        "js" | "mjs" => "text/javascript; charset=utf-8",
+        "css" => "text/css; charset=utf-8",
+        "wasm" => "application/wasm",
+        "json" | "webmanifest" => "application/json",
+        "svg" => "image/svg+xml",
+        "png" => "image/png",
+        _ => "application/octet-stream",
+    }
+}
+
+fn serve(args: &[String]) -> Result {
+    let mut port = 8080u16;
+    let mut iter = args.iter();
+    while let Some(arg) = iter.next() {
+        match arg.as_str() {
+            "--port" => port = iter.next().and_then(|p| p.parse().ok()).ok_or("--port needs a number")?,
+            other => return Err(format!("unknown option {other}")),
+        }
+    }
+    let dist = build()?;
+    serve_dir(&dist, port)
+}
+
+fn serve_dir(dist: &Path, port: u16) -> Result {
+    let server = tiny_http::Server::http(("127.0.0.1", port)).map_err(|e| format!("cannot listen on 127.0.0.1:{port}: {e}"))?;
+    eprintln!("\nbitloupe is ready: open http://127.0.0.1:{port}/ (press Ctrl+C to stop)");
+    for request in server.incoming_requests() {
+        let response = respond(dist, request.url());
+        let _ = request.respond(response);
+    }
+    Ok(())
+}
+
+fn respond(dist: &Path, url: &str) -> tiny_http::Response<std::io::Cursor<Vec<u8>>> {
+    let path = url.split(['?', '#']).next().unwrap_or("/");
+    let relative = path.trim_start_matches('/');
+    let relative = if relative.is_empty() { "index.html" } else { relative };
+    let header = |k: &str, v: &str| tiny_http::Header::from_bytes(k.as_bytes(), v.as_bytes()).expect("ascii header");
+    let safe = !relative.split('/').any(|part| part == ".." || part.is_empty());
+    let file = dist.join(relative);
+    match std::fs::read(&file).ok().filter(|_| safe) {
+        Some(body) => tiny_http::Response::from_data(body)
+            .with_header(header("Content-Type", content_type(&file)))
+            .with_header(header("Content-Security-Policy", CSP))
+            .with_header(header("Cache-Control", "no-cache"))
+            .with_header(header("X-Content-Type-Options", "nosniff")),
+        None => tiny_http::Response::from_data(b"not found".to_vec()).with_status_code(404),
+    }
+}
+
+// ---------------------------------------------------------------- testing
+
+fn test() -> Result {
+    let root = root();
+    ensure_wasm_target()?;
+    ensure_wasm_bindgen()?;
+    ensure_node()?;
+    step("native tests");
+    run(Command::new("cargo").args(["test", "--workspace"]).current_dir(&root))?;
+    step("wasm32 tests under Node (wasm-bindgen-test)");
+    run(Command::new("cargo")
+        .args(["test", "-p", "bitloupe", "--target", "wasm32-unknown-unknown", "--test", "wasm_boundary"])
+        .current_dir(&root))?;
+    ensure_chromium()?;
+    let dist = build()?;
+    step("browser tests in headless Chromium");
+    let port = free_port()?;
+    let server_dist = dist.clone();
+    std::thread::spawn(move || serve_dir(&server_dist, port));
+    let shots = root.join("test-output").join("screenshots");
+    std::fs::create_dir_all(&shots).map_err(|e| e.to_string())?;
+    run(Command::new("node")
+        .args(["--test", "--test-concurrency=1"])
+        .arg(root.join("tests/browser"))
+        .env("BITLOUPE_URL", format!("http://127.0.0.1:{port}/"))
+        .env("BITLOUPE_CHROMIUM", CHROMIUM)
+        .env("BITLOUPE_SCREENSHOTS", &shots)
+        .current_dir(&root))?;
+    eprintln!("\nscreenshots of the page's main states: {}", shots.display());
+    Ok(())
+}
+
+fn free_port() -> Result<u16> {
+    let listener = std::net::TcpListener::bind(("127.0.0.1", 0)).map_err(|e| e.to_string())?;
+    listener.local_addr().map(|a| a.port()).map_err(|e| e.to_string())
+}

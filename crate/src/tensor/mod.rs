@@ -230,7 +230,7 @@ pub struct Tensor {
     pub dtype: DType,
     /// Shape as stored.
     pub shape: Vec<usize>,
-    /// Values in the 2-D view [rows = output channels, cols = input channels].
+    /// Values in the 2-D view [rows = output channels, cols = input channels], row-major.
     pub values: Array2<f32>,
 }
 
@@ -248,6 +248,8 @@ pub struct NonFiniteCount {
 impl Tensor {
     /// Wrap values already in the 2-D view; the stored shape is taken to be that view.
     pub fn from_values(name: impl Into<String>, dtype: DType, values: Array2<f32>) -> Self {
+        // The kernels walk rows as contiguous slices.
+        let values = if values.is_standard_layout() { values } else { values.as_standard_layout().into_owned() };
         let shape = values.shape().to_vec();
         Tensor { name: name.into(), dtype, shape, values }
     }
@@ -265,6 +267,14 @@ impl Tensor {
     /// Count NaN and infinite values.
     pub fn non_finite(&self) -> NonFiniteCount {
         let mut count = NonFiniteCount::default();
+        // A branch-free scan first, which vectorises: nearly every tensor is finite.
+        let finite = match self.values.as_slice() {
+            Some(all) => all.chunks(4096).all(|c| c.iter().fold(true, |ok, v| ok & v.is_finite())),
+            None => self.values.iter().all(|v| v.is_finite()),
+        };
+        if finite {
+            return count;
+        }
         let cols = self.cols().max(1);
         for (i, v) in self.values.iter().enumerate() {
             if !v.is_finite() {
