@@ -42,20 +42,25 @@ fn the_boundary_runs_a_recipe_and_hands_out_typed_arrays() {
     assert_eq!(get(&get(&defaults, "recipe"), "bits").as_f64(), Some(4.0));
     let handle = open_bytes(WEIGHT, None, false).unwrap();
     assert_eq!(get(&handle.info().unwrap(), "cols").as_f64(), Some(300.0));
-    let analysis = handle.analyze(recipe(r#"{"bits": 3, "granularity": {"group": 64}, "symmetric": true, "scale_dtype": "bf16"}"#)).unwrap();
+    let analysis = handle.analyze(recipe(r#"{"bits": 3, "granularity": {"group": 64}, "symmetric": true, "scale_dtype": "bf16"}"#), None).unwrap();
     let summary = analysis.summary();
     assert_eq!(get(&summary, "label").as_string().unwrap(), "int3 sym g64 bf16");
     assert_eq!(analysis.group_mse().length(), 37 * 5);
     assert_eq!(analysis.column_max_abs().length(), 300);
     let report: serde_json::Value = serde_json::from_str(&analysis.report_json()).unwrap();
     assert_eq!(report["groups"]["mse"].as_array().unwrap().len(), 37 * 5);
+    let hist = handle.group_histogram(&analysis, 4, 10).unwrap();
+    assert_eq!(get(&hist, "grid").dyn_into::<js_sys::Array>().unwrap().length(), 8);
+    let counts = get(&get(&hist, "histogram"), "counts").dyn_into::<js_sys::Array>().unwrap();
+    let total: f64 = counts.iter().map(|c| c.as_f64().unwrap()).sum();
+    assert_eq!(total, 44.0, "group 4 is the short last group of row 0: 300 - 256 columns");
     let npy = analysis.dequantized_npy();
     assert_eq!(npy.len(), 128 + 37 * 300 * 4);
 }
 
 #[wasm_bindgen_test]
 fn the_demo_weight_costs_4_15625_bits_at_the_default_recipe() {
-    let analysis = demo_weight().analyze(JsValue::UNDEFINED).unwrap();
+    let analysis = demo_weight().analyze(JsValue::UNDEFINED, None).unwrap();
     assert_eq!(get(&analysis.summary(), "bits_per_weight").as_f64(), Some(4.15625));
     assert_eq!(analysis.group_mse().length(), 1024 * 32);
 }
@@ -70,8 +75,8 @@ fn bad_inputs_become_js_errors_with_the_core_message() {
     expect(open_bytes(&WEIGHT[..WEIGHT.len() - 7], None, false).err(), "truncated");
     expect(open_bytes(b"hello", None, false).err(), "magic");
     let handle = parse_text("1 nan\n2 3").unwrap();
-    expect(handle.analyze(JsValue::UNDEFINED).err(), "1 NaN");
+    expect(handle.analyze(JsValue::UNDEFINED, None).err(), "1 NaN");
     let ok = parse_text("1 2\n3 4").unwrap();
-    expect(ok.analyze(recipe(r#"{"bits": 12}"#)).err(), "12 bits");
-    expect(ok.analyze(recipe(r#"{"bitz": 4}"#)).err(), "invalid recipe");
+    expect(ok.analyze(recipe(r#"{"bits": 12}"#), None).err(), "12 bits");
+    expect(ok.analyze(recipe(r#"{"bitz": 4}"#), None).err(), "invalid recipe");
 }

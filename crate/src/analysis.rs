@@ -9,6 +9,7 @@ use crate::metrics::{ColumnFigures, ColumnSums, ErrorFigures, ErrorSums, GroupFi
 use crate::recipe::{Granularity, Recipe};
 use crate::tensor::Tensor;
 use ndarray::Array2;
+use std::ops::Range;
 
 /// Everything one analysis produces.
 #[derive(Debug, Clone, PartialEq)]
@@ -31,6 +32,14 @@ pub struct Analysis {
 
 /// Run `recipe` on `tensor`.
 pub fn analyze(tensor: &Tensor, recipe: &Recipe) -> Result<Analysis> {
+    analyze_with_progress(tensor, recipe, &mut |_, _| {})
+}
+
+/// Rows between two progress reports.
+const PROGRESS_EVERY: usize = 64;
+
+/// [`analyze`], calling `progress(rows done, rows)` as it goes.
+pub fn analyze_with_progress(tensor: &Tensor, recipe: &Recipe, progress: &mut dyn FnMut(usize, usize)) -> Result<Analysis> {
     recipe.validate()?;
     let (rows, cols) = (tensor.rows(), tensor.cols());
     if rows * cols == 0 {
@@ -39,7 +48,7 @@ pub fn analyze(tensor: &Tensor, recipe: &Recipe) -> Result<Analysis> {
     // Finiteness is checked after the run rather than by a separate pass over the tensor: a NaN
     // makes the error sums NaN, an infinity makes its scale overflow, and either way the
     // precise count and location are then looked up.
-    let run = quantize_all(tensor, recipe);
+    let run = quantize_all(tensor, recipe, progress);
     let non_finite = match &run {
         Ok(analysis) => analysis.totals.mse.is_nan(),
         Err(_) => true,
@@ -53,7 +62,7 @@ pub fn analyze(tensor: &Tensor, recipe: &Recipe) -> Result<Analysis> {
     run
 }
 
-fn quantize_all(tensor: &Tensor, recipe: &Recipe) -> Result<Analysis> {
+fn quantize_all(tensor: &Tensor, recipe: &Recipe, progress: &mut dyn FnMut(usize, usize)) -> Result<Analysis> {
     let (rows, cols) = (tensor.rows(), tensor.cols());
     let grid = IntGrid::new(recipe);
     let overflow = |row, col| move |e: crate::grid::ScaleOverflow| Error::ScaleOverflow {
@@ -101,6 +110,9 @@ fn quantize_all(tensor: &Tensor, recipe: &Recipe) -> Result<Analysis> {
             sums[index].add(x, out);
         }
         columns.add_row(x_row, out_row);
+        if (r + 1) % PROGRESS_EVERY == 0 {
+            progress(r + 1, rows);
+        }
     }
 
     let mut total = ErrorSums::default();
@@ -115,6 +127,32 @@ fn quantize_all(tensor: &Tensor, recipe: &Recipe) -> Result<Analysis> {
         columns: columns.figures(),
         cost: BitCost::of(recipe, rows, cols, tensor.dtype.bits()),
     })
+}
+
+impl Analysis {
+    /// The rows and columns (of the 2-D view) that group `index` covers.
+    pub fn group_span(&self, index: usize) -> Option<(Range<usize>, Range<usize>)> {
+        let (rows, cols) = self.dequantized.dim();
+        if index >= self.groups.rows * self.groups.per_row {
+            return None;
+        }
+        Some(match self.recipe.granularity {
+            Granularity::Tensor => (0..rows, 0..cols),
+            Granularity::Row => (index..index + 1, 0..cols),
+            Granularity::Group(g) => {
+                let (r, k) = (index / self.groups.per_row, index % self.groups.per_row);
+                (r..r + 1, k * g..((k + 1) * g).min(cols))
+            }
+        })
+    }
+
+    /// Every value the grid of group `index` can represent, in increasing order.
+    pub fn grid_points(&self, index: usize) -> Vec<f32> {
+        let grid = IntGrid::new(&self.recipe);
+        let Some(p) = self.params.get(if self.params.len() == 1 { 0 } else { index }) else { return Vec::new() };
+        let codes = grid.qmin as i32..=grid.qmax as i32;
+        codes.map(|q| (q as f32 - p.zero) * p.scale).collect()
+    }
 }
 
 #[cfg(test)]
@@ -221,6 +259,22 @@ mod tests {
         assert!(a.totals.sqnr_db.unwrap().is_finite() && a.totals.mse.is_finite());
         let plain = analyze(&tensor(2, 64, 5), &Recipe { scale_dtype: ScaleDType::F32, granularity: Granularity::Group(32), ..Recipe::default() }).unwrap();
         assert!((a.totals.sqnr_db.unwrap() - plain.totals.sqnr_db.unwrap()).abs() < 0.01);
+    }
+
+    #[test]
+    fn groups_map_back_to_their_elements_and_grids() {
+        let t = tensor(3, 300, 6);
+        let a = analyze(&t, &Recipe::default()).unwrap();
+        assert_eq!(a.group_span(4), Some((1..2, 128..256)));
+        assert_eq!(a.group_span(5), Some((1..2, 256..300)));
+        assert_eq!(a.group_span(9), None);
+        let points = a.grid_points(5);
+        assert_eq!(points.len(), 16);
+        assert!(points.contains(&0.0), "zero is exact on an asymmetric grid");
+        assert!(points.windows(2).all(|w| w[0] < w[1]));
+        let mut reported = Vec::new();
+        analyze_with_progress(&tensor(130, 8, 1), &Recipe::default(), &mut |done, all| reported.push((done, all))).unwrap();
+        assert_eq!(reported, vec![(64, 130), (128, 130)]);
     }
 
     #[test]

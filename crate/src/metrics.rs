@@ -257,6 +257,35 @@ impl ColumnFigures {
     }
 }
 
+/// Counts of values in equal-width bins over [lo, hi].
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct Histogram {
+    /// Left edge of the first bin.
+    pub lo: f32,
+    /// Right edge of the last bin.
+    pub hi: f32,
+    /// Count in each bin.
+    pub counts: Vec<u32>,
+}
+
+impl Histogram {
+    /// Bin finite values into `bins` equal bins spanning their range.
+    pub fn of<'a>(values: impl Iterator<Item = &'a f32> + Clone, bins: usize) -> Self {
+        let bins = bins.max(1);
+        let (lo, hi) = values.clone().filter(|v| v.is_finite()).fold((f32::INFINITY, f32::NEG_INFINITY), |(lo, hi), &v| (lo.min(v), hi.max(v)));
+        if lo > hi {
+            return Histogram { lo: 0.0, hi: 0.0, counts: vec![0; bins] };
+        }
+        let width = f64::from(hi) - f64::from(lo);
+        let mut counts = vec![0u32; bins];
+        for &v in values.filter(|v| v.is_finite()) {
+            let at = if width > 0.0 { ((f64::from(v) - f64::from(lo)) / width * bins as f64) as usize } else { 0 };
+            counts[at.min(bins - 1)] += 1;
+        }
+        Histogram { lo, hi, counts }
+    }
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
@@ -307,5 +336,14 @@ mod tests {
         assert_eq!(f.outliers(), vec![2]);
         assert!((f.err_rms[2] - (0.5f32).sqrt()).abs() < 1e-6);
         assert_eq!(ColumnSums::new(3).figures().outlier_score, vec![0.0; 3]);
+    }
+
+    #[test]
+    fn histograms_count_every_finite_value_once() {
+        let values = [0.0f32, 1.0, 2.0, 3.0, 4.0, f32::NAN];
+        let h = Histogram::of(values.iter(), 4);
+        assert_eq!((h.lo, h.hi, h.counts.clone()), (0.0, 4.0, vec![1, 1, 1, 2]));
+        assert_eq!(Histogram::of([5.0f32; 3].iter(), 2).counts, vec![3, 0]);
+        assert_eq!(Histogram::of([].iter(), 3).counts, vec![0, 0, 0]);
     }
 }

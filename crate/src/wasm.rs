@@ -5,7 +5,8 @@
 //! out of wasm memory). Every fallible call returns `Result<_, JsError>`; a panic hook reports
 //! anything unexpected to the console instead of an opaque "unreachable".
 
-use crate::analysis::{analyze, Analysis};
+use crate::analysis::{analyze_with_progress, Analysis};
+use crate::metrics::Histogram;
 use crate::error::Error;
 use crate::recipe::Recipe;
 use crate::report::Report;
@@ -164,8 +165,9 @@ impl TensorHandle {
         })
     }
 
-    /// Run a recipe (a plain object with any of the recipe's fields; the rest take defaults).
-    pub fn analyze(&self, recipe: JsValue) -> Result<AnalysisHandle, JsError> {
+    /// Run a recipe (a plain object with any of the recipe's fields; the rest take defaults),
+    /// calling `progress(done, total)` now and then when it is given.
+    pub fn analyze(&self, recipe: JsValue, progress: Option<js_sys::Function>) -> Result<AnalysisHandle, JsError> {
         // Through JSON text rather than serde-wasm-bindgen, which skips unknown keys: a
         // misspelt field must be an error, not a silent default.
         let recipe: Recipe = if recipe.is_undefined() || recipe.is_null() {
@@ -174,17 +176,36 @@ impl TensorHandle {
             let text = js_sys::JSON::stringify(&recipe).ok().and_then(|s| s.as_string()).unwrap_or_default();
             serde_json::from_str(&text).map_err(|e| JsError::new(&format!("invalid recipe: {e}")))?
         };
-        let analysis = analyze(&self.tensor, &recipe).map_err(js_error)?;
+        let mut report = |done: usize, total: usize| {
+            if let Some(f) = &progress {
+                let _ = f.call2(&JsValue::NULL, &JsValue::from(done as f64), &JsValue::from(total as f64));
+            }
+        };
+        let analysis = analyze_with_progress(&self.tensor, &recipe, &mut report).map_err(js_error)?;
         let summary = to_js(&Report::new(&self.tensor, &analysis).without_group_lists())?;
         let report_json = Report::new(&self.tensor, &analysis).to_json();
         Ok(AnalysisHandle { analysis, summary, report_json, shape: self.tensor.shape.clone() })
     }
 
-    /// Values of one row, for the histogram.
-    #[wasm_bindgen(js_name = rowValues)]
-    pub fn row_values(&self, row: usize) -> Result<js_sys::Float32Array, JsError> {
-        let row = self.tensor.values.row(row.min(self.tensor.rows().saturating_sub(1)));
-        Ok(js_sys::Float32Array::from(row.as_slice().ok_or_else(|| JsError::new("row is not contiguous"))?))
+    /// Histogram of the values of group `index` of `analysis`, with the grid points of that
+    /// group: `{lo, hi, counts, grid}`.
+    #[wasm_bindgen(js_name = groupHistogram)]
+    pub fn group_histogram(&self, analysis: &AnalysisHandle, index: usize, bins: usize) -> Result<JsValue, JsError> {
+        #[derive(Serialize)]
+        struct GroupHistogram {
+            histogram: Histogram,
+            grid: Vec<f32>,
+            rows: [usize; 2],
+            cols: [usize; 2],
+        }
+        let (rows, cols) = analysis.analysis.group_span(index).ok_or_else(|| JsError::new("no such group"))?;
+        let values = self.tensor.values.slice(ndarray::s![rows.clone(), cols.clone()]);
+        to_js(&GroupHistogram {
+            histogram: Histogram::of(values.iter(), bins),
+            grid: analysis.analysis.grid_points(index),
+            rows: [rows.start, rows.end],
+            cols: [cols.start, cols.end],
+        })
     }
 }
 
@@ -244,21 +265,6 @@ impl AnalysisHandle {
     #[wasm_bindgen(js_name = columnOutlierScore)]
     pub fn column_outlier_score(&self) -> js_sys::Float32Array {
         js_sys::Float32Array::from(self.analysis.columns.outlier_score.as_slice())
-    }
-
-    /// Scale and zero point of one group (row-major index), for drawing its grid.
-    #[wasm_bindgen(js_name = groupGrid)]
-    pub fn group_grid(&self, index: usize) -> Result<JsValue, JsError> {
-        #[derive(Serialize)]
-        struct Grid {
-            scale: f32,
-            zero: f32,
-            qmin: f32,
-            qmax: f32,
-        }
-        let p = self.analysis.params.get(index).ok_or_else(|| JsError::new("no such group"))?;
-        let grid = crate::grid::IntGrid::new(&self.analysis.recipe);
-        to_js(&Grid { scale: p.scale, zero: p.zero, qmin: grid.qmin, qmax: grid.qmax })
     }
 
     /// The dequantized tensor as a float32 `.npy` file in the source's stored shape.
