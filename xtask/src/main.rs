@@ -133,7 +133,7 @@ fn build() -> Result<PathBuf> {
     std::fs::create_dir_all(staging.join("pkg")).map_err(|e| e.to_string())?;
     let wasm = root.join("target/wasm32-unknown-unknown/release/bitloupe.wasm");
     run(Command::new("wasm-bindgen")
-        .args(["--target", "web", "--no-typescript", "--out-dir"])
+        .args(["--target", "no-modules", "--no-typescript", "--out-dir"])
         .arg(staging.join("pkg"))
         .arg(&wasm))?;
     copy_dir(&root.join("www"), &staging)?;

@@ -1,0 +1,187 @@
+// End-to-end tests of the page in headless Chromium.
+import { test, before, after } from 'node:test';
+import assert from 'node:assert/strict';
+import { launch, openPage, fixture, shot, dropFile, waitForAnalysis, sameOrigin } from './harness.mjs';
+
+let browser;
+before(async () => { browser = await launch(); });
+after(async () => { await browser?.close(); });
+
+async function withDemo() {
+  const session = await openPage(browser);
+  await session.page.click('#load-demo-big');
+  await waitForAnalysis(session.page);
+  return session;
+}
+
+test('the empty page invites a first step and loads the demo tensor', async () => {
+  const { page, requests, errors, context } = await openPage(browser);
+  assert.match(await page.textContent('#status'), /demo tensor or drop a file/);
+  await shot(page, '01-empty');
+  await page.click('#load-demo-big');
+  const status = await waitForAnalysis(page);
+  assert.match(status, /int4 asym g128 f16 on demo/);
+  // Source: 4 + (16 + 4)/128 bits per weight (foundation issue's worked example).
+  assert.equal(await page.textContent('#fig-bpw'), '4.1563');
+  assert.match(await page.textContent('#fig-sqnr'), /dB$/);
+  assert.match(await page.textContent('#caution'), /proxy/);
+  assert.match(await page.textContent('#column-info'), /outlier column/);
+  assert.match(await page.textContent('#hist-caption'), /16 grid levels/);
+  await shot(page, '02-demo');
+  assert.deepEqual(errors, []);
+  assert.deepEqual(requests.filter((u) => !sameOrigin(u)), [], 'no request left the page origin');
+  await context.close();
+});
+
+test('changing the recipe re-runs the analysis and changes the figures', async () => {
+  const { page, context } = await withDemo();
+  const sqnr4 = await page.textContent('#fig-sqnr');
+  const before = await page.textContent('#status');
+  await page.selectOption('#bits', '2');
+  await waitForAnalysis(page, before);
+  assert.notEqual(await page.textContent('#fig-sqnr'), sqnr4);
+  assert.equal(await page.textContent('#fig-bpw'), '2.1406', '2 + (16 + 2)/128');
+  const before2 = await page.textContent('#status');
+  await page.selectOption('#granularity', 'row');
+  await page.selectOption('#symmetric', 'true');
+  await waitForAnalysis(page, before2);
+  await page.waitForFunction(() => document.getElementById('status').textContent.includes('sym per-row'));
+  assert.match(await page.textContent('#map-caption'), /one group per row/);
+  await page.selectOption('#map-metric', 'mse');
+  await shot(page, '03-recipe-changed');
+  await context.close();
+});
+
+test('hovering the error map shows a group and clicking picks it', async () => {
+  const { page, context } = await withDemo();
+  const box = await page.locator('#error-map').boundingBox();
+  await page.mouse.move(box.x + box.width * 0.3, box.y + box.height * 0.5);
+  await page.waitForSelector('#map-tooltip:not([hidden])');
+  assert.match(await page.textContent('#map-tooltip'), /row \d+ · columns \d+–\d+/);
+  await shot(page, '04-map-hover');
+  await page.mouse.click(box.x + box.width * 0.3, box.y + box.height * 0.5);
+  await page.waitForFunction(() => /row \d+, columns/.test(document.getElementById('hist-caption').textContent));
+  await page.focus('#error-map');
+  await page.keyboard.press('+');
+  await page.keyboard.press('0');
+  await context.close();
+});
+
+test('a dropped safetensors file lists its tensors and opens the chosen one', async () => {
+  const { page, context } = await withDemo();
+  await dropFile(page, 'multi.safetensors', fixture('multi.safetensors'));
+  await page.waitForSelector('#tensor-list:not([hidden])');
+  assert.equal(await page.locator('#tensor-rows tr').count(), 8);
+  await page.fill('#tensor-filter', 'block.0');
+  assert.equal(await page.locator('#tensor-rows tr').count(), 3);
+  const before = await page.textContent('#status');
+  await page.click('text=block.0.mlp.up.weight');
+  await waitForAnalysis(page, before);
+  assert.match(await page.textContent('#tensor-info'), /6 × 5/);
+  await page.selectOption('#granularity', 'tensor');
+  await page.waitForFunction(() => document.getElementById('status').textContent.includes('per-tensor'));
+  await shot(page, '05-safetensors');
+  await context.close();
+});
+
+test('a pasted matrix is analysed and a broken paste is explained', async () => {
+  const { page, context } = await withDemo();
+  await page.click('#paste-box summary');
+  await page.fill('#paste', '[[0.5, -1.25, 2.0],\n [0.75, 3.5, -0.1]]');
+  const before = await page.textContent('#status');
+  await page.click('#use-paste');
+  await waitForAnalysis(page, before);
+  assert.match(await page.textContent('#tensor-info'), /2 × 3/);
+  await page.fill('#paste', '1 2 3\n4 5\n');
+  await page.click('#use-paste');
+  await page.waitForSelector('#input-message:not([hidden])');
+  assert.match(await page.textContent('#input-message'), /line 2, column 1/);
+  assert.match(await page.textContent('#tensor-info'), /2 × 3/, 'the pasted tensor stays');
+  await shot(page, '06-paste-error');
+  await context.close();
+});
+
+test('a corrupt file gets one message and the earlier results stay usable', async () => {
+  const { page, context, requests } = await withDemo();
+  const bpw = await page.textContent('#fig-bpw');
+  const npy = fixture('quant_weight.npy');
+  await dropFile(page, 'cut.npy', npy.subarray(0, npy.length - 1000));
+  await page.waitForSelector('#input-message:not([hidden])');
+  assert.match(await page.textContent('#input-message'), /truncated/);
+  assert.equal(await page.textContent('#fig-bpw'), bpw);
+  assert.match(await page.textContent('#tensor-info'), /1024 × 4096/);
+  await shot(page, '07-corrupt-file');
+  // The earlier tensor still answers: a recipe change still works.
+  const before = await page.textContent('#status');
+  await page.selectOption('#bits', '3');
+  await waitForAnalysis(page, before);
+  await page.setInputFiles('#file-input', { name: 'garbage.safetensors', mimeType: 'application/octet-stream', buffer: Buffer.from('not a tensor file at all') });
+  await page.waitForFunction(() => /garbage.safetensors/.test(document.getElementById('input-message').textContent));
+  assert.deepEqual(requests.filter((u) => !sameOrigin(u)), []);
+  await context.close();
+});
+
+test('a NaN tensor is refused with its count and place, and the old one stays', async () => {
+  const { page, context } = await withDemo();
+  await page.click('#paste-box summary');
+  await page.fill('#paste', '1 2\nnan 4\n');
+  await page.click('#use-paste');
+  await page.waitForSelector('#input-message:not([hidden])');
+  assert.match(await page.textContent('#input-message'), /1 NaN and 0 infinite values \(first at row 1, column 0\)/);
+  assert.match(await page.textContent('#tensor-info'), /1024 × 4096/);
+  await context.close();
+});
+
+test('a long run can be cancelled and the previous results stay', async () => {
+  const { page, context } = await withDemo();
+  const sqnr = await page.textContent('#fig-sqnr');
+  // A 4096 × 4096 tensor made in the page, so that its analysis takes long enough to cancel.
+  await page.evaluate(() => {
+    const rows = 4096, cols = 4096;
+    const header = "{'descr': '<f4', 'fortran_order': False, 'shape': (4096, 4096), }";
+    const padded = header + ' '.repeat(64 - ((10 + header.length + 1) % 64)) + '\n';
+    const head = new Uint8Array(10 + padded.length);
+    head.set([0x93, 78, 85, 77, 80, 89, 1, 0, padded.length & 255, padded.length >> 8]);
+    head.set(new TextEncoder().encode(padded), 10);
+    const data = new Float32Array(rows * cols);
+    for (let i = 0; i < data.length; i++) data[i] = Math.sin(i * 0.37) * 0.02;
+    const file = new File([head, data], 'big.npy');
+    const transfer = new DataTransfer();
+    transfer.items.add(file);
+    window.dispatchEvent(new DragEvent('drop', { dataTransfer: transfer, bubbles: true, cancelable: true }));
+  });
+  await page.waitForSelector('#busy:not([hidden])', { timeout: 20_000 });
+  await page.click('#cancel');
+  await page.waitForFunction(() => document.getElementById('status').textContent.startsWith('Cancelled'));
+  assert.equal(await page.textContent('#fig-sqnr'), sqnr);
+  assert.match(await page.textContent('#tensor-info'), /1024 × 4096/);
+  await shot(page, '08-cancelled');
+  // The restarted worker holds the demo tensor again.
+  const before = await page.textContent('#status');
+  await page.selectOption('#bits', '5');
+  const status = await waitForAnalysis(page, before);
+  assert.match(status, /int5 asym g128 f16 on demo/);
+  await context.close();
+});
+
+test('after the first visit the page works offline', async () => {
+  const { page, context } = await openPage(browser);
+  await page.evaluate(() => navigator.serviceWorker.ready);
+  await page.reload();
+  await page.waitForFunction(() => navigator.serviceWorker.controller !== null);
+  await context.setOffline(true);
+  await page.reload();
+  await page.waitForSelector('body[data-ready=true]', { timeout: 30_000 });
+  await page.click('#load-demo-big');
+  await waitForAnalysis(page);
+  await shot(page, '09-offline');
+  await context.close();
+});
+
+test('dark mode and a projector-sized window stay readable', async () => {
+  const { page, context } = await openPage(browser, { viewport: { width: 1024, height: 768 }, colorScheme: 'dark' });
+  await page.click('#load-demo-big');
+  await waitForAnalysis(page);
+  await shot(page, '10-dark-1024');
+  await context.close();
+});

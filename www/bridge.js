@@ -1,0 +1,82 @@
+// The main thread's side of the compute worker: promises for requests, progress callbacks, and
+// cancel. The core runs synchronously inside the worker, so cancel ends the worker and starts a
+// fresh one; the bridge then replays the last successful open and analysis there, so that the
+// tensor and results on screen stay usable.
+
+export class Cancelled extends Error {
+  constructor() {
+    super('cancelled');
+    this.name = 'Cancelled';
+  }
+}
+
+export class CoreBridge {
+  /** @param {() => Worker} makeWorker @param {string | ArrayBuffer} wasm */
+  constructor(makeWorker, wasm) {
+    this.makeWorker = makeWorker;
+    this.wasm = wasm;
+    this.nextId = 1;
+    this.pending = new Map();
+    this.remembered = { open: null, analyze: null };
+    this.onRestart = () => {};
+  }
+
+  /** Start the worker; resolves with what the core's init returns (its defaults). */
+  async start() {
+    this.worker = this.makeWorker();
+    this.worker.onmessage = (event) => this.receive(event.data);
+    this.worker.onerror = (event) => {
+      event.preventDefault();
+      this.restart(new Error('the compute worker stopped unexpectedly; the last tensor was reloaded'));
+    };
+    return this.send('init', { wasm: this.wasm });
+  }
+
+  receive(message) {
+    const entry = this.pending.get(message.id);
+    if (!entry) return;
+    if (message.progress) {
+      entry.onProgress?.(message.progress[0], message.progress[1]);
+      return;
+    }
+    this.pending.delete(message.id);
+    if (message.ok) entry.resolve(message.result);
+    else entry.reject(new Error(message.error));
+  }
+
+  send(type, payload = {}, { onProgress, transfer = [] } = {}) {
+    const id = this.nextId++;
+    return new Promise((resolve, reject) => {
+      this.pending.set(id, { resolve, reject, onProgress });
+      this.worker.postMessage({ id, type, ...payload }, transfer);
+    });
+  }
+
+  /**
+   * A request. `remember: 'open' | 'analyze'` marks one that sets the worker's state, to be
+   * replayed after a cancel.
+   */
+  async request(type, payload = {}, { onProgress, remember } = {}) {
+    const result = await this.send(type, payload, { onProgress });
+    if (remember === 'open') this.remembered = { open: { type, payload }, analyze: null };
+    if (remember === 'analyze') this.remembered.analyze = { type, payload };
+    return result;
+  }
+
+  /** Stop whatever runs now; its promise rejects with Cancelled. */
+  cancel() {
+    return this.restart(new Cancelled());
+  }
+
+  async restart(reason) {
+    this.worker.terminate();
+    const waiting = [...this.pending.values()];
+    this.pending.clear();
+    waiting.forEach((entry) => entry.reject(reason));
+    await this.start();
+    const { open, analyze } = this.remembered;
+    if (open) await this.send(open.type, open.payload).catch(() => {});
+    if (analyze) await this.send(analyze.type, analyze.payload).catch(() => {});
+    this.onRestart(reason);
+  }
+}

@@ -1,0 +1,23 @@
+// A perceptually uniform sequential colour scale (viridis, whose published colour table is in the
+// public domain), sampled at 11 stops and interpolated linearly in sRGB.
+
+const STOPS = [
+  [68, 1, 84], [72, 36, 117], [65, 68, 135], [53, 95, 141], [42, 120, 142], [33, 145, 140],
+  [34, 168, 132], [68, 191, 112], [122, 209, 81], [189, 223, 38], [253, 231, 37],
+];
+
+/** A 256-entry lookup table of [r, g, b]. */
+export const TABLE = Array.from({ length: 256 }, (_, i) => {
+  const t = (i / 255) * (STOPS.length - 1);
+  const k = Math.min(Math.floor(t), STOPS.length - 2);
+  const f = t - k;
+  return STOPS[k].map((c, j) => Math.round(c + f * (STOPS[k + 1][j] - c)));
+});
+
+export function css(t) {
+  const [r, g, b] = TABLE[Math.max(0, Math.min(255, Math.round(t * 255)))];
+  return `rgb(${r} ${g} ${b})`;
+}
+
+/** CSS gradient of the whole scale, for legends. */
+export const GRADIENT = `linear-gradient(to right, ${STOPS.map((c) => `rgb(${c.join(' ')})`).join(', ')})`;

@@ -1,0 +1,36 @@
+// Number formatting for the page, in the trade's plain terms.
+
+export function bytes(n) {
+  const units = ['bytes', 'KiB', 'MiB', 'GiB', 'TiB'];
+  let value = Number(n);
+  let unit = 0;
+  while (value >= 1024 && unit < units.length - 1) {
+    value /= 1024;
+    unit += 1;
+  }
+  return unit === 0 ? `${value} bytes` : `${value.toFixed(value < 10 ? 2 : 1)} ${units[unit]}`;
+}
+
+export function sci(x, digits = 3) {
+  if (x === null || x === undefined || Number.isNaN(x)) return '–';
+  if (x === 0) return '0';
+  const abs = Math.abs(x);
+  return abs >= 1e-2 && abs < 1e4 ? x.toPrecision(digits) : x.toExponential(digits - 1);
+}
+
+export function count(n) {
+  return Number(n).toLocaleString('en-US');
+}
+
+export function shape(dims) {
+  return dims.length ? dims.join(' × ') : 'scalar';
+}
+
+export function percent(x) {
+  return `${(100 * x).toPrecision(3)} %`;
+}
+
+/** "1 group", "2 groups". */
+export function plural(n, noun) {
+  return `${count(n)} ${noun}${Number(n) === 1 ? '' : 's'}`;
+}

@@ -1,0 +1,110 @@
+// The page's compute worker: it owns the wasm instance, the open tensor and its latest analysis.
+// Requests arrive as {id, type, ...}; replies are {id, ok, result} or {id, ok: false, error};
+// progress goes out as {id, progress: [done, total]}. Bulk figures are transferred, not copied.
+/* global wasm_bindgen, importScripts */
+'use strict';
+
+if (typeof wasm_bindgen === 'undefined') importScripts('pkg/bitloupe.js');
+
+let core = null;
+let tensor = null;
+let analysis = null;
+
+function replace(handle, next) {
+  if (handle) handle.free();
+  return next;
+}
+
+/** Plain figures of an analysis, with its typed arrays listed for transfer. */
+function analysisResult(a) {
+  const arrays = {
+    groupMse: a.groupMse(),
+    groupRelErr: a.groupRelErr(),
+    groupMaxErr: a.groupMaxErr(),
+    columnMaxAbs: a.columnMaxAbs(),
+    columnErrRms: a.columnErrRms(),
+    columnOutlierScore: a.columnOutlierScore(),
+  };
+  return { value: { summary: a.summary(), ...arrays }, transfer: Object.values(arrays).map((x) => x.buffer) };
+}
+
+/**
+ * Open a tensor and run the current recipe on it as one step: a tensor that cannot be analysed
+ * because of NaN or infinite values is refused like a bad file, so the previous one stays.
+ */
+function openAndAnalyze(open, recipe, progress) {
+  const next = open();
+  const info = next.info();
+  let nextAnalysis = null;
+  let recipeError = null;
+  try {
+    nextAnalysis = next.analyze(recipe, progress);
+  } catch (err) {
+    if (info.nan + info.inf > 0) {
+      next.free();
+      throw err;
+    }
+    recipeError = message(err);
+  }
+  tensor = replace(tensor, next);
+  analysis = replace(analysis, nextAnalysis);
+  if (!nextAnalysis) return { value: { info, recipeError } };
+  const out = analysisResult(nextAnalysis);
+  return { value: { info, ...out.value }, transfer: out.transfer };
+}
+
+function message(err) {
+  return String((err && err.message) || err);
+}
+
+const handlers = {
+  async init({ wasm }) {
+    await wasm_bindgen({ module_or_path: wasm });
+    core = wasm_bindgen;
+    return { value: { defaults: core.recipeDefaults() } };
+  },
+  list({ file, bf16 }) {
+    return { value: core.listFile(file, bf16) };
+  },
+  openDemo({ recipe }, progress) {
+    return openAndAnalyze(() => core.demoWeight(), recipe, progress);
+  },
+  openFile({ file, name, bf16, recipe }, progress) {
+    return openAndAnalyze(() => core.openFile(file, name ?? undefined, bf16), recipe, progress);
+  },
+  openText({ text, recipe }, progress) {
+    return openAndAnalyze(() => core.parseText(text), recipe, progress);
+  },
+  analyze({ recipe }, progress) {
+    if (!tensor) throw new Error('open a tensor first');
+    const next = tensor.analyze(recipe, progress);
+    analysis = replace(analysis, next);
+    return analysisResult(next);
+  },
+  histogram({ index, bins }) {
+    if (!tensor || !analysis) throw new Error('no analysis yet');
+    return { value: tensor.groupHistogram(analysis, index, bins) };
+  },
+  reportJson() {
+    if (!analysis) throw new Error('no analysis yet');
+    return { value: analysis.reportJson() };
+  },
+  dequantizedNpy() {
+    if (!analysis) throw new Error('no analysis yet');
+    const bytes = analysis.dequantizedNpy();
+    return { value: bytes, transfer: [bytes.buffer] };
+  },
+};
+
+self.onmessage = async (event) => {
+  const { id, type, ...args } = event.data;
+  const progress = (done, total) => self.postMessage({ id, progress: [done, total] });
+  try {
+    const handler = handlers[type];
+    if (!handler) throw new Error(`unknown request ${type}`);
+    const out = await handler(args, progress);
+    self.postMessage({ id, ok: true, result: out.value }, out.transfer || []);
+  } catch (err) {
+    self.postMessage({ id, ok: false, error: message(err) });
+  }
+};
