@@ -13,6 +13,14 @@ const GROUP_CHOICES = [8, 16, 32, 64, 128, 256, 512, 1024, 2048, 4096];
 const SHOW_PROGRESS_AFTER_MS = 150;
 const HISTOGRAM_BINS = 64;
 
+/** Timings of finished steps, read by the in-browser benchmark (bench/page.mjs). */
+const timings = (window.bitloupeTimings = []);
+
+/** Record how long a step took once the browser has painted its result. */
+function recordTiming(what, started) {
+  requestAnimationFrame(() => timings.push({ what, ms: performance.now() - started }));
+}
+
 const state = {
   defaults: null,
   info: null,
@@ -111,6 +119,7 @@ function setRecipe(recipe) {
 
 async function open(label, type, payload) {
   showMessage('input-message', '');
+  const started = performance.now();
   try {
     const result = await task(label, type, { ...payload, recipe: readRecipe() }, 'open');
     if (!result) return;
@@ -120,6 +129,7 @@ async function open(label, type, payload) {
       showRecipeError(result.recipeError);
     } else {
       showResults(result, { fresh: true });
+      recordTiming('open-to-drawn', started);
     }
   } catch (err) {
     showMessage('input-message', `Could not open it: ${err.message}. The tensor you had stays open.`);
@@ -135,6 +145,7 @@ async function openFile(file) {
     return open(`Reading ${file.name}`, 'openText', { text });
   }
   const bf16 = $('bf16').checked;
+  const started = performance.now();
   try {
     const listing = await task(`Reading the header of ${file.name}`, 'list', { file, bf16 });
     if (!listing) return;
@@ -146,6 +157,7 @@ async function openFile(file) {
     }
     showListing(file, listing);
     $('status').textContent = `${listing.entries.length} tensors in ${file.name}: choose one.`;
+    recordTiming('list', started);
   } catch (err) {
     showMessage('input-message', `Could not open ${file.name}: ${err.message}. The tensor you had stays open.`);
   }
@@ -256,9 +268,13 @@ async function analyze() {
   }
   analysing = true;
   showMessage('recipe-message', '');
+  const started = performance.now();
   try {
     const result = await task('Quantizing', 'analyze', { recipe: readRecipe() }, 'analyze');
-    if (result) showResults(result, { fresh: false });
+    if (result) {
+      showResults(result, { fresh: false });
+      recordTiming('recipe-to-drawn', started);
+    }
   } catch (err) {
     showRecipeError(err.message);
   } finally {

@@ -21,7 +21,7 @@ fn main() {
         Some("serve") => serve(&args[1..]),
         Some("build") => build().map(|_| ()),
         Some("test") => test(),
-        Some("bench") => run(Command::new("cargo").args(["bench", "-p", "bitloupe"]).current_dir(root())),
+        Some("bench") => bench(),
         _ => Err("usage: cargo xtask serve [--port N] | build | test | bench".into()),
     };
     if let Err(message) = result {
@@ -281,6 +281,23 @@ fn test() -> Result {
         .current_dir(&root))?;
     eprintln!("\nscreenshots of the page's main states: {}", shots.display());
     Ok(())
+}
+
+/// The native benchmarks, then the in-browser benchmark against a freshly built page.
+fn bench() -> Result {
+    let root = root();
+    step("native benchmarks (divan)");
+    run(Command::new("cargo").args(["bench", "-p", "bitloupe"]).current_dir(&root))?;
+    ensure_chromium()?;
+    let dist = build()?;
+    step("in-browser benchmark (headless Chromium)");
+    let port = free_port()?;
+    std::thread::spawn(move || serve_dir(&dist, port));
+    run(Command::new("node")
+        .arg(root.join("bench/page.mjs"))
+        .env("BITLOUPE_URL", format!("http://127.0.0.1:{port}/"))
+        .env("BITLOUPE_CHROMIUM", CHROMIUM)
+        .current_dir(&root))
 }
 
 fn free_port() -> Result<u16> {
