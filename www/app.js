@@ -23,6 +23,7 @@ function recordTiming(what, started) {
 
 const state = {
   defaults: null,
+  statusText: '',
   info: null,
   result: null,
   listing: null,
@@ -133,7 +134,7 @@ async function open(label, type, payload) {
     }
   } catch (err) {
     showMessage('input-message', `Could not open it: ${err.message}. The tensor you had stays open.`);
-    $('status').textContent = state.result ? 'Showing the previous tensor.' : 'Load the demo tensor or drop a file to begin.';
+    restoreStatus();
   }
 }
 
@@ -160,6 +161,7 @@ async function openFile(file) {
     recordTiming('list', started);
   } catch (err) {
     showMessage('input-message', `Could not open ${file.name}: ${err.message}. The tensor you had stays open.`);
+    restoreStatus();
   }
 }
 
@@ -232,6 +234,11 @@ window.addEventListener('drop', (e) => {
   if (file) openFile(file);
 });
 
+/** After a failed step, show again what the status said about the results on screen. */
+function restoreStatus() {
+  $('status').textContent = state.statusText || 'Load the demo tensor or drop a file to begin.';
+}
+
 function showInfo(info) {
   const dl = $('tensor-info');
   const facts = [
@@ -301,7 +308,8 @@ function showResults(result, { fresh }) {
   $('empty').hidden = true;
   $('report').hidden = false;
   showMessage('recipe-message', '');
-  $('status').textContent = `${s.label} on ${s.tensor.name || 'the tensor'} · analysed in ${Math.round(result.elapsedMs)} ms`;
+  state.statusText = `${s.label} on ${s.tensor.name || 'the tensor'} · analysed in ${Math.round(result.elapsedMs)} ms`;
+  $('status').textContent = state.statusText;
 
   $('fig-bpw').textContent = s.bits_per_weight.toFixed(4);
   $('fig-bpw-sub').textContent = `${s.recipe.bits}-bit codes + scales${s.recipe.symmetric ? '' : ' + zero points'}`;
@@ -314,6 +322,7 @@ function showResults(result, { fresh }) {
   drawMap(!fresh);
   const outlier = Uint8Array.from(result.columnOutlierScore, (v) => (v >= 4 ? 1 : 0));
   profile.setData({ maxAbs: result.columnMaxAbs, errRms: result.columnErrRms, outlier });
+  showOutlierList(s);
   drawBudget(s.cost);
   $('caution').textContent = s.caution;
 
@@ -431,6 +440,26 @@ function selectColumn(col) {
   }
   const score = r.columnOutlierScore[col];
   $('column-info').textContent = `Column ${col}: max |w| ${fmt.sci(r.columnMaxAbs[col])}, error RMS ${fmt.sci(r.columnErrRms[col])}, ${score.toFixed(1)}× the median column's max |w|${score >= 4 ? ' — an outlier column' : ''}.`;
+}
+
+function showOutlierList(summary) {
+  const list = $('outlier-list');
+  list.replaceChildren();
+  if (!summary.outlier_column_count) {
+    list.textContent = 'No outlier columns: no input column reaches 4× the median column\'s max |w|.';
+    return;
+  }
+  const shown = summary.outlier_columns.length;
+  list.append(`${fmt.plural(summary.outlier_column_count, 'outlier column')}${shown < summary.outlier_column_count ? ` (the ${shown} largest shown)` : ''}: `);
+  for (const c of summary.outlier_columns) {
+    const b = document.createElement('button');
+    b.type = 'button';
+    b.className = 'chip';
+    b.textContent = `${c.column}`;
+    b.title = `${c.score.toFixed(1)}× the median column's max |w|`;
+    b.addEventListener('click', () => selectColumn(c.column));
+    list.append(b, ' ');
+  }
 }
 
 function drawBudget(cost) {

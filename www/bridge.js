@@ -40,8 +40,12 @@ export class CoreBridge {
       return;
     }
     this.pending.delete(message.id);
-    if (message.ok) entry.resolve(message.result);
-    else entry.reject(new Error(message.error));
+    if (message.ok) {
+      entry.resolve(message.result);
+      return;
+    }
+    entry.reject(new Error(message.error));
+    if (message.fatal) this.restart(new Error('the compute worker was restarted and the last tensor reloaded'));
   }
 
   send(type, payload = {}, { onProgress, transfer = [] } = {}) {

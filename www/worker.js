@@ -105,6 +105,13 @@ self.onmessage = async (event) => {
     const out = await handler(args, progress);
     self.postMessage({ id, ok: true, result: out.value }, out.transfer || []);
   } catch (err) {
-    self.postMessage({ id, ok: false, error: message(err) });
+    // A trap (a panic, or memory exhausted) leaves the wasm instance unusable: report it, and
+    // let the bridge start a fresh worker.
+    const fatal = err instanceof WebAssembly.RuntimeError;
+    const panic = fatal && core ? core.takePanicMessage() : null;
+    const text = fatal
+      ? `the computation failed inside the core (${panic || message(err)}); this often means the browser ran out of memory for this tensor`
+      : message(err);
+    self.postMessage({ id, ok: false, error: text, fatal });
   }
 };

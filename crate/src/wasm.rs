@@ -24,10 +24,24 @@ fn to_js<T: Serialize + ?Sized>(value: &T) -> Result<JsValue, JsError> {
         .map_err(|e| JsError::new(&e.to_string()))
 }
 
-/// Install the panic hook once, when the module starts.
+thread_local! {
+    static LAST_PANIC: std::cell::RefCell<Option<String>> = const { std::cell::RefCell::new(None) };
+}
+
+/// Install the panic hook when the module starts: it logs to the console and keeps the message
+/// so the worker can show it on the page.
 #[wasm_bindgen(start)]
 pub fn start() {
-    console_error_panic_hook::set_once();
+    std::panic::set_hook(Box::new(|info| {
+        console_error_panic_hook::hook(info);
+        LAST_PANIC.with(|last| *last.borrow_mut() = Some(info.to_string()));
+    }));
+}
+
+/// The message of the last panic, if one happened since the last call.
+#[wasm_bindgen(js_name = takePanicMessage)]
+pub fn take_panic_message() -> Option<String> {
+    LAST_PANIC.with(|last| last.borrow_mut().take())
 }
 
 /// The default recipe and the allowed ranges: the page builds its controls from these.

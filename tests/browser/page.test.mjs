@@ -1,6 +1,7 @@
 // End-to-end tests of the page in headless Chromium.
 import { test, before, after } from 'node:test';
 import assert from 'node:assert/strict';
+import { pathToFileURL } from 'node:url';
 import { launch, openPage, fixture, shot, dropFile, waitForAnalysis, sameOrigin } from './harness.mjs';
 
 let browser;
@@ -109,6 +110,7 @@ test('a corrupt file gets one message and the earlier results stay usable', asyn
   await page.waitForSelector('#input-message:not([hidden])');
   assert.match(await page.textContent('#input-message'), /truncated/);
   assert.equal(await page.textContent('#fig-bpw'), bpw);
+  assert.match(await page.textContent('#status'), /int4 asym g128 f16 on demo/, 'the status describes the results on screen');
   assert.match(await page.textContent('#tensor-info'), /1024 × 4096/);
   await shot(page, '07-corrupt-file');
   // The earlier tensor still answers: a recipe change still works.
@@ -183,5 +185,22 @@ test('dark mode and a projector-sized window stay readable', async () => {
   await page.click('#load-demo-big');
   await waitForAnalysis(page);
   await shot(page, '10-dark-1024');
+  await context.close();
+});
+
+test('the single-file page works opened straight from disk', async () => {
+  const file = process.env.BITLOUPE_SINGLE_FILE || 'dist/bitloupe.html';
+  const context = await browser.newContext({ viewport: { width: 1280, height: 900 } });
+  const page = await context.newPage();
+  const requests = [];
+  context.on('request', (r) => requests.push(r.url()));
+  await page.goto(pathToFileURL(file).href);
+  await page.waitForSelector('body[data-ready=true]', { timeout: 30_000 });
+  await page.click('#load-demo-big');
+  await waitForAnalysis(page);
+  assert.equal(await page.textContent('#fig-bpw'), '4.1563');
+  const outside = requests.filter((u) => !u.startsWith('blob:') && !u.startsWith('data:') && u !== pathToFileURL(file).href);
+  assert.deepEqual(outside, [], 'the single file loads nothing but itself');
+  await shot(page, '11-single-file');
   await context.close();
 });

@@ -143,11 +143,93 @@ fn build() -> Result<PathBuf> {
         std::fs::copy(root.join("node_modules").join(from), vendor.join(to)).map_err(|e| format!("{from}: {e}"))?;
     }
     write_precache_list(&staging)?;
+    write_single_file(&staging)?;
     // Replace dist/ only once the new build is complete.
     let _ = std::fs::remove_dir_all(&dist);
     std::fs::rename(&staging, &dist).map_err(|e| format!("dist: {e}"))?;
     eprintln!("page built in {}", dist.display());
     Ok(dist)
+}
+
+/// Allows what the single file needs when opened from disk: its own inline scripts and the blob:
+/// URLs it makes of them, and nothing that reaches a network.
+const SINGLE_FILE_CSP: &str = "default-src 'none'; script-src 'unsafe-inline' 'wasm-unsafe-eval' blob:; \
+    worker-src blob:; style-src 'unsafe-inline'; img-src data: blob:; connect-src 'none'; \
+    object-src 'none'; base-uri 'none'; form-action 'none'";
+
+/// Inlined into the single file: turns the bundled sources into blob: URLs (rewriting the
+/// modules' relative imports), builds the worker from the wasm glue plus `worker.js`, and starts
+/// the page with the wasm bytes it carries.
+const SINGLE_FILE_LOADER: &str = r#"
+(() => {
+  const bundle = JSON.parse(document.getElementById('bitloupe-bundle').textContent);
+  const blobUrl = (text) => URL.createObjectURL(new Blob([text], { type: 'text/javascript' }));
+  const style = document.createElement('style');
+  style.textContent = bundle.css;
+  document.head.append(style);
+  const wasm = Uint8Array.from(atob(bundle.wasm), (c) => c.charCodeAt(0));
+  const workerUrl = blobUrl(bundle.glue + '\n' + bundle.worker);
+  window.BITLOUPE_CONFIG = { makeWorker: () => new Worker(workerUrl), wasm, noServiceWorker: true };
+  const urls = {};
+  const moduleUrl = (name) => urls[name] || (urls[name] = blobUrl(
+    bundle.modules[name].replace(/from '\.\/([\w.-]+)'/g, (_, dep) => `from '${moduleUrl(dep)}'`)));
+  const charts = document.createElement('script');
+  charts.src = blobUrl(bundle.charts);
+  charts.onload = () => import(moduleUrl('app.js'));
+  document.head.append(charts);
+})();
+"#;
+
+/// Write `bitloupe.html`: the whole page, wasm and scripts inlined, that works opened from disk.
+fn write_single_file(dist: &Path) -> Result {
+    use base64::Engine;
+    let read = |rel: &str| std::fs::read_to_string(dist.join(rel)).map_err(|e| format!("{rel}: {e}"));
+    let mut modules = serde_json::Map::new();
+    for entry in std::fs::read_dir(dist).map_err(|e| e.to_string())? {
+        let name = entry.map_err(|e| e.to_string())?.file_name().to_string_lossy().into_owned();
+        if name.ends_with(".js") && !["worker.js", "sw.js", "precache.js"].contains(&name.as_str()) {
+            modules.insert(name.clone(), read(&name)?.into());
+        }
+    }
+    let wasm = std::fs::read(dist.join("pkg/bitloupe_bg.wasm")).map_err(|e| e.to_string())?;
+    let bundle = serde_json::json!({
+        "css": format!("{}
+{}", read("vendor/uPlot.min.css")?, read("style.css")?),
+        "charts": read("vendor/uPlot.iife.min.js")?,
+        "glue": read("pkg/bitloupe.js")?,
+        "worker": read("worker.js")?,
+        "modules": modules,
+        "wasm": base64::engine::general_purpose::STANDARD.encode(wasm),
+    });
+    // "</" may not appear inside a script element; "<\/" is the same JSON string.
+    let bundle = bundle.to_string().replace("</", "<\\/");
+    let mut html = read("index.html")?;
+    let replacements = [
+        (r#"  <link rel="stylesheet" href="vendor/uPlot.min.css">"#.to_string(), String::new()),
+        (r#"  <link rel="stylesheet" href="style.css">"#.to_string(), String::new()),
+        (r#"  <script src="vendor/uPlot.iife.min.js"></script>"#.to_string(), String::new()),
+        (page_csp(&html)?, SINGLE_FILE_CSP.to_string()),
+        (
+            r#"  <script type="module" src="app.js"></script>"#.to_string(),
+            format!("  <script type=\"application/json\" id=\"bitloupe-bundle\">{bundle}</script>\n  <script>{SINGLE_FILE_LOADER}</script>"),
+        ),
+    ];
+    for (from, to) in replacements {
+        if !html.contains(&from) {
+            return Err(format!("single-file build: index.html no longer contains {from:?}"));
+        }
+        html = html.replace(&from, &to);
+    }
+    std::fs::write(dist.join("bitloupe.html"), html).map_err(|e| e.to_string())
+}
+
+/// The page's Content-Security-Policy, kept in one place: the meta tag of `www/index.html`. The
+/// server sends the same policy as a header.
+fn page_csp(html: &str) -> Result<String> {
+    const PREFIX: &str = r#"<meta http-equiv="Content-Security-Policy" content=""#;
+    let start = html.find(PREFIX).ok_or("index.html has no Content-Security-Policy meta tag")? + PREFIX.len();
+    let len = html[start..].find('"').ok_or("unterminated Content-Security-Policy meta tag")?;
+    Ok(html[start..start + len].to_string())
 }
 
 fn copy_dir(from: &Path, to: &Path) -> Result {
@@ -193,11 +275,6 @@ fn collect_files(base: &Path, dir: &Path, out: &mut Vec<String>) -> Result {
 
 // ---------------------------------------------------------------- serving
 
-/// Allows only the page's own files: no request to any other origin is possible.
-const CSP: &str = "default-src 'self'; script-src 'self' 'wasm-unsafe-eval'; worker-src 'self'; \
-    style-src 'self' 'unsafe-inline'; img-src 'self' data: blob:; connect-src 'self'; \
-    object-src 'none'; base-uri 'none'; form-action 'none'";
-
 fn content_type(path: &Path) -> &'static str {
     match path.extension().and_then(|e| e.to_str()).unwrap_or("") {
         "html" => "text/html; charset=utf-8",
@@ -225,16 +302,18 @@ fn serve(args: &[String]) -> Result {
 }
 
 fn serve_dir(dist: &Path, port: u16) -> Result {
+    let index = std::fs::read_to_string(dist.join("index.html")).map_err(|e| format!("index.html: {e}"))?;
+    let csp = page_csp(&index)?;
     let server = tiny_http::Server::http(("127.0.0.1", port)).map_err(|e| format!("cannot listen on 127.0.0.1:{port}: {e}"))?;
     eprintln!("\nbitloupe is ready: open http://127.0.0.1:{port}/ (press Ctrl+C to stop)");
     for request in server.incoming_requests() {
-        let response = respond(dist, request.url());
+        let response = respond(dist, request.url(), &csp);
         let _ = request.respond(response);
     }
     Ok(())
 }
 
-fn respond(dist: &Path, url: &str) -> tiny_http::Response<std::io::Cursor<Vec<u8>>> {
+fn respond(dist: &Path, url: &str, csp: &str) -> tiny_http::Response<std::io::Cursor<Vec<u8>>> {
     let path = url.split(['?', '#']).next().unwrap_or("/");
     let relative = path.trim_start_matches('/');
     let relative = if relative.is_empty() { "index.html" } else { relative };
@@ -244,7 +323,7 @@ fn respond(dist: &Path, url: &str) -> tiny_http::Response<std::io::Cursor<Vec<u8
     match std::fs::read(&file).ok().filter(|_| safe) {
         Some(body) => tiny_http::Response::from_data(body)
             .with_header(header("Content-Type", content_type(&file)))
-            .with_header(header("Content-Security-Policy", CSP))
+            .with_header(header("Content-Security-Policy", csp))
             .with_header(header("Cache-Control", "no-cache"))
             .with_header(header("X-Content-Type-Options", "nosniff")),
         None => tiny_http::Response::from_data(b"not found".to_vec()).with_status_code(404),
@@ -278,6 +357,7 @@ fn test() -> Result {
         .env("BITLOUPE_URL", format!("http://127.0.0.1:{port}/"))
         .env("BITLOUPE_CHROMIUM", CHROMIUM)
         .env("BITLOUPE_SCREENSHOTS", &shots)
+        .env("BITLOUPE_SINGLE_FILE", dist.join("bitloupe.html"))
         .current_dir(&root))?;
     eprintln!("\nscreenshots of the page's main states: {}", shots.display());
     Ok(())

@@ -27,6 +27,9 @@ pub const MAX_ELEMENTS: usize = 1 << 28;
 #[cfg(not(target_arch = "wasm32"))]
 pub const MAX_ELEMENTS: usize = 1 << 32;
 
+/// Elements decoded per read when loading a tensor (4 MiB of f32).
+const READ_CHUNK_ELEMENTS: usize = 1 << 20;
+
 /// Random access to bytes: a file, a memory buffer or a browser `Blob`.
 pub trait ByteSource {
     /// Total length in bytes.
@@ -180,10 +183,25 @@ pub fn read<S: ByteSource + ?Sized>(src: &S, entry: &TensorEntry) -> Result<Tens
     })?;
     let (rows, cols) = view_2d(&entry.shape)?;
     let count = rows * cols;
-    let bytes = read_range(src, entry.offset, entry.bytes, "tensor data")?;
+    let size = element.dtype.size();
+    if entry.bytes != count as u64 * size as u64 {
+        return Err(Error::BadFormat {
+            format: "tensor",
+            detail: format!("'{}' has {} bytes but its shape needs {}", entry.name, entry.bytes, count * size),
+        });
+    }
+    let available = src.len();
+    if entry.offset.checked_add(entry.bytes).is_none_or(|end| end > available) {
+        return Err(Error::Truncated { what: "tensor data", needed: entry.offset.saturating_add(entry.bytes), available });
+    }
+    // Decode chunk by chunk so that the raw bytes never sit in memory beside the whole f32 copy.
     let mut values = vec![0f32; count];
-    element.decode(&bytes, &mut values);
-    drop(bytes);
+    let mut raw = vec![0u8; READ_CHUNK_ELEMENTS.min(count) * size];
+    for (i, out) in values.chunks_mut(READ_CHUNK_ELEMENTS).enumerate() {
+        let bytes = &mut raw[..out.len() * size];
+        src.read_at(entry.offset + (i * READ_CHUNK_ELEMENTS * size) as u64, bytes)?;
+        element.decode(bytes, out);
+    }
     if entry.fortran_order && entry.shape.len() > 1 {
         values = fortran_to_c(values, &entry.shape);
     }
@@ -203,10 +221,14 @@ pub fn element_count(shape: &[usize]) -> Result<usize> {
     let count = shape.iter().try_fold(1usize, |acc, &d| acc.checked_mul(d));
     match count {
         Some(count) if count <= MAX_ELEMENTS => Ok(count),
-        _ => Err(Error::BadShape {
+        Some(count) => Err(Error::BadShape {
             shape: shape.to_vec(),
-            detail: format!("more than {MAX_ELEMENTS} elements, which is beyond what this build can hold"),
+            detail: format!(
+                "its {count} elements need {:.1} GiB as f32, and an analysis about twice that; this build holds at most {MAX_ELEMENTS} elements",
+                count as f64 * 4.0 / (1u64 << 30) as f64
+            ),
         }),
+        None => Err(Error::BadShape { shape: shape.to_vec(), detail: "its element count overflows".into() }),
     }
 }
 

@@ -284,6 +284,16 @@ mod tests {
     }
 
     #[test]
+    fn tensors_larger_than_one_read_chunk_read_back() {
+        let n = (1 << 20) + 5; // = 3 × 349527, one element past a whole number of chunks
+        let values: Vec<f32> = (0..n).map(|i| (i % 1000) as f32 - 500.0).collect();
+        let bytes = write_f32(&values, &[3, n / 3]);
+        let listing = tensor::list(&bytes[..], ReadOptions::default()).unwrap();
+        let t = tensor::read(&bytes[..], listing.choose(None).unwrap()).unwrap();
+        assert!(t.values.as_slice().unwrap() == &values[..], "values differ after a chunked read");
+    }
+
+    #[test]
     fn header_literals_parse_with_python_spacing() {
         let f = HeaderFields::parse("{'descr': '>i2', 'fortran_order': True, 'shape': (3, 4, ), }  \n").unwrap();
         assert_eq!((f.descr.as_str(), f.fortran_order, f.shape, f.itemsize), (">i2", true, vec![3, 4], 2));
