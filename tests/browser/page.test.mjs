@@ -2,6 +2,9 @@
 import { test, before, after } from 'node:test';
 import assert from 'node:assert/strict';
 import { pathToFileURL } from 'node:url';
+import { openSync, writeSync, ftruncateSync, closeSync, mkdtempSync } from 'node:fs';
+import os from 'node:os';
+import path from 'node:path';
 import { launch, openPage, fixture, shot, dropFile, waitForAnalysis, sameOrigin } from './harness.mjs';
 
 let browser;
@@ -120,6 +123,26 @@ test('a corrupt file gets one message and the earlier results stay usable', asyn
   await page.setInputFiles('#file-input', { name: 'garbage.safetensors', mimeType: 'application/octet-stream', buffer: Buffer.from('not a tensor file at all') });
   await page.waitForFunction(() => /garbage.safetensors/.test(document.getElementById('input-message').textContent));
   assert.deepEqual(requests.filter((u) => !sameOrigin(u)), []);
+  await context.close();
+});
+
+test('a tensor too large for the browser is refused before any allocation', async () => {
+  const { page, context } = await withDemo();
+  // A sparse 2.2 GB file whose header lists one f32 tensor of 24576 × 24576 (2.25 GiB as f32).
+  const file = path.join(mkdtempSync(path.join(os.tmpdir(), 'bitloupe-')), 'huge.safetensors');
+  const bytes = 24576 * 24576 * 4;
+  const header = Buffer.from(JSON.stringify({ 'huge.weight': { dtype: 'F32', shape: [24576, 24576], data_offsets: [0, bytes] } }));
+  const size = Buffer.alloc(8);
+  size.writeBigUInt64LE(BigInt(header.length));
+  const fd = openSync(file, 'w');
+  writeSync(fd, size);
+  writeSync(fd, header);
+  ftruncateSync(fd, 8 + header.length + bytes);
+  closeSync(fd);
+  await page.setInputFiles('#file-input', file);
+  await page.waitForSelector('#input-message:not([hidden])');
+  assert.match(await page.textContent('#input-message'), /603979776 elements need 2\.2 GiB as f32/);
+  assert.match(await page.textContent('#tensor-info'), /1024 × 4096/);
   await context.close();
 });
 
