@@ -306,10 +306,17 @@ fn serve_dir(dist: &Path, port: u16) -> Result {
     let csp = page_csp(&index)?;
     let server = tiny_http::Server::http(("127.0.0.1", port)).map_err(|e| format!("cannot listen on 127.0.0.1:{port}: {e}"))?;
     eprintln!("\nbitloupe is ready: open http://127.0.0.1:{port}/ (press Ctrl+C to stop)");
-    for request in server.incoming_requests() {
-        let response = respond(dist, request.url(), &csp);
-        let _ = request.respond(response);
-    }
+    std::thread::scope(|scope| {
+        for request in server.incoming_requests() {
+            // Each response is written on its own thread, so a slow or idle connection never
+            // holds up the others.
+            let csp = &csp;
+            scope.spawn(move || {
+                let response = respond(dist, request.url(), csp);
+                let _ = request.respond(response);
+            });
+        }
+    });
     Ok(())
 }
 
