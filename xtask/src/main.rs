@@ -304,37 +304,55 @@ fn serve(args: &[String]) -> Result {
 fn serve_dir(dist: &Path, port: u16) -> Result {
     let index = std::fs::read_to_string(dist.join("index.html")).map_err(|e| format!("index.html: {e}"))?;
     let csp = page_csp(&index)?;
-    let server = tiny_http::Server::http(("127.0.0.1", port)).map_err(|e| format!("cannot listen on 127.0.0.1:{port}: {e}"))?;
+    let listener = std::net::TcpListener::bind(("127.0.0.1", port)).map_err(|e| format!("cannot listen on 127.0.0.1:{port}: {e}"))?;
     eprintln!("\nbitloupe is ready: open http://127.0.0.1:{port}/ (press Ctrl+C to stop)");
     std::thread::scope(|scope| {
-        for request in server.incoming_requests() {
-            // Each response is written on its own thread, so a slow or idle connection never
-            // holds up the others.
+        for stream in listener.incoming().flatten() {
             let csp = &csp;
             scope.spawn(move || {
-                let response = respond(dist, request.url(), csp);
-                let _ = request.respond(response);
+                let _ = answer(stream, dist, csp);
             });
         }
     });
     Ok(())
 }
 
-fn respond(dist: &Path, url: &str, csp: &str) -> tiny_http::Response<std::io::Cursor<Vec<u8>>> {
-    let path = url.split(['?', '#']).next().unwrap_or("/");
-    let relative = path.trim_start_matches('/');
-    let relative = if relative.is_empty() { "index.html" } else { relative };
-    let header = |k: &str, v: &str| tiny_http::Header::from_bytes(k.as_bytes(), v.as_bytes()).expect("ascii header");
+/// Answer one request and close the connection. A thread per connection and no keep-alive:
+/// this serves a handful of static files to one local browser, and must never make one request
+/// wait for another.
+fn answer(mut stream: std::net::TcpStream, dist: &Path, csp: &str) -> std::io::Result<()> {
+    use std::io::{BufRead, BufReader, Read, Write};
+    stream.set_read_timeout(Some(std::time::Duration::from_secs(10)))?;
+    let mut reader = BufReader::new(stream.try_clone()?.take(64 * 1024));
+    let mut request_line = String::new();
+    reader.read_line(&mut request_line)?;
+    loop {
+        let mut header = String::new();
+        if reader.read_line(&mut header)? == 0 || header.trim().is_empty() {
+            break;
+        }
+    }
+    let mut parts = request_line.split_whitespace();
+    let (method, target) = (parts.next().unwrap_or(""), parts.next().unwrap_or("/"));
+    let path = target.split(['?', '#']).next().unwrap_or("/").trim_start_matches('/');
+    let relative = if path.is_empty() { "index.html" } else { path };
     let safe = !relative.split('/').any(|part| part == ".." || part.is_empty());
     let file = dist.join(relative);
-    match std::fs::read(&file).ok().filter(|_| safe) {
-        Some(body) => tiny_http::Response::from_data(body)
-            .with_header(header("Content-Type", content_type(&file)))
-            .with_header(header("Content-Security-Policy", csp))
-            .with_header(header("Cache-Control", "no-cache"))
-            .with_header(header("X-Content-Type-Options", "nosniff")),
-        None => tiny_http::Response::from_data(b"not found".to_vec()).with_status_code(404),
+    let found = if safe && (method == "GET" || method == "HEAD") { std::fs::read(&file).ok() } else { None };
+    let (status, body, kind) = match found {
+        Some(body) => ("200 OK", body, content_type(&file)),
+        None => ("404 Not Found", b"not found".to_vec(), "text/plain; charset=utf-8"),
+    };
+    write!(
+        stream,
+        "HTTP/1.1 {status}\r\nContent-Type: {kind}\r\nContent-Length: {}\r\nContent-Security-Policy: {csp}\r\n\
+         Cache-Control: no-cache\r\nX-Content-Type-Options: nosniff\r\nConnection: close\r\n\r\n",
+        body.len()
+    )?;
+    if method != "HEAD" {
+        stream.write_all(&body)?;
     }
+    stream.flush()
 }
 
 // ---------------------------------------------------------------- testing
