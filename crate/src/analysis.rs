@@ -1,12 +1,15 @@
-//! One recipe run on one tensor: the dequantized values, the error figures per tensor, per
-//! group and per input column, and the bit budget. Every front end reaches the core through
-//! [`analyze`].
+//! One recipe run on one tensor (and, optionally, its calibration data): the dequantized values,
+//! the error figures per tensor, per group and per input column, the output error when there is
+//! calibration, and the bit budget. Every front end reaches the core through [`analyze_with`]
+//! (or [`analyze`] without calibration).
 
+use crate::calib::{output_error, Calibration, OutputError};
 use crate::cost::BitCost;
 use crate::error::{Error, Result};
 use crate::grid::{GroupParams, IntGrid};
+use crate::methods::{self, group_width, MethodFigures};
 use crate::metrics::{ColumnFigures, ColumnSums, ErrorFigures, ErrorSums, GroupFigures};
-use crate::recipe::{Granularity, Recipe};
+use crate::recipe::{Granularity, Method, Recipe};
 use crate::tensor::Tensor;
 use ndarray::Array2;
 use std::ops::Range;
@@ -28,27 +31,47 @@ pub struct Analysis {
     pub columns: ColumnFigures,
     /// The bit budget.
     pub cost: BitCost,
+    /// The method's own figures.
+    pub method: MethodFigures,
+    /// The output error, when calibration data was given.
+    pub output: Option<OutputError>,
 }
 
-/// Run `recipe` on `tensor`.
+/// Run `recipe` on `tensor` without calibration data.
 pub fn analyze(tensor: &Tensor, recipe: &Recipe) -> Result<Analysis> {
-    analyze_with_progress(tensor, recipe, &mut |_, _| {})
+    analyze_with(tensor, recipe, None, &mut |_, _| {})
 }
 
-/// Rows between two progress reports.
+/// Rows between two progress reports of the plain round-to-nearest path.
 const PROGRESS_EVERY: usize = 64;
 
-/// [`analyze`], calling `progress(rows done, rows)` as it goes.
-pub fn analyze_with_progress(tensor: &Tensor, recipe: &Recipe, progress: &mut dyn FnMut(usize, usize)) -> Result<Analysis> {
+/// Run `recipe` on `tensor` with optional calibration, calling `progress(done, total)` now and
+/// then (the unit depends on the method: rows, columns or search steps).
+pub fn analyze_with(
+    tensor: &Tensor,
+    recipe: &Recipe,
+    calib: Option<&Calibration>,
+    progress: &mut dyn FnMut(usize, usize),
+) -> Result<Analysis> {
     recipe.validate()?;
     let (rows, cols) = (tensor.rows(), tensor.cols());
     if rows * cols == 0 {
         return Err(Error::BadShape { shape: tensor.shape.clone(), detail: "it has no elements".into() });
     }
+    if let Some(c) = calib {
+        if c.cols() != cols {
+            return Err(Error::BadCalibration {
+                detail: format!("it has {} columns but the weight has {cols} input columns", c.cols()),
+            });
+        }
+    }
+    if recipe.keep_cols > cols {
+        return Err(Error::BadRecipe { detail: format!("cannot keep {} columns of a tensor with {cols}", recipe.keep_cols) });
+    }
     // Finiteness is checked after the run rather than by a separate pass over the tensor: a NaN
     // makes the error sums NaN, an infinity makes its scale overflow, and either way the
     // precise count and location are then looked up.
-    let run = quantize_all(tensor, recipe, progress);
+    let run = run(tensor, recipe, calib, progress);
     let non_finite = match &run {
         Ok(analysis) => analysis.totals.mse.is_nan(),
         Err(_) => true,
@@ -62,70 +85,80 @@ pub fn analyze_with_progress(tensor: &Tensor, recipe: &Recipe, progress: &mut dy
     run
 }
 
-fn quantize_all(tensor: &Tensor, recipe: &Recipe, progress: &mut dyn FnMut(usize, usize)) -> Result<Analysis> {
-    let (rows, cols) = (tensor.rows(), tensor.cols());
-    let grid = IntGrid::new(recipe);
-    let overflow = |row, col| move |e: crate::grid::ScaleOverflow| Error::ScaleOverflow {
-        scale: e.0,
-        dtype: recipe.scale_dtype.name(),
-        row,
-        col,
-    };
-    let width = match recipe.granularity {
-        Granularity::Group(g) => g,
-        Granularity::Row | Granularity::Tensor => cols,
-    };
-    let whole_tensor = match recipe.granularity {
-        Granularity::Tensor => {
-            let all = tensor.values.as_slice().expect("row-major tensor");
-            Some(grid.fit(all).map_err(overflow(0, 0))?)
-        }
-        _ => None,
-    };
+/// Per-group and per-column sums, fed one row (and its reconstruction) at a time.
+struct Measure {
+    sums: Vec<ErrorSums>,
+    columns: ColumnSums,
+    width: usize,
+    per_row: usize,
+    whole_tensor: bool,
+}
 
-    let (grid_rows, per_row) = match recipe.granularity {
-        Granularity::Tensor => (1, 1),
-        g => (rows, g.groups_per_row(cols)),
-    };
-    let mut sums = vec![ErrorSums::default(); grid_rows * per_row];
-    let mut params = Vec::with_capacity(if whole_tensor.is_some() { 1 } else { sums.len() });
-    params.extend(whole_tensor);
-    let mut columns = ColumnSums::new(cols);
-    let mut dequantized = Array2::<f32>::zeros((rows, cols));
-
-    for (r, (x_row, mut out_row)) in tensor.values.rows().into_iter().zip(dequantized.rows_mut()).enumerate() {
-        let x_row = x_row.to_slice().expect("row-major tensor");
-        let out_row = out_row.as_slice_mut().expect("row-major output");
-        for (k, (x, out)) in x_row.chunks(width).zip(out_row.chunks_mut(width)).enumerate() {
-            let p = match whole_tensor {
-                Some(p) => p,
-                None => {
-                    let p = grid.fit(x).map_err(overflow(r, k * width))?;
-                    params.push(p);
-                    p
-                }
-            };
-            grid.quantize_into(p, x, out);
-            let index = if whole_tensor.is_some() { 0 } else { r * per_row + k };
-            sums[index].add(x, out);
-        }
-        columns.add_row(x_row, out_row);
-        if (r + 1) % PROGRESS_EVERY == 0 {
-            progress(r + 1, rows);
+impl Measure {
+    fn new(recipe: &Recipe, rows: usize, cols: usize) -> Self {
+        let whole_tensor = recipe.granularity == Granularity::Tensor;
+        let (grid_rows, per_row) = if whole_tensor { (1, 1) } else { (rows, recipe.granularity.groups_per_row(cols)) };
+        Measure {
+            sums: vec![ErrorSums::default(); grid_rows * per_row],
+            columns: ColumnSums::new(cols),
+            width: group_width(recipe.granularity, cols),
+            per_row,
+            whole_tensor,
         }
     }
 
-    let mut total = ErrorSums::default();
-    sums.iter().for_each(|s| total.merge(s));
-    let group_size = matches!(recipe.granularity, Granularity::Group(_)).then_some(width);
+    fn row(&mut self, r: usize, x: &[f32], out: &[f32]) {
+        for (k, (xg, og)) in x.chunks(self.width).zip(out.chunks(self.width)).enumerate() {
+            let index = if self.whole_tensor { 0 } else { r * self.per_row + k };
+            self.sums[index].add(xg, og);
+        }
+        self.columns.add_row(x, out);
+    }
+
+    fn finish(self, recipe: &Recipe) -> (ErrorFigures, GroupFigures, ColumnFigures) {
+        let mut total = ErrorSums::default();
+        self.sums.iter().for_each(|s| total.merge(s));
+        let group_size = matches!(recipe.granularity, Granularity::Group(_)).then_some(self.width);
+        let grid_rows = self.sums.len() / self.per_row;
+        (total.figures(), GroupFigures::from_sums(grid_rows, self.per_row, group_size, &self.sums), self.columns.figures())
+    }
+}
+
+fn run(tensor: &Tensor, recipe: &Recipe, calib: Option<&Calibration>, progress: &mut dyn FnMut(usize, usize)) -> Result<Analysis> {
+    let (rows, cols) = (tensor.rows(), tensor.cols());
+    let mut measure = Measure::new(recipe, rows, cols);
+    let plain = recipe.method == Method::Rtn && recipe.smooth.is_none() && recipe.keep_cols == 0 && recipe.keep_frac == 0.0;
+    let (dequantized, params, method) = if plain {
+        // The hot path: each row is measured while it is still in cache.
+        let q = methods::rtn_rows(tensor.values.view(), recipe, |r, x, out| {
+            measure.row(r, x, out);
+            if (r + 1) % PROGRESS_EVERY == 0 {
+                progress(r + 1, rows);
+            }
+        })?;
+        (q.dequantized, q.params, q.figures)
+    } else {
+        let q = methods::run(tensor.values.view(), recipe, calib, progress)?;
+        for (r, (x, out)) in tensor.values.rows().into_iter().zip(q.dequantized.rows()).enumerate() {
+            measure.row(r, x.as_slice().expect("row-major"), out.as_slice().expect("row-major"));
+        }
+        (q.dequantized, q.params, q.figures)
+    };
+    let output = calib.map(|c| {
+        let reference = c.reference_output(tensor.values.view());
+        output_error(c, tensor.values.view(), dequantized.view(), reference.as_ref())
+    });
+    let (totals, groups, columns) = measure.finish(recipe);
     Ok(Analysis {
         recipe: *recipe,
         dequantized,
         params,
-        totals: total.figures(),
-        groups: GroupFigures::from_sums(grid_rows, per_row, group_size, &sums),
-        columns: columns.figures(),
+        totals,
+        groups,
+        columns,
         cost: BitCost::of(recipe, rows, cols, tensor.dtype.bits()),
+        method,
+        output,
     })
 }
 
@@ -195,7 +228,7 @@ mod tests {
             let t = tensor(rows, cols, i as u64);
             for granularity in granularities {
                 for (bits, symmetric) in [(2, false), (3, true), (4, false), (8, true)] {
-                    let recipe = Recipe { bits, granularity, symmetric, scale_dtype: ScaleDType::BF16 };
+                    let recipe = Recipe { bits, granularity, symmetric, scale_dtype: ScaleDType::BF16, ..Recipe::default() };
                     let a = analyze(&t, &recipe).unwrap();
                     let got: Vec<f32> = a.dequantized.iter().copied().collect();
                     assert_eq!(got, reference(&t, &recipe), "{rows}x{cols} {}", recipe.label());
@@ -273,7 +306,7 @@ mod tests {
         assert!(points.contains(&0.0), "zero is exact on an asymmetric grid");
         assert!(points.windows(2).all(|w| w[0] < w[1]));
         let mut reported = Vec::new();
-        analyze_with_progress(&tensor(130, 8, 1), &Recipe::default(), &mut |done, all| reported.push((done, all))).unwrap();
+        analyze_with(&tensor(130, 8, 1), &Recipe::default(), None, &mut |done, all| reported.push((done, all))).unwrap();
         assert_eq!(reported, vec![(64, 130), (128, 130)]);
     }
 

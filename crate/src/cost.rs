@@ -4,9 +4,22 @@
 //! group, asymmetric grids only), with G groups; a group shorter than the group size still stores
 //! a whole scale. Example: 4-bit asymmetric, groups of 128, f16 scales costs
 //! 4 + (16 + 4)/128 = 4.15625 bits per weight when every row is a multiple of 128 long.
+//!
+//! Further parts, when the recipe has them:
+//! * HQQ's zero points are real numbers, stored in the scale's type instead of b bits;
+//! * kept values cost 16 bits each plus their index: one u32 per kept column, or one u32
+//!   row-major flat index per kept weight (the dense codes still cover every position);
+//! * per-column factors of smoothing or AWQ cost one scale-type value per input column unless
+//!   they are folded into the previous layer (we count them; folding makes them free).
 
-use crate::recipe::Recipe;
+use crate::methods::keep::kept_count;
+use crate::recipe::{Method, Recipe};
 use serde::Serialize;
+
+/// Bits of one kept value (f16).
+const KEPT_VALUE_BITS: u64 = 16;
+/// Bits of one stored index (u32).
+const INDEX_BITS: u64 = 32;
 
 /// Where the bits go.
 #[derive(Debug, Clone, Copy, PartialEq, Serialize)]
@@ -21,6 +34,12 @@ pub struct BitCost {
     pub scale_bits: u64,
     /// Bits of the stored zero points.
     pub zero_point_bits: u64,
+    /// Values kept in 16-bit.
+    pub kept_values: u64,
+    /// Bits of the kept values and their indices.
+    pub kept_bits: u64,
+    /// Bits of per-column factors (smoothing, AWQ).
+    pub column_factor_bits: u64,
     /// Sum of the parts.
     pub total_bits: u64,
     /// Whole bytes needed to hold `total_bits`.
@@ -42,9 +61,23 @@ impl BitCost {
         let groups = recipe.granularity.group_count(rows, cols) as u64;
         let bits = u64::from(recipe.bits);
         let payload_bits = elements * bits;
-        let scale_bits = groups * u64::from(recipe.scale_dtype.bits());
-        let zero_point_bits = if recipe.symmetric { 0 } else { groups * bits };
-        let total_bits = payload_bits + scale_bits + zero_point_bits;
+        let scale_type_bits = u64::from(recipe.scale_dtype.bits());
+        let scale_bits = groups * scale_type_bits;
+        let zero_point_bits = match (recipe.symmetric, recipe.method) {
+            (true, _) => 0,
+            (false, Method::Hqq) => groups * scale_type_bits,
+            (false, _) => groups * bits,
+        };
+        let (kept_values, index_bits) = if recipe.keep_cols > 0 {
+            let k = recipe.keep_cols.min(cols) as u64;
+            (k * rows as u64, k * INDEX_BITS)
+        } else {
+            let k = kept_count(recipe.keep_frac, rows * cols) as u64;
+            (k, k * INDEX_BITS)
+        };
+        let kept_bits = kept_values * KEPT_VALUE_BITS + index_bits;
+        let column_factor_bits = if recipe.scales_columns() { cols as u64 * scale_type_bits } else { 0 };
+        let total_bits = payload_bits + scale_bits + zero_point_bits + kept_bits + column_factor_bits;
         let source_bits = elements * u64::from(source_bits_per_element);
         let ratio = |bits: u64| if total_bits == 0 { 0.0 } else { bits as f64 / total_bits as f64 };
         BitCost {
@@ -53,6 +86,9 @@ impl BitCost {
             payload_bits,
             scale_bits,
             zero_point_bits,
+            kept_values,
+            kept_bits,
+            column_factor_bits,
             total_bits,
             bytes: total_bits.div_ceil(8),
             bits_per_weight: if elements == 0 { 0.0 } else { total_bits as f64 / elements as f64 },
@@ -82,7 +118,7 @@ mod tests {
 
     #[test]
     fn short_last_groups_still_pay_a_whole_scale() {
-        let r = Recipe { bits: 3, granularity: Granularity::Group(64), symmetric: true, scale_dtype: ScaleDType::F32 };
+        let r = Recipe { bits: 3, granularity: Granularity::Group(64), symmetric: true, scale_dtype: ScaleDType::F32, ..Recipe::default() };
         let c = BitCost::of(&r, 2, 100, 16);
         assert_eq!(c.groups, 4);
         assert_eq!(c.total_bits, 200 * 3 + 4 * 32);
@@ -97,5 +133,19 @@ mod tests {
         assert_eq!(r.total_bits, 800 + 10 * (16 + 8));
         let empty = BitCost::of(&Recipe::default(), 0, 10, 16);
         assert_eq!((empty.total_bits, empty.bits_per_weight, empty.ratio_to_source), (0, 0.0, 0.0));
+    }
+
+    #[test]
+    fn kept_values_hqq_zero_points_and_column_factors_are_counted() {
+        let base = BitCost::of(&Recipe::default(), 64, 256, 16);
+        let cols = BitCost::of(&Recipe { keep_cols: 3, ..Recipe::default() }, 64, 256, 16);
+        assert_eq!(cols.total_bits - base.total_bits, 3 * 64 * 16 + 3 * 32);
+        let frac = BitCost::of(&Recipe { keep_frac: 0.01, ..Recipe::default() }, 64, 256, 16);
+        assert_eq!(frac.kept_values, 164); // round(0.01 × 16384)
+        assert_eq!(frac.total_bits - base.total_bits, 164 * (16 + 32));
+        let hqq = BitCost::of(&Recipe { method: Method::Hqq, ..Recipe::default() }, 64, 256, 16);
+        assert_eq!(hqq.zero_point_bits, hqq.groups * 16);
+        let awq = BitCost::of(&Recipe { method: Method::Awq, ..Recipe::default() }, 64, 256, 16);
+        assert_eq!(awq.column_factor_bits, 256 * 16);
     }
 }

@@ -78,6 +78,16 @@ pub enum Error {
         /// What is wrong and what is allowed.
         detail: String,
     },
+    /// Calibration data that cannot serve the weight.
+    BadCalibration {
+        /// What is wrong and what is expected.
+        detail: String,
+    },
+    /// A linear-algebra step failed (for example a matrix that is not positive definite).
+    Numerical {
+        /// What failed and what to change.
+        detail: String,
+    },
     /// A scale too large for its storage type.
     ScaleOverflow {
         /// The scale that was needed.
@@ -124,6 +134,8 @@ impl fmt::Display for Error {
                  quantization needs finite values"
             ),
             Error::BadRecipe { detail } => write!(f, "invalid recipe: {detail}"),
+            Error::BadCalibration { detail } => write!(f, "calibration data cannot be used: {detail}"),
+            Error::Numerical { detail } => write!(f, "{detail}"),
             Error::ScaleOverflow { scale, dtype, row, col } => write!(
                 f,
                 "the scale {scale:e} needed at row {row}, column {col} overflows {dtype}; \

@@ -49,8 +49,12 @@ impl IntGrid {
 
     /// Fit the scale (and zero point) of one group from its value range.
     pub fn fit(&self, group: &[f32]) -> Result<GroupParams, ScaleOverflow> {
-        let (lo, hi) = min_max(group); // both include 0
-        let raw = if self.symmetric { (-lo).max(hi) / self.qmax } else { (hi - lo) / self.qmax };
+        let (lo, hi) = min_max(group);
+        self.fit_range(lo, hi)
+    }
+
+    /// Fit to the range [lo, hi] with lo ≤ 0 ≤ hi (a clipped range, for example).
+    pub fn fit_range(&self, lo: f32, hi: f32) -> Result<GroupParams, ScaleOverflow> {        let raw = if self.symmetric { (-lo).max(hi) / self.qmax } else { (hi - lo) / self.qmax };
         let scale = if raw == 0.0 { 1.0 } else { self.scale_dtype.round(raw).ok_or(ScaleOverflow(raw))? };
         let zero = if self.symmetric { 0.0 } else { (-lo / scale).round_ties_even().clamp(0.0, self.qmax) };
         Ok(GroupParams { scale, zero })
@@ -58,11 +62,16 @@ impl IntGrid {
 
     /// Quantize and dequantize `x` into `out` (the fast kernel).
     pub fn quantize_into(&self, p: GroupParams, x: &[f32], out: &mut [f32]) {
-        let (qmin, qmax) = (self.qmin, self.qmax);
         for (o, &v) in out.iter_mut().zip(x) {
-            let q = (round_half_even_small(v / p.scale) + p.zero).clamp(qmin, qmax);
-            *o = (q - p.zero) * p.scale;
+            *o = self.dequantize_one(p, v);
         }
+    }
+
+    /// Quantize and dequantize one value.
+    #[inline(always)]
+    pub fn dequantize_one(&self, p: GroupParams, v: f32) -> f32 {
+        let q = (round_half_even_small(v / p.scale) + p.zero).clamp(self.qmin, self.qmax);
+        (q - p.zero) * p.scale
     }
 
     /// The code of one value, the plain scalar reference the fast kernel is tested against.
@@ -114,7 +123,7 @@ mod tests {
     use crate::recipe::Granularity;
 
     fn grid(bits: u8, symmetric: bool) -> IntGrid {
-        IntGrid::new(&Recipe { bits, symmetric, granularity: Granularity::Row, scale_dtype: ScaleDType::F32 })
+        IntGrid::new(&Recipe { bits, symmetric, granularity: Granularity::Row, scale_dtype: ScaleDType::F32, ..Recipe::default() })
     }
 
     #[test]

@@ -9,10 +9,13 @@
 #![deny(missing_docs)]
 
 pub mod analysis;
+pub mod calib;
 pub mod cost;
 pub mod demo;
 pub mod error;
 pub mod grid;
+pub mod linalg;
+pub mod methods;
 pub mod metrics;
 pub mod recipe;
 pub mod report;
@@ -21,7 +24,7 @@ pub mod tensor;
 #[cfg(target_arch = "wasm32")]
 pub mod wasm;
 
-pub use analysis::{analyze, Analysis};
+pub use analysis::{analyze, analyze_with, Analysis};
 pub use error::{Error, Result};
 pub use recipe::{Granularity, Recipe, ScaleDType};
 pub use tensor::{ByteSource, DType, ReadOptions, Tensor};

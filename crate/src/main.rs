@@ -13,7 +13,10 @@ fn main() -> std::process::ExitCode {
 mod cli {
     use bitloupe::report::Report;
     use bitloupe::tensor::{self, npy, text, Listing};
-    use bitloupe::{analyze, Granularity, ReadOptions, Recipe, ScaleDType, Tensor};
+    use bitloupe::calib::{CalibKind, Calibration};
+    use bitloupe::methods::smooth::{self, ActQuant, DEFAULT_SMOOTHING};
+    use bitloupe::recipe::Method;
+    use bitloupe::{analyze_with, Granularity, ReadOptions, Recipe, ScaleDType, Tensor};
     use clap::{Args, Parser, Subcommand};
     use std::path::{Path, PathBuf};
     use std::process::ExitCode;
@@ -46,6 +49,8 @@ mod cli {
             read: ReadArgs,
             #[command(flatten)]
             recipe: RecipeArgs,
+            #[command(flatten)]
+            calib: CalibArgs,
             /// Write the dequantized tensor as float32 .npy in the source shape.
             #[arg(long, value_name = "DEQ.npy")]
             out: Option<PathBuf>,
@@ -86,6 +91,27 @@ mod cli {
         /// Storage type of the scales.
         #[arg(long, value_name = "f16|bf16|f32")]
         scale_dtype: Option<String>,
+        /// What chooses the codes.
+        #[arg(long, value_name = "rtn|clip|hqq|gptq|awq")]
+        method: Option<String>,
+        /// Fold smoothing factors of strength ALPHA (0 to 1) into the weight first.
+        #[arg(long, value_name = "ALPHA")]
+        smooth: Option<f32>,
+        /// Keep the K most important input columns in 16-bit.
+        #[arg(long, value_name = "K")]
+        keep_cols: Option<usize>,
+        /// Keep this fraction of the weights (largest |w|) in 16-bit, e.g. 0.005.
+        #[arg(long, value_name = "F")]
+        keep_frac: Option<f32>,
+        /// GPTQ: dampening as a fraction of mean diag(H).
+        #[arg(long, value_name = "F")]
+        damp: Option<f32>,
+        /// GPTQ: process columns in order of decreasing diag(H).
+        #[arg(long)]
+        act_order: bool,
+        /// AWQ: also search a clipping ratio per group.
+        #[arg(long)]
+        awq_clip: bool,
     }
 
     impl RecipeArgs {
@@ -96,10 +122,35 @@ mod cli {
                 granularity: self.group.as_deref().map(str::parse::<Granularity>).transpose()?.unwrap_or(default.granularity),
                 symmetric: if self.sym { true } else if self.asym { false } else { default.symmetric },
                 scale_dtype: self.scale_dtype.as_deref().map(str::parse::<ScaleDType>).transpose()?.unwrap_or(default.scale_dtype),
+                method: self.method.as_deref().map(str::parse::<Method>).transpose()?.unwrap_or(default.method),
+                damp: self.damp.unwrap_or(default.damp),
+                act_order: self.act_order,
+                awq_clip: self.awq_clip,
+                smooth: self.smooth,
+                keep_cols: self.keep_cols.unwrap_or(default.keep_cols),
+                keep_frac: self.keep_frac.unwrap_or(default.keep_frac),
             };
             recipe.validate()?;
             Ok(recipe)
         }
+    }
+
+    /// Calibration flags.
+    #[derive(Args)]
+    struct CalibArgs {
+        /// Calibration data: an activation sample [tokens, cols] or per-column statistics.
+        #[arg(long, value_name = "FILE")]
+        calib: Option<PathBuf>,
+        /// Which tensor of the calibration file.
+        #[arg(long, value_name = "NAME", requires = "calib")]
+        calib_tensor: Option<String>,
+        /// What the calibration tensor holds.
+        #[arg(long, value_name = "sample|maxabs|meanabs", default_value = "sample", requires = "calib")]
+        calib_kind: String,
+        /// Also simulate W8A8 (int8 weights per row, int8 activations per tensor or per token)
+        /// with and without smoothing; needs an activation sample.
+        #[arg(long, value_name = "tensor|token", requires = "calib")]
+        w8a8: Option<String>,
     }
 
     /// A failure with the context the user needs, printed as one line.
@@ -135,11 +186,30 @@ mod cli {
                 print!("{}", describe(&listing));
                 Ok(())
             }
-            Command::Quantize { file, tensor, read, recipe, out, report } => {
+            Command::Quantize { file, tensor, read, recipe, calib, out, report } => {
                 let recipe = recipe.recipe()?;
+                let w8a8 = calib.w8a8.as_deref().map(str::parse::<ActQuant>).transpose()?;
                 let tensor = load(&file, tensor.as_deref(), read.options())?;
-                let analysis = analyze(&tensor, &recipe).map_err(Failure::at(&file))?;
-                let report_doc = Report::new(&tensor, &analysis);
+                let calibration = match &calib.calib {
+                    Some(path) => {
+                        let kind = calib.calib_kind.parse::<CalibKind>()?;
+                        let data = load(path, calib.calib_tensor.as_deref(), read.options())?;
+                        Some(Calibration::from_tensor(&data, kind, tensor.cols()).map_err(Failure::at(path))?)
+                    }
+                    None => None,
+                };
+                let analysis = analyze_with(&tensor, &recipe, calibration.as_ref(), &mut |_, _| {}).map_err(Failure::at(&file))?;
+                let study = match (w8a8, &calibration) {
+                    (Some(act), Some(c)) => {
+                        let alpha = recipe.smooth.unwrap_or(DEFAULT_SMOOTHING);
+                        Some(smooth::study(tensor.values.view(), c, alpha, act, &mut |_, _| {}).map_err(Failure::at(&file))?)
+                    }
+                    _ => None,
+                };
+                let mut report_doc = Report::new(&tensor, &analysis);
+                if let Some(study) = &study {
+                    report_doc = report_doc.with_smoothing(study);
+                }
                 let mut outputs = Vec::new();
                 if let Some(path) = out {
                     let values = analysis.dequantized.as_slice().expect("row-major");

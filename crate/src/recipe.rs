@@ -11,6 +11,8 @@ use std::str::FromStr;
 
 /// Smallest and largest group size offered.
 pub const GROUP_SIZES: std::ops::RangeInclusive<usize> = 8..=4096;
+/// Largest fraction of weights that may be kept in 16-bit.
+pub const MAX_KEEP_FRACTION: f32 = 0.1;
 /// Smallest and largest integer bit width offered.
 pub const BITS: std::ops::RangeInclusive<u8> = 2..=8;
 
@@ -138,8 +140,51 @@ impl FromStr for ScaleDType {
     }
 }
 
-/// One quantization choice for a tensor.
+/// What chooses the codes.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(rename_all = "lowercase")]
+pub enum Method {
+    /// Round to nearest on the min/max grid.
+    Rtn,
+    /// Shrink each group's range over a grid of ratios and keep the best (common practice).
+    Clip,
+    /// Half-quadratic zero points (HQQ, Badri & Shaji 2023); no calibration needed.
+    Hqq,
+    /// Error-compensating rounding (GPTQ, Frantar et al., ICLR 2023); needs an activation sample.
+    Gptq,
+    /// Activation-aware scaling (AWQ, Lin et al., MLSys 2024); needs calibration.
+    Awq,
+}
+
+impl Method {
+    /// Lower-case name.
+    pub fn name(self) -> &'static str {
+        match self {
+            Method::Rtn => "rtn",
+            Method::Clip => "clip",
+            Method::Hqq => "hqq",
+            Method::Gptq => "gptq",
+            Method::Awq => "awq",
+        }
+    }
+}
+
+impl FromStr for Method {
+    type Err = Error;
+    fn from_str(s: &str) -> Result<Self> {
+        match s.trim().to_ascii_lowercase().as_str() {
+            "rtn" => Ok(Method::Rtn),
+            "clip" => Ok(Method::Clip),
+            "hqq" => Ok(Method::Hqq),
+            "gptq" => Ok(Method::Gptq),
+            "awq" => Ok(Method::Awq),
+            _ => Err(Error::BadRecipe { detail: format!("method '{s}' is not one of rtn, clip, hqq, gptq, awq") }),
+        }
+    }
+}
+
+/// One quantization choice for a tensor.
+#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
 #[serde(default, deny_unknown_fields)]
 pub struct Recipe {
     /// Bits per quantized element.
@@ -150,13 +195,40 @@ pub struct Recipe {
     pub symmetric: bool,
     /// Storage type of the scales.
     pub scale_dtype: ScaleDType,
+    /// What chooses the codes.
+    pub method: Method,
+    /// GPTQ: dampening added to diag(H), as a fraction of its mean.
+    pub damp: f32,
+    /// GPTQ: process columns in order of decreasing diag(H).
+    pub act_order: bool,
+    /// AWQ: also search a clipping ratio per group.
+    pub awq_clip: bool,
+    /// Smoothing strength α: fold SmoothQuant's per-column factors into the weight first.
+    pub smooth: Option<f32>,
+    /// Input columns kept in 16-bit (the most important ones).
+    pub keep_cols: usize,
+    /// Fraction of individual weights kept in 16-bit (the largest |w|).
+    pub keep_frac: f32,
 }
 
 impl Default for Recipe {
-    /// 4-bit asymmetric groups of 128 with f16 scales: the most common weight-only choice for
-    /// large layers today (common practice).
+    /// 4-bit asymmetric groups of 128 with f16 scales, round to nearest: the most common
+    /// weight-only choice for large layers today (common practice). GPTQ's 1 % dampening is
+    /// the GPTQ paper's default.
     fn default() -> Self {
-        Recipe { bits: 4, granularity: Granularity::Group(128), symmetric: false, scale_dtype: ScaleDType::F16 }
+        Recipe {
+            bits: 4,
+            granularity: Granularity::Group(128),
+            symmetric: false,
+            scale_dtype: ScaleDType::F16,
+            method: Method::Rtn,
+            damp: 0.01,
+            act_order: false,
+            awq_clip: false,
+            smooth: None,
+            keep_cols: 0,
+            keep_frac: 0.0,
+        }
     }
 }
 
@@ -175,17 +247,54 @@ impl Recipe {
                 });
             }
         }
+        let bad = |detail: String| Err(Error::BadRecipe { detail });
+        if !(0.0..=1.0).contains(&self.damp) {
+            return bad(format!("dampening {} is outside 0..=1", self.damp));
+        }
+        if let Some(alpha) = self.smooth {
+            if !(0.0..=1.0).contains(&alpha) {
+                return bad(format!("smoothing strength {alpha} is outside 0..=1"));
+            }
+        }
+        if !(0.0..=MAX_KEEP_FRACTION).contains(&self.keep_frac) {
+            return bad(format!("kept fraction {} is outside 0..={MAX_KEEP_FRACTION}", self.keep_frac));
+        }
+        if self.keep_cols > 0 && self.keep_frac > 0.0 {
+            return bad("keep either whole columns or a fraction of weights, not both".into());
+        }
+        if self.method == Method::Hqq && self.symmetric {
+            return bad("HQQ fits the zero point, so it needs an asymmetric grid".into());
+        }
         Ok(())
     }
 
-    /// A short label such as "int4 asym g128 f16".
+    /// Whether per-column factors are folded into the weight (smoothing or AWQ).
+    pub fn scales_columns(&self) -> bool {
+        self.smooth.is_some() || self.method == Method::Awq
+    }
+
+    /// A short label such as "int4 asym g128 f16" or "int4 asym g128 f16 gptq keep 1%".
     pub fn label(&self) -> String {
         let grouping = match self.granularity {
             Granularity::Group(g) => format!("g{g}"),
             other => format!("per-{other}"),
         };
         let mode = if self.symmetric { "sym" } else { "asym" };
-        format!("int{} {mode} {grouping} {}", self.bits, self.scale_dtype.name())
+        let mut label = format!("int{} {mode} {grouping} {}", self.bits, self.scale_dtype.name());
+        if self.method != Method::Rtn {
+            label.push(' ');
+            label.push_str(self.method.name());
+        }
+        if let Some(alpha) = self.smooth {
+            label.push_str(&format!(" smooth {alpha}"));
+        }
+        if self.keep_cols > 0 {
+            label.push_str(&format!(" keep {} cols", self.keep_cols));
+        }
+        if self.keep_frac > 0.0 {
+            label.push_str(&format!(" keep {}%", self.keep_frac * 100.0));
+        }
+        label
     }
 }
 
@@ -200,6 +309,10 @@ mod tests {
         assert!(Recipe { bits: 9, ..Recipe::default() }.validate().is_err());
         assert!(Recipe { granularity: Granularity::Group(4), ..Recipe::default() }.validate().is_err());
         assert!(Recipe { granularity: Granularity::Group(4097), ..Recipe::default() }.validate().is_err());
+        assert!(Recipe { method: Method::Hqq, symmetric: true, ..Recipe::default() }.validate().is_err());
+        assert!(Recipe { keep_cols: 2, keep_frac: 0.01, ..Recipe::default() }.validate().is_err());
+        assert!(Recipe { smooth: Some(1.5), ..Recipe::default() }.validate().is_err());
+        assert!(Recipe { damp: -0.1, ..Recipe::default() }.validate().is_err());
     }
 
     #[test]
@@ -233,9 +346,9 @@ mod tests {
 
     #[test]
     fn recipes_round_trip_through_json() {
-        let r = Recipe { bits: 3, granularity: Granularity::Group(32), symmetric: true, scale_dtype: ScaleDType::BF16 };
+        let r = Recipe { bits: 3, granularity: Granularity::Group(32), symmetric: true, scale_dtype: ScaleDType::BF16, ..Recipe::default() };
         let json = serde_json::to_string(&r).unwrap();
-        assert_eq!(json, r#"{"bits":3,"granularity":{"group":32},"symmetric":true,"scale_dtype":"bf16"}"#);
+        assert!(json.starts_with(r#"{"bits":3,"granularity":{"group":32},"symmetric":true,"scale_dtype":"bf16","method":"rtn""#), "{json}");
         assert_eq!(serde_json::from_str::<Recipe>(&json).unwrap(), r);
         assert_eq!(serde_json::from_str::<Recipe>("{}").unwrap(), Recipe::default());
         assert!(serde_json::from_str::<Recipe>(r#"{"bitz":3}"#).is_err());

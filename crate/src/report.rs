@@ -3,7 +3,10 @@
 //! The JSON schema is `bitloupe.report/1`; README.md documents every field.
 
 use crate::analysis::Analysis;
+use crate::calib::OutputError;
 use crate::cost::BitCost;
+use crate::methods::smooth::SmoothingStudy;
+use crate::methods::MethodFigures;
 use crate::metrics::ErrorFigures;
 use crate::recipe::Recipe;
 use crate::tensor::Tensor;
@@ -79,8 +82,19 @@ pub struct Report<'a> {
     pub totals: ErrorFigures,
     /// The bit budget by part.
     pub cost: BitCost,
+    /// The method and its own figures (chosen α, iterations, accumulated loss, …).
+    pub method: &'a MethodFigures,
+    /// ‖X·Ŵᵀ − X·Wᵀ‖_F / ‖X·Wᵀ‖_F, when calibration data was given.
+    pub output_rel_err: Option<f64>,
+    /// Whether `output_rel_err` is the diagonal estimate from per-column statistics.
+    pub output_estimated: Option<bool>,
+    /// Output error per output row, when calibration data was given.
+    pub output_rel_err_per_row: Option<&'a [f32]>,
     /// Per-group figures.
     pub groups: GroupSection<'a>,
+    /// The W8A8 smoothing study, when one was asked for.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub smoothing: Option<&'a SmoothingStudy>,
     /// How many input columns score as outliers.
     pub outlier_column_count: usize,
     /// The most outlying input columns (up to 32), largest score first.
@@ -115,6 +129,10 @@ impl<'a> Report<'a> {
             bytes: analysis.cost.bytes,
             totals: analysis.totals,
             cost: analysis.cost,
+            method: &analysis.method,
+            output_rel_err: analysis.output.as_ref().map(|o| o.rel_err),
+            output_estimated: analysis.output.as_ref().map(|o| o.estimated),
+            output_rel_err_per_row: analysis.output.as_ref().map(|o: &OutputError| o.per_row.as_slice()),
             groups: GroupSection {
                 rows: analysis.groups.rows,
                 per_row: analysis.groups.per_row,
@@ -122,6 +140,7 @@ impl<'a> Report<'a> {
                 mse: &analysis.groups.mse,
                 max_abs_err: &analysis.groups.max_abs_err,
             },
+            smoothing: None,
             outlier_column_count,
             outlier_columns,
             caution: CAUTION,
@@ -133,6 +152,13 @@ impl<'a> Report<'a> {
     pub fn without_group_lists(mut self) -> Self {
         self.groups.mse = &[];
         self.groups.max_abs_err = &[];
+        self.output_rel_err_per_row = None;
+        self
+    }
+
+    /// The same report with a W8A8 smoothing study.
+    pub fn with_smoothing(mut self, study: &'a SmoothingStudy) -> Self {
+        self.smoothing = Some(study);
         self
     }
 
@@ -148,14 +174,33 @@ impl<'a> Report<'a> {
             None => "exact (no error)".into(),
         };
         let c = &self.cost;
+        let output = match (self.output_rel_err, self.output_estimated) {
+            (Some(e), Some(true)) => format!("output     relative error {e:.4e} (estimated from per-column statistics)\n"),
+            (Some(e), _) => format!("output     relative error {e:.4e} on the calibration sample\n"),
+            _ => String::new(),
+        };
+        let method = method_line(self.method);
+        let smoothing = self.smoothing.map_or(String::new(), |st| {
+            format!(
+                "W8A8       output error {:.4e} without smoothing, {:.4e} with alpha {} (best alpha on the curve: {:.2}), activations per {}\n",
+                st.error_without,
+                st.error_with,
+                st.alpha,
+                st.best_alpha,
+                if st.act == crate::methods::smooth::ActQuant::Token { "token" } else { "tensor" }
+            )
+        });
         let name = if self.tensor.name.is_empty() { "(unnamed)" } else { self.tensor.name };
         format!(
             "tensor     {name}  {}  {:?}\n\
              recipe     {}\n\
+             {method}\
              size       {:.4} bits/weight, {} bytes ({:.2}x smaller than {}, {:.2}x smaller than 16-bit)\n\
-             budget     payload {} + scales {} + zero points {} = {} bits\n\
+             budget     payload {} + scales {} + zero points {} + kept {} + column factors {} = {} bits\n\
              error      SQNR {sqnr}, relative {:.4e}, MSE {:.4e}, max {:.4e}\n\
+             {output}\
              outliers   {} input columns at least {}x the median column's max |w|\n\
+             {smoothing}\
              caution    {}",
             self.tensor.dtype,
             self.tensor.shape,
@@ -168,6 +213,8 @@ impl<'a> Report<'a> {
             c.payload_bits,
             c.scale_bits,
             c.zero_point_bits,
+            c.kept_bits,
+            c.column_factor_bits,
             c.total_bits,
             self.totals.rel_fro_err,
             self.totals.mse,
@@ -176,5 +223,25 @@ impl<'a> Report<'a> {
             crate::metrics::OUTLIER_SCORE,
             self.caution,
         )
+    }
+}
+
+/// One line on what the method did, or nothing for round to nearest.
+fn method_line(method: &MethodFigures) -> String {
+    match method {
+        MethodFigures::Rtn => String::new(),
+        MethodFigures::Clip { mean_ratio, .. } => format!("method     clipping search, mean range ratio {mean_ratio:.3}\n"),
+        MethodFigures::Hqq(h) => format!(
+            "method     HQQ, {:.1} iterations per group, l{} error {:.4e} -> {:.4e}\n",
+            h.mean_iterations, h.p, h.lp_before, h.lp_after
+        ),
+        MethodFigures::Gptq(g) => format!(
+            "method     GPTQ, dampening {}, {}, {} dead columns, accumulated loss {:.4e}\n",
+            g.damp,
+            if g.act_order { "activation order" } else { "column order" },
+            g.dead_columns,
+            g.quadratic_loss
+        ),
+        MethodFigures::Awq(a) => format!("method     AWQ, chosen alpha {:.2}{}\n", a.alpha, if a.clip { " with clipping search" } else { "" }),
     }
 }

@@ -5,7 +5,7 @@
 //! out of wasm memory). Every fallible call returns `Result<_, JsError>`; a panic hook reports
 //! anything unexpected to the console instead of an opaque "unreachable".
 
-use crate::analysis::{analyze_with_progress, Analysis};
+use crate::analysis::{analyze_with, Analysis};
 use crate::metrics::Histogram;
 use crate::error::Error;
 use crate::recipe::Recipe;
@@ -195,7 +195,7 @@ impl TensorHandle {
                 let _ = f.call2(&JsValue::NULL, &JsValue::from(done as f64), &JsValue::from(total as f64));
             }
         };
-        let analysis = analyze_with_progress(&self.tensor, &recipe, &mut report).map_err(js_error)?;
+        let analysis = analyze_with(&self.tensor, &recipe, None, &mut report).map_err(js_error)?;
         let summary = to_js(&Report::new(&self.tensor, &analysis).without_group_lists())?;
         let report_json = Report::new(&self.tensor, &analysis).to_json();
         Ok(AnalysisHandle { analysis, summary, report_json, shape: self.tensor.shape.clone() })

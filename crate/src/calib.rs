@@ -1,0 +1,228 @@
+//! Calibration data: what the layer's inputs look like.
+//!
+//! Either an activation sample X of shape [tokens, cols] (the rows are the inputs x that the
+//! layer sees, y = x·Wᵀ), or one statistic per input column: max |x_j| or mean |x_j|. From a
+//! sample the core derives both statistics, the second moments E[x_j²], and the output error
+//! ‖X·Ŵᵀ − X·Wᵀ‖_F / ‖X·Wᵀ‖_F of any reconstruction Ŵ. With statistics only, the output
+//! error is estimated from the diagonal: Σ_rj (ŵ_rj − w_rj)²·m_j² / Σ_rj w_rj²·m_j², with m_j
+//! the given statistic (our approximation; it ignores correlations between columns).
+
+use crate::error::{Error, Result};
+use crate::linalg;
+use crate::tensor::Tensor;
+use ndarray::{Array2, ArrayView2};
+use serde::{Deserialize, Serialize};
+use std::str::FromStr;
+
+/// What a calibration tensor holds.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(rename_all = "lowercase")]
+pub enum CalibKind {
+    /// Activation rows [tokens, cols].
+    Sample,
+    /// One max |x_j| per input column.
+    MaxAbs,
+    /// One mean |x_j| per input column.
+    MeanAbs,
+}
+
+impl FromStr for CalibKind {
+    type Err = Error;
+    fn from_str(s: &str) -> Result<Self> {
+        match s.trim().to_ascii_lowercase().as_str() {
+            "sample" => Ok(CalibKind::Sample),
+            "maxabs" => Ok(CalibKind::MaxAbs),
+            "meanabs" => Ok(CalibKind::MeanAbs),
+            _ => Err(Error::BadCalibration { detail: format!("kind '{s}' is not one of sample, maxabs, meanabs") }),
+        }
+    }
+}
+
+/// Calibration data checked against a weight's input width.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Calibration {
+    /// The activation sample [tokens, cols], when one was given.
+    pub sample: Option<Array2<f32>>,
+    /// max |x_j| per column.
+    pub max_abs: Vec<f32>,
+    /// mean |x_j| per column.
+    pub mean_abs: Vec<f32>,
+    /// E[x_j²] per column (from the sample; the square of the given statistic otherwise).
+    pub mean_sq: Vec<f32>,
+    /// Which statistic was given when there is no sample.
+    pub kind: CalibKind,
+}
+
+impl Calibration {
+    /// Check `tensor` as calibration of `kind` for a weight with `cols` input columns.
+    pub fn from_tensor(tensor: &Tensor, kind: CalibKind, cols: usize) -> Result<Self> {
+        let bad = |detail: String| Error::BadCalibration { detail };
+        if tensor.shape.len() > 2 {
+            return Err(bad(format!(
+                "it has shape {:?}; give a 2-D sample [tokens, {cols}] (flatten batch and sequence first) or a vector of {cols} statistics",
+                tensor.shape
+            )));
+        }
+        if tensor.values.is_empty() {
+            return Err(bad(format!("it is empty (shape {:?})", tensor.shape)));
+        }
+        let count = tensor.non_finite();
+        if let Some((row, col)) = count.first {
+            return Err(bad(format!(
+                "it holds {} NaN and {} infinite values (first at row {row}, column {col})",
+                count.nan, count.inf
+            )));
+        }
+        let width = tensor.cols();
+        if width != cols {
+            return Err(bad(format!("it has {width} columns but the weight has {cols} input columns")));
+        }
+        match kind {
+            CalibKind::Sample => Ok(Self::from_sample(tensor.values.clone())),
+            CalibKind::MaxAbs | CalibKind::MeanAbs => {
+                if tensor.rows() != 1 {
+                    return Err(bad(format!(
+                        "per-column statistics must be one vector of {cols} values, not shape {:?}",
+                        tensor.shape
+                    )));
+                }
+                let stat: Vec<f32> = tensor.values.iter().map(|v| v.abs()).collect();
+                Ok(Calibration {
+                    sample: None,
+                    max_abs: stat.clone(),
+                    mean_abs: stat.clone(),
+                    mean_sq: stat.iter().map(|m| m * m).collect(),
+                    kind,
+                })
+            }
+        }
+    }
+
+    /// Calibration from an activation sample (finite, [tokens, cols]).
+    pub fn from_sample(sample: Array2<f32>) -> Self {
+        let cols = sample.ncols();
+        let tokens = sample.nrows().max(1) as f64;
+        let mut max_abs = vec![0f32; cols];
+        let mut sum_abs = vec![0f64; cols];
+        let mut sum_sq = vec![0f64; cols];
+        for row in sample.rows() {
+            for (j, &x) in row.iter().enumerate() {
+                max_abs[j] = max_abs[j].max(x.abs());
+                sum_abs[j] += f64::from(x.abs());
+                sum_sq[j] += f64::from(x) * f64::from(x);
+            }
+        }
+        Calibration {
+            max_abs,
+            mean_abs: sum_abs.iter().map(|s| (s / tokens) as f32).collect(),
+            mean_sq: sum_sq.iter().map(|s| (s / tokens) as f32).collect(),
+            sample: Some(sample),
+            kind: CalibKind::Sample,
+        }
+    }
+
+    /// Input columns.
+    pub fn cols(&self) -> usize {
+        self.max_abs.len()
+    }
+
+    /// The reference output X·Wᵀ for a weight, when there is a sample.
+    pub fn reference_output(&self, weight: ArrayView2<f32>) -> Option<Array2<f32>> {
+        self.sample.as_ref().map(|x| linalg::matmul_transposed(x.view(), weight))
+    }
+}
+
+/// Output error of a reconstruction against the original weight.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct OutputError {
+    /// ‖X·Ŵᵀ − X·Wᵀ‖_F / ‖X·Wᵀ‖_F (or the diagonal estimate without a sample).
+    pub rel_err: f64,
+    /// The same per output row (output channel).
+    pub per_row: Vec<f32>,
+    /// Whether this is the diagonal estimate from per-column statistics.
+    pub estimated: bool,
+}
+
+/// ‖X·(Ŵ − W)ᵀ‖ relative to ‖X·Wᵀ‖, per tensor and per output row. `reference` is X·Wᵀ when
+/// a sample exists (pass it in so that several reconstructions share one product).
+pub fn output_error(
+    calib: &Calibration,
+    weight: ArrayView2<f32>,
+    reconstruction: ArrayView2<f32>,
+    reference: Option<&Array2<f32>>,
+) -> OutputError {
+    let rows = weight.nrows();
+    let mut err = vec![0f64; rows];
+    let mut sig = vec![0f64; rows];
+    match (&calib.sample, reference) {
+        (Some(x), Some(y)) => {
+            let y_hat = linalg::matmul_transposed(x.view(), reconstruction);
+            for (yr, hr) in y.rows().into_iter().zip(y_hat.rows()) {
+                for (r, (&a, &b)) in yr.iter().zip(hr.iter()).enumerate() {
+                    let d = f64::from(b) - f64::from(a);
+                    err[r] += d * d;
+                    sig[r] += f64::from(a) * f64::from(a);
+                }
+            }
+        }
+        _ => {
+            for (r, (w, h)) in weight.rows().into_iter().zip(reconstruction.rows()).enumerate() {
+                for ((&a, &b), &m) in w.iter().zip(h.iter()).zip(&calib.mean_sq) {
+                    let d = f64::from(b) - f64::from(a);
+                    err[r] += d * d * f64::from(m);
+                    sig[r] += f64::from(a) * f64::from(a) * f64::from(m);
+                }
+            }
+        }
+    }
+    let ratio = |e: f64, s: f64| if e == 0.0 { 0.0 } else { (e / s).sqrt() };
+    OutputError {
+        rel_err: ratio(err.iter().sum(), sig.iter().sum()),
+        per_row: err.iter().zip(&sig).map(|(&e, &s)| ratio(e, s) as f32).collect(),
+        estimated: calib.sample.is_none(),
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::tensor::DType;
+
+    fn tensor(values: Vec<f32>, shape: (usize, usize)) -> Tensor {
+        Tensor::from_values("x", DType::F32, Array2::from_shape_vec(shape, values).unwrap())
+    }
+
+    #[test]
+    fn samples_give_column_statistics() {
+        let c = Calibration::from_tensor(&tensor(vec![1.0, -2.0, -3.0, 0.0], (2, 2)), CalibKind::Sample, 2).unwrap();
+        assert_eq!(c.max_abs, vec![3.0, 2.0]);
+        assert_eq!(c.mean_abs, vec![2.0, 1.0]);
+        assert_eq!(c.mean_sq, vec![5.0, 2.0]);
+    }
+
+    #[test]
+    fn bad_calibration_is_explained() {
+        let err = |t: &Tensor, kind| Calibration::from_tensor(t, kind, 3).unwrap_err().to_string();
+        assert!(err(&tensor(vec![1.0; 4], (2, 2)), CalibKind::Sample).contains("2 columns but the weight has 3"));
+        assert!(err(&tensor(vec![1.0, f32::NAN, 1.0], (1, 3)), CalibKind::Sample).contains("1 NaN"));
+        assert!(err(&tensor(vec![], (0, 3)), CalibKind::Sample).contains("empty"));
+        assert!(err(&tensor(vec![1.0; 6], (2, 3)), CalibKind::MaxAbs).contains("one vector"));
+        let mut cube = tensor(vec![1.0; 6], (2, 3));
+        cube.shape = vec![1, 2, 3];
+        assert!(err(&cube, CalibKind::Sample).contains("flatten batch and sequence"));
+    }
+
+    #[test]
+    fn output_error_is_zero_for_an_exact_reconstruction_and_relative_otherwise() {
+        let x = Array2::from_shape_vec((3, 2), vec![1.0, 0.0, 0.0, 1.0, 1.0, 1.0]).unwrap();
+        let c = Calibration::from_sample(x);
+        let w = Array2::from_shape_vec((1, 2), vec![1.0f32, 2.0]).unwrap();
+        let y = c.reference_output(w.view()).unwrap();
+        assert_eq!(output_error(&c, w.view(), w.view(), Some(&y)).rel_err, 0.0);
+        let h = Array2::from_shape_vec((1, 2), vec![1.1f32, 2.0]).unwrap();
+        // X·wᵀ = [1, 2, 3]; the error is 0.1 on rows 1 and 3: sqrt(0.02 / 14).
+        let e = output_error(&c, w.view(), h.view(), Some(&y));
+        assert!((e.rel_err - (0.02f64 / 14.0).sqrt()).abs() < 1e-6, "{}", e.rel_err);
+        assert!(!e.estimated);
+    }
+}

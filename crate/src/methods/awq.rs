@@ -1,0 +1,83 @@
+//! Activation-aware scaling (AWQ; Lin, Tang, Tang, Yang, Chen, Wang, Xiao, Dang, Gan & Han,
+//! "AWQ: Activation-aware Weight Quantization for LLM Compression and Acceleration", MLSys 2024).
+//!
+//! Per-column factors s_j = (mean|x_j|)^α, clamped below at 10⁻⁴ and divided by
+//! √(max s · min s) so they centre on 1 (from memory of the paper's reference code), scale the
+//! weight before quantization: Ŵ = Q(W·diag(s))·diag(s)⁻¹. α is searched on 0, 0.05, …, 1 and
+//! the α with the lowest output error on the calibration data is kept; α = 0 gives s = 1, plain
+//! round to nearest, so the choice is never worse than that. Optionally a clipping ratio is then
+//! searched per group by output-weighted error. Without an activation sample the output error
+//! is the diagonal estimate of `calib`.
+
+use super::keep::Kept;
+use super::{clip, rtn, scale_columns, unscale_columns, MethodFigures, Quantized};
+use crate::calib::{output_error, Calibration};
+use crate::error::Result;
+use crate::recipe::{Method, Recipe};
+use ndarray::ArrayView2;
+use serde::Serialize;
+
+/// What AWQ reports.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct AwqFigures {
+    /// The chosen strength.
+    pub alpha: f32,
+    /// (α, output error) over the search grid.
+    pub curve: Vec<[f64; 2]>,
+    /// Whether a clipping ratio was searched per group afterwards.
+    pub clip: bool,
+    /// Whether the errors are the diagonal estimate (no activation sample).
+    pub estimated: bool,
+}
+
+/// The factors for strength `alpha`.
+pub fn factors(mean_abs: &[f32], alpha: f32) -> Vec<f32> {
+    let raw: Vec<f32> = mean_abs.iter().map(|m| m.powf(alpha).max(1e-4)).collect();
+    let (lo, hi) = raw.iter().fold((f32::INFINITY, 0f32), |(lo, hi), &v| (lo.min(v), hi.max(v)));
+    let centre = (lo * hi).sqrt();
+    raw.iter().map(|v| v / centre).collect()
+}
+
+/// AWQ's α search on weight `w`.
+pub fn run(
+    w: ArrayView2<f32>,
+    recipe: &Recipe,
+    calib: &Calibration,
+    kept: &Kept,
+    progress: &mut dyn FnMut(usize, usize),
+) -> Result<Quantized> {
+    let plain = Recipe { method: Method::Rtn, ..*recipe };
+    let reference = calib.reference_output(w);
+    let candidate = |alpha: f32| -> Result<(Quantized, Vec<f32>)> {
+        let s = factors(&calib.mean_abs, alpha);
+        let mut q = rtn(scale_columns(w, &s).view(), &plain, kept)?;
+        unscale_columns(&mut q.dequantized, &s);
+        kept.restore(w, &mut q.dequantized);
+        Ok((q, s))
+    };
+    let steps = 21;
+    let mut curve = Vec::with_capacity(steps);
+    let mut best: Option<(f64, f32, Quantized, Vec<f32>)> = None;
+    for i in 0..steps {
+        let alpha = i as f32 / (steps - 1) as f32;
+        let (q, s) = candidate(alpha)?;
+        let err = output_error(calib, w, q.dequantized.view(), reference.as_ref()).rel_err;
+        curve.push([f64::from(alpha), err]);
+        if best.as_ref().is_none_or(|b| err < b.0) {
+            best = Some((err, alpha, q, s));
+        }
+        progress(i + 1, steps);
+    }
+    let (_, alpha, mut q, s) = best.expect("the grid is not empty");
+    if recipe.awq_clip {
+        // Clip in the scaled space, where the inputs are x_j / s_j.
+        let mut scaled_calib = calib.clone();
+        scaled_calib.sample = None;
+        scaled_calib.mean_sq = calib.mean_sq.iter().zip(&s).map(|(m, f)| m / (f * f)).collect();
+        q = clip::run(scale_columns(w, &s).view(), &plain, Some(&scaled_calib), kept)?;
+        unscale_columns(&mut q.dequantized, &s);
+        kept.restore(w, &mut q.dequantized);
+    }
+    q.figures = MethodFigures::Awq(AwqFigures { alpha, curve, clip: recipe.awq_clip, estimated: calib.sample.is_none() });
+    Ok(q)
+}

@@ -1,0 +1,191 @@
+//! What chooses the codes: round to nearest, clipping search, HQQ, GPTQ and AWQ, plus the two
+//! outlier treatments that wrap any of them — folding per-column factors into the weight
+//! (smoothing, AWQ) and keeping chosen values in 16-bit.
+//!
+//! Every method returns the reconstruction Ŵ in the original weight's space and the fitted
+//! parameters of every group; `analysis` then measures Ŵ against W the same way for all.
+
+pub mod awq;
+pub mod clip;
+pub mod gptq;
+pub mod hqq;
+pub mod keep;
+pub mod smooth;
+
+use crate::calib::Calibration;
+use crate::error::{Error, Result};
+use crate::grid::{GroupParams, IntGrid, ScaleOverflow};
+use crate::recipe::{Granularity, Method, Recipe};
+use ndarray::{Array2, ArrayView2};
+use serde::Serialize;
+
+/// The figures a method reports about its own work.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+#[serde(tag = "name", rename_all = "lowercase")]
+pub enum MethodFigures {
+    /// Round to nearest.
+    Rtn,
+    /// Clipping search.
+    Clip {
+        /// Mean of the chosen range ratios over all groups.
+        mean_ratio: f32,
+        /// Whether candidates were ranked by output-weighted error (calibration) or weight MSE.
+        output_weighted: bool,
+    },
+    /// Half-quadratic zero points.
+    Hqq(hqq::HqqFigures),
+    /// Error-compensating rounding.
+    Gptq(gptq::GptqFigures),
+    /// Activation-aware scaling.
+    Awq(awq::AwqFigures),
+}
+
+/// A reconstruction and how it was made.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Quantized {
+    /// Ŵ in the original weight's space.
+    pub dequantized: Array2<f32>,
+    /// Fitted parameters of every group, row-major (one for a per-tensor recipe).
+    pub params: Vec<GroupParams>,
+    /// The method's own figures.
+    pub figures: MethodFigures,
+}
+
+/// Run the recipe's method (with its smoothing and kept values) on weight `w`.
+pub fn run(
+    w: ArrayView2<f32>,
+    recipe: &Recipe,
+    calib: Option<&Calibration>,
+    progress: &mut dyn FnMut(usize, usize),
+) -> Result<Quantized> {
+    let needs = |what: &str| Error::BadRecipe { detail: format!("{what} needs calibration data") };
+    let kept = keep::Kept::choose(w, recipe, calib);
+    if recipe.method == Method::Awq {
+        let calib = calib.ok_or_else(|| needs("AWQ"))?;
+        return awq::run(w, recipe, calib, &kept, progress);
+    }
+    let column_factors = match recipe.smooth {
+        Some(alpha) => Some(smooth::factors(w, calib.ok_or_else(|| needs("smoothing"))?, alpha)),
+        None => None,
+    };
+    let scaled = column_factors.as_ref().map(|s| scale_columns(w, s));
+    let target = match &scaled {
+        Some(s) => s.view(),
+        None => w.view(),
+    };
+    let mut q = match recipe.method {
+        Method::Rtn => rtn(target, recipe, &kept)?,
+        Method::Clip => clip::run(target, recipe, calib, &kept)?,
+        Method::Hqq => hqq::run(target, recipe, &kept)?,
+        Method::Gptq => {
+            let calib = calib.filter(|c| c.sample.is_some()).ok_or_else(|| {
+                Error::BadRecipe { detail: "GPTQ needs an activation sample [tokens, cols], not only per-column statistics".into() }
+            })?;
+            gptq::run(target, recipe, calib, column_factors.as_deref(), &kept, progress)?
+        }
+        Method::Awq => unreachable!("handled above"),
+    };
+    if let Some(s) = &column_factors {
+        unscale_columns(&mut q.dequantized, s);
+    }
+    // GPTQ already wrote each kept value as its compensated value in f16.
+    if recipe.method != Method::Gptq {
+        kept.restore(w, &mut q.dequantized);
+    }
+    Ok(q)
+}
+
+/// Round to nearest, group by group, with kept values left out of the fit.
+pub fn rtn(w: ArrayView2<f32>, recipe: &Recipe, kept: &keep::Kept) -> Result<Quantized> {
+    let grid = IntGrid::new(recipe);
+    let (dequantized, params) =
+        quantize_groups(w, recipe, kept, |x, _| grid.fit(x), |p, x, out| grid.quantize_into(p, x, out), |_, _, _| {})?;
+    Ok(Quantized { dequantized, params, figures: MethodFigures::Rtn })
+}
+
+/// Round to nearest over the rows of `w` in one pass, handing each row and its reconstruction to
+/// `each_row` while both are still in cache. This is the plain recipe's path, and the speed
+/// benchmark's subject.
+pub fn rtn_rows(w: ArrayView2<f32>, recipe: &Recipe, each_row: impl FnMut(usize, &[f32], &[f32])) -> Result<Quantized> {
+    let grid = IntGrid::new(recipe);
+    let none = keep::Kept::default();
+    let (dequantized, params) =
+        quantize_groups(w, recipe, &none, |x, _| grid.fit(x), |p, x, out| grid.quantize_into(p, x, out), each_row)?;
+    Ok(Quantized { dequantized, params, figures: MethodFigures::Rtn })
+}
+
+/// Width of the groups of a row (the whole row for per-row and per-tensor recipes).
+pub fn group_width(granularity: Granularity, cols: usize) -> usize {
+    match granularity {
+        Granularity::Group(g) => g,
+        Granularity::Row | Granularity::Tensor => cols.max(1),
+    }
+}
+
+/// Fit and quantize every group of `w`: `fit(values, first column)` chooses the parameters
+/// (kept values are zeroed first so they do not stretch the range), `quantize` writes the
+/// group's reconstruction, and `each_row(row, values, reconstruction)` sees every finished row.
+pub fn quantize_groups(
+    w: ArrayView2<f32>,
+    recipe: &Recipe,
+    kept: &keep::Kept,
+    mut fit: impl FnMut(&[f32], usize) -> std::result::Result<GroupParams, ScaleOverflow>,
+    mut quantize: impl FnMut(GroupParams, &[f32], &mut [f32]),
+    mut each_row: impl FnMut(usize, &[f32], &[f32]),
+) -> Result<(Array2<f32>, Vec<GroupParams>)> {
+    let masked = kept.masked(w);
+    let source = match &masked {
+        Some(m) => m.view(),
+        None => w.view(),
+    };
+    let (rows, cols) = w.dim();
+    let width = group_width(recipe.granularity, cols);
+    let overflow = |row: usize, col: usize| {
+        move |e: ScaleOverflow| Error::ScaleOverflow { scale: e.0, dtype: recipe.scale_dtype.name(), row, col }
+    };
+    let source = source.as_standard_layout();
+    let whole = match recipe.granularity {
+        Granularity::Tensor => Some(fit(source.as_slice().expect("standard layout"), 0).map_err(overflow(0, 0))?),
+        _ => None,
+    };
+    let mut out = Array2::<f32>::zeros((rows, cols));
+    let mut params = Vec::with_capacity(recipe.granularity.group_count(rows, cols));
+    params.extend(whole);
+    for (r, (x_row, mut out_row)) in source.rows().into_iter().zip(out.rows_mut()).enumerate() {
+        let x_row = x_row.to_slice().expect("standard layout");
+        let out_row = out_row.as_slice_mut().expect("row-major output");
+        for (k, (x, o)) in x_row.chunks(width).zip(out_row.chunks_mut(width)).enumerate() {
+            let p = match whole {
+                Some(p) => p,
+                None => {
+                    let p = fit(x, k * width).map_err(overflow(r, k * width))?;
+                    params.push(p);
+                    p
+                }
+            };
+            quantize(p, x, o);
+        }
+        each_row(r, x_row, out_row);
+    }
+    Ok((out, params))
+}
+
+/// W·diag(s).
+pub fn scale_columns(w: ArrayView2<f32>, s: &[f32]) -> Array2<f32> {
+    let mut out = w.to_owned();
+    for mut row in out.rows_mut() {
+        for (v, f) in row.iter_mut().zip(s) {
+            *v *= f;
+        }
+    }
+    out
+}
+
+/// Ŵ·diag(s)⁻¹, in place.
+pub fn unscale_columns(w: &mut Array2<f32>, s: &[f32]) {
+    for mut row in w.rows_mut() {
+        for (v, f) in row.iter_mut().zip(s) {
+            *v /= f;
+        }
+    }
+}
