@@ -143,6 +143,7 @@ fn recipe_of(case: &Value) -> Recipe {
         granularity: case["group"].as_str().unwrap().parse::<Granularity>().unwrap(),
         symmetric: case["symmetric"].as_bool().unwrap(),
         scale_dtype: case["scale_dtype"].as_str().unwrap().parse::<ScaleDType>().unwrap(),
+        ..Recipe::default()
     }
 }
 
@@ -188,7 +189,7 @@ fn uniform_case(bits: u8, n: usize) -> (f64, f64, f64) {
     // Values uniform on [0, 1); per-tensor, the grid spans [0, max] in 2^b − 1 steps.
     let values: Vec<f32> = (0..n).map(|_| rng.uniform() as f32).collect();
     let t = Tensor::from_values("u", DType::F32, Array2::from_shape_vec((1, n), values).unwrap());
-    let recipe = Recipe { bits, granularity: Granularity::Tensor, symmetric: false, scale_dtype: ScaleDType::F32 };
+    let recipe = Recipe { bits, granularity: Granularity::Tensor, symmetric: false, scale_dtype: ScaleDType::F32, ..Recipe::default() };
     let a = analyze(&t, &recipe).unwrap();
     let step = f64::from(a.params[0].scale);
     (a.totals.mse, step * step / 12.0, a.totals.sqnr_db.unwrap())
