@@ -6,6 +6,11 @@
 //! show, with each row's spread varying a little, and eight input columns made 4–12× larger than
 //! the rest, the outlier-column pattern that makes per-group quantization hard.
 //!
+//! The matching activation sample, 512 tokens × 4096 input channels, mixes 16 shared latent
+//! factors (so channels are correlated, as a layer's inputs are) with independent noise, and
+//! gives six channels a gain of 20–100×: the large-activation-outlier pattern that the
+//! SmoothQuant and LLM.int8() papers describe.
+//!
 //! The generator is SplitMix64 (Steele, Lea and Flood, "Fast splittable pseudorandom number
 //! generators", OOPSLA 2014) with the Box–Muller transform for normals, written here rather than
 //! taken from a crate so that the seeded stream, and so every demo figure and saved link, stays
@@ -22,6 +27,13 @@ pub const DEMO_COLS: usize = 4096;
 pub const DEMO_NAME: &str = "demo.block3.ffn.up.weight";
 const DEMO_SEED: u64 = 0x6269_746c_6f75_7065;
 const OUTLIER_COLUMNS: usize = 8;
+/// Tokens in the demo activation sample.
+pub const DEMO_TOKENS: usize = 512;
+/// Name shown for the demo activation sample.
+pub const DEMO_ACTIVATIONS_NAME: &str = "demo.block3.ffn.up.input";
+const ACTIVATION_SEED: u64 = 0x6163_7469_7661_7465;
+const LATENT_FACTORS: usize = 16;
+const OUTLIER_CHANNELS: usize = 6;
 
 /// A small seeded pseudorandom generator (SplitMix64).
 #[derive(Debug, Clone)]
@@ -82,6 +94,24 @@ pub fn weight() -> Tensor {
     Tensor::from_values(DEMO_NAME, DType::F32, values)
 }
 
+/// The demo activation sample matched to [`weight`]: [512 tokens, 4096 channels].
+pub fn activations() -> Tensor {
+    let mut rng = Rng::new(ACTIVATION_SEED);
+    let mixing = Array2::from_shape_fn((LATENT_FACTORS, DEMO_COLS), |_| (rng.normal() * 0.35) as f32);
+    let latent = Array2::from_shape_fn((DEMO_TOKENS, LATENT_FACTORS), |_| rng.normal() as f32);
+    let mut gain = vec![1.0f32; DEMO_COLS];
+    for _ in 0..OUTLIER_CHANNELS {
+        gain[rng.below(DEMO_COLS)] = (20.0 + 80.0 * rng.uniform()) as f32;
+    }
+    let mut values = latent.dot(&mixing);
+    for mut row in values.rows_mut() {
+        for (v, g) in row.iter_mut().zip(&gain) {
+            *v = (*v + 0.6 * rng.normal() as f32) * g;
+        }
+    }
+    Tensor::from_values(DEMO_ACTIVATIONS_NAME, DType::F32, values)
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
@@ -117,5 +147,18 @@ mod tests {
         let m2 = t.values.iter().map(|&v| (v as f64).powi(2)).sum::<f64>() / n;
         let m4 = t.values.iter().map(|&v| (v as f64).powi(4)).sum::<f64>() / n;
         assert!(m4 / (m2 * m2) > 5.0, "kurtosis {} shows heavy tails (a normal has 3)", m4 / (m2 * m2));
+    }
+
+    #[test]
+    fn demo_activations_have_a_few_loud_channels() {
+        let x = activations();
+        assert_eq!(x.shape, vec![DEMO_TOKENS, DEMO_COLS]);
+        let calib = crate::calib::Calibration::from_sample(x.values.clone());
+        let mut sorted = calib.max_abs.clone();
+        sorted.sort_by(f32::total_cmp);
+        let median = sorted[DEMO_COLS / 2];
+        let loud = calib.max_abs.iter().filter(|&&m| m > 15.0 * median).count();
+        assert!((4..=OUTLIER_CHANNELS).contains(&loud), "{loud} loud channels");
+        assert!(sorted[DEMO_COLS - 1] > 20.0 * median);
     }
 }

@@ -58,11 +58,15 @@ mod cli {
             #[arg(long, value_name = "REPORT.json")]
             report: Option<PathBuf>,
         },
-        /// Write the built-in demo weight (seeded, invented) as a .npy file.
+        /// Write the built-in demo weight (seeded, invented) as a .npy file, and optionally its
+        /// matching activation sample.
         Demo {
-            /// Where to write it.
+            /// Where to write the weight.
             #[arg(long, value_name = "DEMO.npy")]
             out: PathBuf,
+            /// Where to write the activation sample [512 tokens, 4096 channels].
+            #[arg(long, value_name = "ACTS.npy")]
+            activations: Option<PathBuf>,
         },
     }
 
@@ -221,10 +225,13 @@ mod cli {
                 }
                 write_all_or_nothing(&outputs)
             }
-            Command::Demo { out } => {
-                let demo = bitloupe::demo::weight();
-                let bytes = npy::write_f32(demo.values.as_slice().expect("row-major"), &demo.shape);
-                write_all_or_nothing(&[(out, bytes)])
+            Command::Demo { out, activations } => {
+                let as_npy = |t: &Tensor| npy::write_f32(t.values.as_slice().expect("row-major"), &t.shape);
+                let mut outputs = vec![(out, as_npy(&bitloupe::demo::weight()))];
+                if let Some(path) = activations {
+                    outputs.push((path, as_npy(&bitloupe::demo::activations())));
+                }
+                write_all_or_nothing(&outputs)
             }
         }
     }

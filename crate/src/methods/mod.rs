@@ -78,9 +78,12 @@ pub fn run(
         Method::Clip => clip::run(target, recipe, calib, &kept)?,
         Method::Hqq => hqq::run(target, recipe, &kept)?,
         Method::Gptq => {
-            let calib = calib.filter(|c| c.sample.is_some()).ok_or_else(|| {
-                Error::BadRecipe { detail: "GPTQ needs an activation sample [tokens, cols], not only per-column statistics".into() }
-            })?;
+            let calib = calib.ok_or_else(|| needs("GPTQ"))?;
+            if calib.sample.is_none() {
+                return Err(Error::BadRecipe {
+                    detail: "GPTQ needs an activation sample [tokens, cols], not only per-column statistics".into(),
+                });
+            }
             gptq::run(target, recipe, calib, column_factors.as_deref(), &kept, progress)?
         }
         Method::Awq => unreachable!("handled above"),
