@@ -2,7 +2,7 @@
 //! Errors must arrive as JS errors with the core's message, never as panics.
 #![cfg(target_arch = "wasm32")]
 
-use bitloupe::wasm::{demo_weight, open_bytes, parse_text, recipe_defaults};
+use bitloupe::wasm::{calibration_from_bytes, demo_weight, open_bytes, parse_text, recipe_defaults};
 use bitloupe::{analyze, tensor, ReadOptions};
 use wasm_bindgen::prelude::*;
 use wasm_bindgen_test::*;
@@ -42,7 +42,7 @@ fn the_boundary_runs_a_recipe_and_hands_out_typed_arrays() {
     assert_eq!(get(&get(&defaults, "recipe"), "bits").as_f64(), Some(4.0));
     let handle = open_bytes(WEIGHT, None, false).unwrap();
     assert_eq!(get(&handle.info().unwrap(), "cols").as_f64(), Some(300.0));
-    let analysis = handle.analyze(recipe(r#"{"bits": 3, "granularity": {"group": 64}, "symmetric": true, "scale_dtype": "bf16"}"#), None).unwrap();
+    let analysis = handle.analyze(recipe(r#"{"bits": 3, "granularity": {"group": 64}, "symmetric": true, "scale_dtype": "bf16"}"#), None, None).unwrap();
     let summary = analysis.summary();
     assert_eq!(get(&summary, "label").as_string().unwrap(), "int3 sym g64 bf16");
     assert_eq!(analysis.group_mse().length(), 37 * 5);
@@ -60,7 +60,7 @@ fn the_boundary_runs_a_recipe_and_hands_out_typed_arrays() {
 
 #[wasm_bindgen_test]
 fn the_demo_weight_costs_4_15625_bits_at_the_default_recipe() {
-    let analysis = demo_weight().analyze(JsValue::UNDEFINED, None).unwrap();
+    let analysis = demo_weight().analyze(JsValue::UNDEFINED, None, None).unwrap();
     assert_eq!(get(&analysis.summary(), "bits_per_weight").as_f64(), Some(4.15625));
     assert_eq!(analysis.group_mse().length(), 1024 * 32);
 }
@@ -75,8 +75,28 @@ fn bad_inputs_become_js_errors_with_the_core_message() {
     expect(open_bytes(&WEIGHT[..WEIGHT.len() - 7], None, false).err(), "truncated");
     expect(open_bytes(b"hello", None, false).err(), "magic");
     let handle = parse_text("1 nan\n2 3").unwrap();
-    expect(handle.analyze(JsValue::UNDEFINED, None).err(), "1 NaN");
+    expect(handle.analyze(JsValue::UNDEFINED, None, None).err(), "1 NaN");
     let ok = parse_text("1 2\n3 4").unwrap();
-    expect(ok.analyze(recipe(r#"{"bits": 12}"#), None).err(), "12 bits");
-    expect(ok.analyze(recipe(r#"{"bitz": 4}"#), None).err(), "invalid recipe");
+    expect(ok.analyze(recipe(r#"{"bits": 12}"#), None, None).err(), "12 bits");
+    expect(ok.analyze(recipe(r#"{"bitz": 4}"#), None, None).err(), "invalid recipe");
+}
+
+const METHOD_WEIGHT: &[u8] = include_bytes!("../fixtures/method_weight.npy");
+const METHOD_ACTS: &[u8] = include_bytes!("../fixtures/method_acts.npy");
+
+/// GPTQ and the smoothing study through the boundary, in wasm: the same figures as natively
+/// (the numpy cross-checks of tests/methods.rs hold there).
+#[wasm_bindgen_test]
+fn calibration_methods_run_in_wasm() {
+    let w = open_bytes(METHOD_WEIGHT, None, false).unwrap();
+    let calib = calibration_from_bytes(METHOD_ACTS, None, "sample", 192).unwrap();
+    let gptq = w.analyze_with_calibration(recipe(r#"{"bits": 3, "granularity": {"group": 64}, "method": "gptq"}"#), None, &calib).unwrap();
+    let rtn = w.analyze_with_calibration(recipe(r#"{"bits": 3, "granularity": {"group": 64}}"#), None, &calib).unwrap();
+    let out = |a: &bitloupe::wasm::AnalysisHandle| get(&a.summary(), "output_rel_err").as_f64().unwrap();
+    assert!(out(&gptq) < 0.5 * out(&rtn), "GPTQ {} vs RTN {}", out(&gptq), out(&rtn));
+    assert_eq!(gptq.output_row_err().length(), 24);
+    let study = w.smoothing_study(&calib, 0.5, "token", None).unwrap();
+    assert!(get(&study, "error_with").as_f64().unwrap() < get(&study, "error_without").as_f64().unwrap());
+    let narrow = calibration_from_bytes(METHOD_ACTS, None, "sample", 300).err().unwrap();
+    assert!(message(narrow).contains("192 columns but the weight has 300"));
 }

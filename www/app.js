@@ -3,7 +3,7 @@
 
 import { CoreBridge, Cancelled } from './bridge.js';
 import { ErrorMap } from './errormap.js';
-import { ColumnProfile, GroupHistogram } from './charts.js';
+import { SeriesChart, GroupHistogram } from './charts.js';
 import { GRADIENT } from './colors.js';
 import * as fmt from './format.js';
 
@@ -30,6 +30,8 @@ const state = {
   file: null,
   selectedGroup: null,
   selectedColumn: null,
+  calib: null,
+  study: null,
 };
 
 // ------------------------------------------------------------------ worker bridge
@@ -96,16 +98,42 @@ function buildControls(defaults) {
     granularity.add(new Option(`groups of ${g}`, `${g}`));
   }
   setRecipe(defaults.recipe);
-  for (const id of ['bits', 'granularity', 'symmetric', 'scale-dtype']) $(id).addEventListener('change', () => analyze());
+  const controls = ['bits', 'granularity', 'symmetric', 'scale-dtype', 'method', 'damp', 'act-order', 'awq-clip', 'keep', 'keep-cols', 'keep-frac', 'smooth-on', 'smooth-alpha'];
+  for (const id of controls) {
+    $(id).addEventListener('change', () => {
+      showDependentControls();
+      analyze();
+    });
+  }
+  $('smooth-alpha').addEventListener('input', () => {
+    $('smooth-alpha-out').textContent = `α ${Number($('smooth-alpha').value).toFixed(2)}`;
+    showSmoothedColumns();
+  });
+  showDependentControls();
+}
+
+/** Show only the controls that apply to the chosen method and outlier treatment. */
+function showDependentControls() {
+  const shown = new Set([$('method').value, $('keep').value === 'cols' ? 'keep-cols' : '', $('keep').value === 'frac' ? 'keep-frac' : '']);
+  for (const el of document.querySelectorAll('[data-show]')) el.hidden = !shown.has(el.dataset.show);
+  $('smooth-alpha').disabled = !$('smooth-on').checked && !state.calib;
 }
 
 function readRecipe() {
   const g = $('granularity').value;
+  const keep = $('keep').value;
   return {
     bits: Number($('bits').value),
     granularity: g === 'tensor' || g === 'row' ? g : { group: Number(g) },
     symmetric: $('symmetric').value === 'true',
     scale_dtype: $('scale-dtype').value,
+    method: $('method').value,
+    damp: Number($('damp').value),
+    act_order: $('act-order').checked,
+    awq_clip: $('awq-clip').checked,
+    smooth: $('smooth-on').checked ? Number($('smooth-alpha').value) : null,
+    keep_cols: keep === 'cols' ? Math.max(1, Math.round(Number($('keep-cols').value))) : 0,
+    keep_frac: keep === 'frac' ? Number($('keep-frac').value) / 100 : 0,
   };
 }
 
@@ -114,6 +142,15 @@ function setRecipe(recipe) {
   $('granularity').value = typeof recipe.granularity === 'string' ? recipe.granularity : String(recipe.granularity.group);
   $('symmetric').value = String(recipe.symmetric);
   $('scale-dtype').value = recipe.scale_dtype;
+  $('method').value = recipe.method;
+  $('damp').value = String(recipe.damp);
+  $('act-order').checked = recipe.act_order;
+  $('awq-clip').checked = recipe.awq_clip;
+  $('smooth-on').checked = recipe.smooth !== null;
+  if (recipe.smooth !== null) $('smooth-alpha').value = String(recipe.smooth);
+  $('keep').value = recipe.keep_cols > 0 ? 'cols' : recipe.keep_frac > 0 ? 'frac' : 'none';
+  if (recipe.keep_cols > 0) $('keep-cols').value = String(recipe.keep_cols);
+  if (recipe.keep_frac > 0) $('keep-frac').value = String(recipe.keep_frac * 100);
 }
 
 // ------------------------------------------------------------------ opening tensors
@@ -126,6 +163,11 @@ async function open(label, type, payload) {
     if (!result) return;
     state.info = result.info;
     showInfo(result.info);
+    if (result.calibDropped) {
+      setCalibration(null);
+      bridge.forget('calib');
+      showMessage('calib-message', 'The calibration was removed: it does not match the new tensor\'s input width.');
+    }
     if (result.recipeError) {
       showRecipeError(result.recipeError);
     } else {
@@ -234,6 +276,54 @@ window.addEventListener('drop', (e) => {
   if (file) openFile(file);
 });
 
+// ------------------------------------------------------------------ calibration
+
+async function loadCalibration(label, type, payload) {
+  showMessage('calib-message', '');
+  if (!state.info) {
+    showMessage('calib-message', 'Open a weight tensor first: calibration is checked against its input columns.');
+    return;
+  }
+  try {
+    const result = await task(label, type, payload, 'calib');
+    if (!result) return;
+    setCalibration(result);
+    analyze();
+  } catch (err) {
+    showMessage('calib-message', `Could not use it: ${err.message}. ${state.calib ? 'The previous calibration stays.' : 'The weight-only analysis goes on.'}`);
+    restoreStatus();
+  }
+}
+
+function setCalibration(result) {
+  state.calib = result;
+  state.study = null;
+  $('calib-clear').hidden = !result;
+  const info = result?.info;
+  $('calib-info').textContent = !info
+    ? 'None: the figures are weight-only.'
+    : info.tokens
+      ? `${info.name || 'sample'}: ${fmt.count(info.tokens)} tokens × ${fmt.count(info.cols)} columns.`
+      : `${info.name || 'statistics'}: ${info.kind === 'maxabs' ? 'max |x|' : 'mean |x|'} of ${fmt.count(info.cols)} columns (output error is estimated from them).`;
+  const out = $('map-metric').querySelector('option[value=out]');
+  out.disabled = !result;
+  if (!result && $('map-metric').value === 'out') $('map-metric').value = 'rel';
+  showDependentControls();
+}
+
+$('calib-input').addEventListener('change', (e) => {
+  const file = e.target.files[0];
+  e.target.value = '';
+  if (file) loadCalibration(`Reading ${file.name}`, 'calibFile', { file, name: null, kind: $('calib-kind').value, bf16: $('bf16').checked });
+});
+$('calib-demo').addEventListener('click', () => loadCalibration('Generating the demo activations', 'calibDemo', {}));
+$('calib-clear').addEventListener('click', async () => {
+  await bridge.request('calibClear');
+  bridge.forget('calib');
+  setCalibration(null);
+  analyze();
+});
+
 /** After a failed step, show again what the status said about the results on screen. */
 function restoreStatus() {
   $('status').textContent = state.statusText || 'Load the demo tensor or drop a file to begin.';
@@ -299,7 +389,100 @@ function showRecipeError(message) {
 }
 
 const map = new ErrorMap($('error-map'), { onHover: hoverGroup, onSelect: selectGroup });
-const profile = new ColumnProfile($('column-profile'), { onSelect: selectColumn });
+const profile = new SeriesChart($('column-profile'), { xLabel: 'input column', yLabel: 'max |w| (log)', rightLabel: 'error RMS (log)', logY: true, onSelect: selectColumn });
+const methodCurve = new SeriesChart($('method-curve'), { xLabel: 'α', yLabel: 'output error' });
+const smoothColumns = new SeriesChart($('smooth-columns'), { xLabel: 'input column', yLabel: 'max |value| (log)', logY: true });
+const smoothCurve = new SeriesChart($('smooth-curve'), { xLabel: 'α', yLabel: 'W8A8 output error', logY: true });
+
+const indices = (n) => Float64Array.from({ length: n }, (_, i) => i);
+
+function showColumnProfile(result) {
+  const marks = Array.from(result.columnMaxAbs, (v, i) => (result.columnOutlierScore[i] >= 4 ? v : null));
+  const series = [
+    { label: 'max |w|', values: result.columnMaxAbs, colour: '--series1' },
+    { label: 'error RMS', values: result.columnErrRms, colour: '--series2', scale: 'right' },
+    { label: 'outlier', values: marks, colour: '--accent', points: true },
+  ];
+  if (state.calib) series.push({ label: 'max |x| (calibration)', values: state.calib.maxAbs, colour: '--part2' });
+  profile.setData(indices(result.columnMaxAbs.length), series);
+}
+
+function showMethod(method) {
+  const lines = {
+    rtn: () => null,
+    clip: () => `Clipping search: the chosen range ratio averages ${method.mean_ratio.toFixed(3)}, ranked by ${method.output_weighted ? 'output-weighted error (diagonal of XᵀX)' : 'weight MSE'}.`,
+    hqq: () => `HQQ: ${method.mean_iterations.toFixed(1)} iterations per group on average; l${method.p} error ${fmt.sci(method.lp_before)} → ${fmt.sci(method.lp_after)} (${fmt.percent(1 - method.lp_after / method.lp_before)} lower). Zero points are real numbers stored in the scale's type.`,
+    gptq: () => `GPTQ: dampening ${method.damp}, ${method.act_order ? 'columns by decreasing diag(H)' : 'columns in order'}, ${fmt.plural(method.dead_columns, 'column')} without input; accumulated quadratic loss ${fmt.sci(method.quadratic_loss)}.`,
+    awq: () => `AWQ: the α search chose α = ${method.alpha.toFixed(2)}${method.clip ? ', then a clipping ratio per group' : ''}${method.estimated ? ' (errors estimated from per-column statistics)' : ''}.`,
+  };
+  const text = lines[method.name]();
+  $('method-card').hidden = !text;
+  $('method-figures').textContent = text || '';
+  const curve = method.name === 'awq' ? method.curve : null;
+  $('method-curve').hidden = !curve;
+  if (curve) {
+    methodCurve.setData(Float64Array.from(curve, (p) => p[0]), [{ label: 'output error', values: Float64Array.from(curve, (p) => p[1]), colour: '--series1' }]);
+    methodCurve.mark(method.alpha);
+  }
+}
+
+// ------------------------------------------------------------------ smoothing
+
+function showSmoothing() {
+  const ready = Boolean(state.calib && state.info);
+  $('smoothing-card').hidden = !ready;
+  if (!ready) return;
+  $('study-run').disabled = !state.calib.info.tokens;
+  $('study-run').title = state.calib.info.tokens ? '' : 'The W8A8 study needs an activation sample, not only statistics.';
+  showSmoothedColumns();
+  showStudy();
+}
+
+let smoothingRequest = 0;
+
+/** The per-column ranges before and after smoothing at the slider's α (cheap: runs on every move). */
+async function showSmoothedColumns() {
+  if (!state.calib || !state.result) return;
+  const alpha = Number($('smooth-alpha').value);
+  const ticket = ++smoothingRequest;
+  try {
+    const after = await bridge.request('smoothedColumns', { alpha });
+    if (ticket !== smoothingRequest) return;
+    smoothColumns.setData(indices(after.weight.length), [
+      { label: 'max |w| before', values: state.result.columnMaxAbs, colour: '--series1' },
+      { label: `max |w| after (α ${alpha.toFixed(2)})`, values: Float32Array.from(after.weight), colour: '--series2' },
+      { label: 'max |x| before', values: state.calib.maxAbs, colour: '--part2' },
+      { label: 'max |x| after', values: Float32Array.from(after.act), colour: '--accent' },
+    ]);
+    smoothCurve.mark(alpha);
+  } catch (err) {
+    if (!(err instanceof Cancelled)) $('smooth-figures').textContent = `No smoothing profile: ${err.message}`;
+  }
+}
+
+function showStudy() {
+  const st = state.study;
+  if (!st) {
+    $('smooth-figures').textContent = state.calib?.info.tokens ? 'Run the W8A8 study to see the output error across α.' : 'The W8A8 study needs an activation sample.';
+    return;
+  }
+  smoothCurve.setData(Float64Array.from(st.curve, (p) => p[0]), [{ label: 'W8A8 output error', values: Float64Array.from(st.curve, (p) => p[1]), colour: '--series1' }]);
+  smoothCurve.mark(Number($('smooth-alpha').value));
+  $('smooth-figures').textContent = `W8A8 with activations ${st.act === 'token' ? 'per token' : 'per tensor'}: output error ${fmt.percent(st.error_without)} without smoothing, ${fmt.percent(st.error_with)} with α = ${st.alpha.toFixed(2)}; the lowest on the curve is at α = ${st.best_alpha.toFixed(2)}.`;
+}
+
+$('study-run').addEventListener('click', async () => {
+  try {
+    const study = await task('Running the W8A8 study', 'smoothing', { alpha: Number($('smooth-alpha').value), act: $('study-act').value });
+    if (!study) return;
+    state.study = study;
+    showStudy();
+    restoreStatus();
+  } catch (err) {
+    $('smooth-figures').textContent = `The study could not run: ${err.message}`;
+    restoreStatus();
+  }
+});
 const histogram = new GroupHistogram($('histogram'));
 
 function showResults(result, { fresh }) {
@@ -318,10 +501,16 @@ function showResults(result, { fresh }) {
   $('fig-sqnr').textContent = s.exact ? 'exact' : `${s.sqnr_db.toFixed(2)} dB`;
   $('fig-rel').textContent = fmt.percent(s.rel_fro_err);
   $('fig-max').textContent = fmt.sci(s.max_abs_err);
+  $('fig-output-card').hidden = s.output_rel_err === null;
+  if (s.output_rel_err !== null) {
+    $('fig-output').textContent = fmt.percent(s.output_rel_err);
+    $('fig-output-sub').textContent = s.output_estimated ? 'estimated from per-column statistics' : 'on the calibration sample';
+  }
+  showMethod(s.method);
+  showSmoothing();
 
   drawMap(!fresh);
-  const outlier = Uint8Array.from(result.columnOutlierScore, (v) => (v >= 4 ? 1 : 0));
-  profile.setData({ maxAbs: result.columnMaxAbs, errRms: result.columnErrRms, outlier });
+  showColumnProfile(result);
   showOutlierList(s);
   drawBudget(s.cost);
   $('caution').textContent = s.caution;
@@ -331,7 +520,7 @@ function showResults(result, { fresh }) {
     state.selectedGroup = worstGroup(result.groupMse);
     state.selectedColumn = s.outlier_columns.length ? s.outlier_columns[0].column : null;
   }
-  map.setSelectedGroup(state.selectedGroup);
+  map.setSelectedGroup($('map-metric').value === 'out' ? null : state.selectedGroup);
   selectColumn(state.selectedColumn);
   showHistogram(state.selectedGroup);
 }
@@ -343,6 +532,7 @@ function worstGroup(values) {
 }
 
 const METRICS = {
+  out: { key: 'outputRowErr', label: 'output error ‖x(ŵ − w)‖ / ‖xw‖ of each output row', log: true, perRow: true },
   rel: { key: 'groupRelErr', label: 'relative error ‖w − ŵ‖ / ‖w‖ of each group', log: true },
   mse: { key: 'groupMse', label: 'mean squared error of each group', log: true },
   max: { key: 'groupMaxErr', label: 'largest absolute error in each group', log: true },
@@ -360,16 +550,20 @@ function drawMap(keepView) {
   const proportional = canvas.clientWidth * (state.info.rows / Math.max(cols, 1));
   const height = Math.round(Math.min(520, Math.max(140, proportional), Math.max(140, g.rows * 48)));
   canvas.style.height = `${height}px`;
-  map.setData({ rows: g.rows, perRow: g.per_row, cols, groupSize: g.group_size, values: result[metric.key], log: metric.log }, { keepView });
-  const what = g.group_size ? `groups of ${g.group_size} along each row` : g.rows === 1 ? 'the whole tensor as one group' : 'one group per row';
-  $('map-caption').textContent = `${fmt.plural(g.rows, 'row')} × ${fmt.plural(g.per_row, 'cell')} (${what}); colour: ${metric.label}, log scale. Scroll or press + and − to zoom, drag to pan, click a cell for its histogram.`;
+  const grid = metric.perRow ? { rows: state.info.rows, per_row: 1, group_size: null } : g;
+  map.setData({ rows: grid.rows, perRow: grid.per_row, cols, groupSize: grid.group_size, values: result[metric.key], log: metric.log }, { keepView });
+  const what = metric.perRow ? 'one cell per output row' : g.group_size ? `groups of ${g.group_size} along each row` : g.rows === 1 ? 'the whole tensor as one group' : 'one group per row';
+  $('map-caption').textContent = `${fmt.plural(grid.rows, 'row')} × ${fmt.plural(grid.per_row, 'cell')} (${what}); colour: ${metric.label}, log scale. Scroll or press + and − to zoom, drag to pan, click a cell for its histogram.`;
   const { lo, hi } = map.range();
   $('legend-lo').textContent = fmt.sci(lo);
   $('legend-hi').textContent = fmt.sci(hi);
   $('legend-ramp').style.background = GRADIENT;
 }
 
-$('map-metric').addEventListener('change', () => drawMap(true));
+$('map-metric').addEventListener('change', () => {
+  drawMap(false);
+  map.setSelectedGroup($('map-metric').value === 'out' ? null : state.selectedGroup);
+});
 $('zoom-in').addEventListener('click', () => map.zoom(0.8));
 $('zoom-out').addEventListener('click', () => map.zoom(1.25));
 $('zoom-reset').addEventListener('click', () => map.reset());
@@ -384,6 +578,10 @@ function groupColumns(index) {
 
 function hoverGroup(hit, event) {
   const tip = $('map-tooltip');
+  if (hit && $('map-metric').value === 'out') {
+    showTip(tip, [`output row ${hit.row}`, `output error ${fmt.percent(state.result.outputRowErr[hit.row])}`], event);
+    return;
+  }
   if (!hit || !state.result) {
     tip.hidden = true;
     return;
@@ -392,12 +590,15 @@ function hoverGroup(hit, event) {
   const g = r.summary.groups;
   const [c0, c1] = groupColumns(hit.index);
   const rows = g.rows === 1 && state.info.rows > 1 ? `rows 0–${state.info.rows - 1}` : `row ${hit.row}`;
-  tip.innerHTML = '';
-  const lines = [
+  showTip(tip, [
     `${rows} · columns ${c0}–${c1}`,
     `relative error ${fmt.percent(r.groupRelErr[hit.index])}`,
     `MSE ${fmt.sci(r.groupMse[hit.index])} · max ${fmt.sci(r.groupMaxErr[hit.index])}`,
-  ];
+  ], event);
+}
+
+function showTip(tip, lines, event) {
+  tip.replaceChildren();
   for (const line of lines) {
     const div = document.createElement('div');
     div.textContent = line;
@@ -412,6 +613,7 @@ function hoverGroup(hit, event) {
 }
 
 function selectGroup(index) {
+  if ($('map-metric').value === 'out') return;
   state.selectedGroup = index;
   map.setSelectedGroup(index);
   showHistogram(index);
@@ -432,7 +634,7 @@ async function showHistogram(index) {
 function selectColumn(col) {
   state.selectedColumn = col;
   map.setSelectedColumn(col);
-  profile.select(col);
+  profile.mark(col);
   const r = state.result;
   if (col === null || !r) {
     $('column-info').textContent = '';
@@ -467,7 +669,9 @@ function drawBudget(cost) {
     ['codes (payload)', cost.payload_bits, '--part1'],
     ['scales', cost.scale_bits, '--part2'],
     ['zero points', cost.zero_point_bits, '--part3'],
-  ];
+    [`kept in 16-bit (${fmt.count(cost.kept_values)} values and their indices)`, cost.kept_bits, '--accent'],
+    ['per-column factors (free when folded into the previous layer)', cost.column_factor_bits, '--series2'],
+  ].filter(([, bits], i) => i < 3 || bits > 0);
   const bar = $('budget');
   const legend = $('budget-legend');
   bar.replaceChildren();

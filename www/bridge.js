@@ -17,7 +17,7 @@ export class CoreBridge {
     this.wasm = wasm;
     this.nextId = 1;
     this.pending = new Map();
-    this.remembered = { open: null, analyze: null };
+    this.remembered = { open: null, calib: null, analyze: null };
     this.onRestart = () => {};
   }
 
@@ -57,14 +57,21 @@ export class CoreBridge {
   }
 
   /**
-   * A request. `remember: 'open' | 'analyze'` marks one that sets the worker's state, to be
-   * replayed after a cancel.
+   * A request. `remember: 'open' | 'calib' | 'analyze'` marks one that sets the worker's state,
+   * to be replayed (in that order) after a cancel.
    */
   async request(type, payload = {}, { onProgress, remember } = {}) {
     const result = await this.send(type, payload, { onProgress });
-    if (remember === 'open') this.remembered = { open: { type, payload }, analyze: null };
-    if (remember === 'analyze') this.remembered.analyze = { type, payload };
+    if (remember) {
+      this.remembered[remember] = { type, payload };
+      if (remember !== 'analyze') this.remembered.analyze = null;
+    }
     return result;
+  }
+
+  /** Stop replaying a remembered state (after it was cleared in the worker). */
+  forget(kind) {
+    this.remembered[kind] = null;
   }
 
   /** Stop whatever runs now; its promise rejects with Cancelled. */
@@ -78,9 +85,10 @@ export class CoreBridge {
     this.pending.clear();
     waiting.forEach((entry) => entry.reject(reason));
     await this.start();
-    const { open, analyze } = this.remembered;
-    if (open) await this.send(open.type, open.payload).catch(() => {});
-    if (analyze) await this.send(analyze.type, analyze.payload).catch(() => {});
+    for (const kind of ['open', 'calib', 'analyze']) {
+      const step = this.remembered[kind];
+      if (step) await this.send(step.type, step.payload).catch(() => {});
+    }
     this.onRestart(reason);
   }
 }

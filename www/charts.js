@@ -1,5 +1,5 @@
-// Charts drawn with uPlot (vendored from the npm registry): the column profile and the group
-// histogram. Colours come from the page's CSS variables so light and dark themes both read well.
+// Charts drawn with uPlot (vendored from the npm registry). Colours come from the page's CSS
+// variables so light and dark themes both read well.
 /* global uPlot */
 
 function themed(name, fallback) {
@@ -16,70 +16,78 @@ function axis(extra = {}) {
   };
 }
 
-function sized(el, make) {
-  const chart = make(Math.max(200, el.clientWidth), Number(el.dataset.height || 220));
-  new ResizeObserver(() => chart.setSize({ width: Math.max(200, el.clientWidth), height: Number(el.dataset.height || 220) })).observe(el);
-  return chart;
+function height(el) {
+  return Number(el.dataset.height || 220);
 }
 
-/** Per-input-column max |w| and error RMS, outlier columns marked; a click selects a column. */
-export class ColumnProfile {
-  constructor(el, { onSelect }) {
-    this.el = el;
-    this.onSelect = onSelect;
+function drawVertical(u, x, colour, width = 2) {
+  const pos = u.valToPos(x, 'x', true);
+  if (pos < u.bbox.left || pos > u.bbox.left + u.bbox.width) return;
+  const { ctx } = u;
+  ctx.save();
+  ctx.strokeStyle = colour;
+  ctx.lineWidth = width * devicePixelRatio;
+  ctx.beginPath();
+  ctx.moveTo(pos, u.bbox.top);
+  ctx.lineTo(pos, u.bbox.top + u.bbox.height);
+  ctx.stroke();
+  ctx.restore();
+}
+
+/**
+ * Lines over a shared x axis, optional marked points, an optional vertical marker, and a click
+ * that reports the x index under the cursor.
+ *
+ * series: [{label, values, colour: CSS variable, scale?: 'y' | 'right', points?: true}]
+ */
+export class SeriesChart {
+  constructor(el, { xLabel, yLabel, rightLabel = null, logY = false, onSelect = null }) {
+    Object.assign(this, { el, xLabel, yLabel, rightLabel, logY, onSelect });
     this.chart = null;
-    this.selected = null;
+    this.marker = null;
+    this.shape = '';
+    new ResizeObserver(() => this.chart?.setSize({ width: Math.max(200, el.clientWidth), height: height(el) })).observe(el);
   }
 
-  setData({ maxAbs, errRms, outlier }) {
-    const n = maxAbs.length;
-    const x = Float64Array.from({ length: n }, (_, i) => i);
-    const marks = Array.from(maxAbs, (v, i) => (outlier[i] ? v : null));
-    const data = [x, maxAbs, errRms, marks];
-    if (this.chart && this.chart.data[0].length === n) {
+  setData(x, series) {
+    const data = [x, ...series.map((s) => s.values)];
+    const shape = `${x.length}:${series.map((s) => s.label).join('|')}`;
+    if (this.chart && shape === this.shape) {
       this.chart.setData(data);
       return;
     }
+    this.shape = shape;
     this.chart?.destroy();
-    const accent = themed('--accent', '#e4572e');
-    this.chart = sized(this.el, (width, height) => new uPlot({
-      width,
-      height,
+    const distr = this.logY ? 3 : 1;
+    const scales = { x: { time: false }, y: { distr }, right: { distr } };
+    const uSeries = [{ label: this.xLabel }, ...series.map((s) => {
+      const colour = themed(s.colour, '#3b6ea5');
+      const base = { label: s.label, stroke: colour, width: s.points ? 0 : 1.25, scale: s.scale || 'y' };
+      return s.points ? { ...base, fill: colour, paths: () => null, points: { show: true, size: 7, stroke: colour, fill: colour } } : base;
+    })];
+    const axes = [axis({ label: this.xLabel }), axis({ label: this.yLabel, size: 64 })];
+    if (this.rightLabel) axes.push(axis({ scale: 'right', side: 1, label: this.rightLabel, size: 64, grid: { show: false } }));
+    this.chart = new uPlot({
+      width: Math.max(200, this.el.clientWidth),
+      height: height(this.el),
       legend: { show: true, live: true },
       cursor: { drag: { x: true, y: false }, points: { size: 6 } },
-      scales: { x: { time: false }, y: { distr: 3 }, err: { distr: 3 } },
-      series: [
-        { label: 'input column' },
-        { label: 'max |w|', stroke: themed('--series1', '#3b6ea5'), width: 1 },
-        { label: 'error RMS', stroke: themed('--series2', '#21918c'), width: 1, scale: 'err' },
-        { label: 'outlier', stroke: accent, fill: accent, width: 0, paths: () => null, points: { show: true, size: 7, stroke: accent, fill: accent } },
-      ],
-      axes: [axis({ label: 'input column' }), axis({ label: 'max |w| (log)', size: 64 }), axis({ scale: 'err', side: 1, label: 'error RMS (log)', size: 64, grid: { show: false } })],
-      hooks: { draw: [(u) => this.drawSelection(u)] },
-    }, data, this.el));
-    this.chart.over.addEventListener('click', () => {
-      const idx = this.chart.cursor.idx;
-      if (idx !== null && idx !== undefined) this.onSelect(idx);
-    });
+      scales,
+      series: uSeries,
+      axes,
+      hooks: { draw: [(u) => { if (this.marker !== null) drawVertical(u, this.marker, themed('--accent', '#e4572e')); }] },
+    }, data, this.el);
+    if (this.onSelect) {
+      this.chart.over.addEventListener('click', () => {
+        const idx = this.chart.cursor.idx;
+        if (idx !== null && idx !== undefined) this.onSelect(idx);
+      });
+    }
   }
 
-  select(col) {
-    this.selected = col;
+  mark(x) {
+    this.marker = x;
     this.chart?.redraw(false, false);
-  }
-
-  drawSelection(u) {
-    if (this.selected === null) return;
-    const x = u.valToPos(this.selected, 'x', true);
-    const { ctx } = u;
-    ctx.save();
-    ctx.strokeStyle = themed('--accent', '#e4572e');
-    ctx.lineWidth = 2 * devicePixelRatio;
-    ctx.beginPath();
-    ctx.moveTo(x, u.bbox.top);
-    ctx.lineTo(x, u.bbox.top + u.bbox.height);
-    ctx.stroke();
-    ctx.restore();
   }
 }
 
@@ -89,6 +97,7 @@ export class GroupHistogram {
     this.el = el;
     this.chart = null;
     this.grid = [];
+    new ResizeObserver(() => this.chart?.setSize({ width: Math.max(200, el.clientWidth), height: height(el) })).observe(el);
   }
 
   setData({ histogram, grid }) {
@@ -102,11 +111,10 @@ export class GroupHistogram {
     const gridHi = grid.length ? Math.max(grid[grid.length - 1], hi) : hi;
     const pad = (gridHi - gridLo) * 0.03 || 1;
     this.range = [gridLo - pad, gridHi + pad];
-    const data = [x, Float64Array.from(counts)];
     this.chart?.destroy();
-    this.chart = sized(this.el, (w, h) => new uPlot({
-      width: w,
-      height: h,
+    this.chart = new uPlot({
+      width: Math.max(200, this.el.clientWidth),
+      height: height(this.el),
       legend: { show: false },
       cursor: { show: true, points: { show: false } },
       scales: { x: { time: false, range: () => this.range }, y: { range: (u, min, max) => [0, Math.max(1, max) * 1.08] } },
@@ -116,24 +124,7 @@ export class GroupHistogram {
           paths: uPlot.paths.bars({ size: [0.95, Infinity], align: 0 }) },
       ],
       axes: [axis({ label: 'weight value' }), axis({ label: 'count', size: 56 })],
-      hooks: { draw: [(u) => this.drawGrid(u)] },
-    }, data, this.el));
-  }
-
-  drawGrid(u) {
-    const { ctx } = u;
-    ctx.save();
-    ctx.strokeStyle = themed('--accent', '#e4572e');
-    ctx.globalAlpha = 0.75;
-    ctx.lineWidth = Math.max(1, devicePixelRatio);
-    for (const level of this.grid) {
-      const x = u.valToPos(level, 'x', true);
-      if (x < u.bbox.left || x > u.bbox.left + u.bbox.width) continue;
-      ctx.beginPath();
-      ctx.moveTo(x, u.bbox.top);
-      ctx.lineTo(x, u.bbox.top + u.bbox.height);
-      ctx.stroke();
-    }
-    ctx.restore();
+      hooks: { draw: [(u) => this.grid.forEach((level) => drawVertical(u, level, themed('--accent', '#e4572e'), 0.75))] },
+    }, [x, Float64Array.from(counts)], this.el);
   }
 }

@@ -9,6 +9,7 @@ if (typeof wasm_bindgen === 'undefined') importScripts('pkg/bitloupe.js');
 let core = null;
 let tensor = null;
 let analysis = null;
+let calib = null;
 
 function replace(handle, next) {
   if (handle) handle.free();
@@ -24,6 +25,7 @@ function analysisResult(a) {
     columnMaxAbs: a.columnMaxAbs(),
     columnErrRms: a.columnErrRms(),
     columnOutlierScore: a.columnOutlierScore(),
+    outputRowErr: a.outputRowErr(),
   };
   return { value: { summary: a.summary(), ...arrays }, transfer: Object.values(arrays).map((x) => x.buffer) };
 }
@@ -32,13 +34,24 @@ function analysisResult(a) {
  * Open a tensor and run the current recipe on it as one step: a tensor that cannot be analysed
  * because of NaN or infinite values is refused like a bad file, so the previous one stays.
  */
+/** Run a recipe on a tensor with the calibration, when there is one. */
+function run(t, recipe, progress) {
+  return calib ? t.analyzeWith(recipe, progress, calib) : t.analyze(recipe, progress, undefined);
+}
+
 function openAndAnalyze(open, recipe, progress) {
   const next = open();
   const info = next.info();
+  // Calibration belongs to a weight's input width; a tensor of another width drops it.
+  let calibDropped = false;
+  if (calib && calib.info().cols !== info.cols) {
+    calib = replace(calib, null);
+    calibDropped = true;
+  }
   let nextAnalysis = null;
   let recipeError = null;
   try {
-    nextAnalysis = next.analyze(recipe, progress);
+    nextAnalysis = run(next, recipe, progress);
   } catch (err) {
     if (info.nan + info.inf > 0) {
       next.free();
@@ -48,9 +61,22 @@ function openAndAnalyze(open, recipe, progress) {
   }
   tensor = replace(tensor, next);
   analysis = replace(analysis, nextAnalysis);
-  if (!nextAnalysis) return { value: { info, recipeError } };
+  if (!nextAnalysis) return { value: { info, recipeError, calibDropped } };
   const out = analysisResult(nextAnalysis);
-  return { value: { info, ...out.value }, transfer: out.transfer };
+  return { value: { info, calibDropped, ...out.value }, transfer: out.transfer };
+}
+
+function tensorCols() {
+  if (!tensor) throw new Error('open a weight tensor first');
+  return tensor.info().cols;
+}
+
+/** Replace the calibration only when the new one is valid; the old one stays otherwise. */
+function setCalibration(make) {
+  const next = make();
+  calib = replace(calib, next);
+  const maxAbs = next.maxAbs();
+  return { value: { info: next.info(), maxAbs }, transfer: [maxAbs.buffer] };
 }
 
 function message(err) {
@@ -75,9 +101,27 @@ const handlers = {
   openText({ text, recipe }, progress) {
     return openAndAnalyze(() => core.parseText(text), recipe, progress);
   },
+  calibFile({ file, name, kind, bf16 }) {
+    return setCalibration(() => core.calibrationFromFile(file, name ?? undefined, kind, tensorCols(), bf16));
+  },
+  calibDemo() {
+    return setCalibration(() => core.demoCalibration(tensorCols()));
+  },
+  calibClear() {
+    calib = replace(calib, null);
+    return { value: null };
+  },
+  smoothing({ alpha, act }, progress) {
+    if (!tensor || !calib) throw new Error('the study needs a tensor and calibration data');
+    return { value: tensor.smoothingStudy(calib, alpha, act, progress) };
+  },
+  smoothedColumns({ alpha }) {
+    if (!tensor || !calib) throw new Error('smoothing needs calibration data');
+    return { value: tensor.smoothedColumns(calib, alpha) };
+  },
   analyze({ recipe }, progress) {
     if (!tensor) throw new Error('open a tensor first');
-    const next = tensor.analyze(recipe, progress);
+    const next = run(tensor, recipe, progress);
     analysis = replace(analysis, next);
     return analysisResult(next);
   },

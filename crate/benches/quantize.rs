@@ -26,3 +26,32 @@ fn analyze_4096x4096_int4_g128(bencher: divan::Bencher) {
         .counter(ItemsCount::new(tensor.values.len()))
         .bench(|| analyze(divan::black_box(&tensor), &recipe).unwrap());
 }
+
+/// A 4096 × 4096 weight and 512 correlated calibration tokens with a few loud channels.
+fn layer_with_calibration() -> (Tensor, bitloupe::calib::Calibration) {
+    let weight = gaussian(4096, 4096);
+    let mut rng = Rng::new(7);
+    let latent = Array2::from_shape_fn((512, 16), |_| rng.normal() as f32);
+    let mixing = Array2::from_shape_fn((16, 4096), |_| rng.normal() as f32 * 0.35);
+    let mut x = latent.dot(&mixing);
+    x.mapv_inplace(|v| v + 0.6 * rng.normal() as f32);
+    for t in 0..512 {
+        x[[t, 17]] *= 60.0;
+        x[[t, 2900]] *= 30.0;
+    }
+    (weight, bitloupe::calib::Calibration::from_sample(x))
+}
+
+#[divan::bench(sample_count = 2, sample_size = 1)]
+fn gptq_4096x4096_512_tokens_int4_g128(bencher: divan::Bencher) {
+    let (tensor, calib) = layer_with_calibration();
+    let recipe = Recipe { method: bitloupe::recipe::Method::Gptq, ..Recipe::default() };
+    bencher.bench(|| bitloupe::analyze_with(&tensor, &recipe, Some(&calib), &mut |_, _| {}).unwrap());
+}
+
+#[divan::bench(sample_count = 2, sample_size = 1)]
+fn awq_4096x4096_512_tokens_int4_g128(bencher: divan::Bencher) {
+    let (tensor, calib) = layer_with_calibration();
+    let recipe = Recipe { method: bitloupe::recipe::Method::Awq, ..Recipe::default() };
+    bencher.bench(|| bitloupe::analyze_with(&tensor, &recipe, Some(&calib), &mut |_, _| {}).unwrap());
+}

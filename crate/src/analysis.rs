@@ -127,6 +127,7 @@ impl Measure {
 fn run(tensor: &Tensor, recipe: &Recipe, calib: Option<&Calibration>, progress: &mut dyn FnMut(usize, usize)) -> Result<Analysis> {
     let (rows, cols) = (tensor.rows(), tensor.cols());
     let mut measure = Measure::new(recipe, rows, cols);
+    let reference = calib.and_then(|c| c.reference_output(tensor.values.view()));
     let plain = recipe.method == Method::Rtn && recipe.smooth.is_none() && recipe.keep_cols == 0 && recipe.keep_frac == 0.0;
     let (dequantized, params, method) = if plain {
         // The hot path: each row is measured while it is still in cache.
@@ -138,16 +139,13 @@ fn run(tensor: &Tensor, recipe: &Recipe, calib: Option<&Calibration>, progress: 
         })?;
         (q.dequantized, q.params, q.figures)
     } else {
-        let q = methods::run(tensor.values.view(), recipe, calib, progress)?;
+        let q = methods::run(tensor.values.view(), recipe, calib, reference.as_ref(), progress)?;
         for (r, (x, out)) in tensor.values.rows().into_iter().zip(q.dequantized.rows()).enumerate() {
             measure.row(r, x.as_slice().expect("row-major"), out.as_slice().expect("row-major"));
         }
         (q.dequantized, q.params, q.figures)
     };
-    let output = calib.map(|c| {
-        let reference = c.reference_output(tensor.values.view());
-        output_error(c, tensor.values.view(), dequantized.view(), reference.as_ref())
-    });
+    let output = calib.map(|c| output_error(c, tensor.values.view(), dequantized.view(), reference.as_ref()));
     let (totals, groups, columns) = measure.finish(recipe);
     Ok(Analysis {
         recipe: *recipe,

@@ -36,29 +36,47 @@ pub fn subtract_product(mut dst: ArrayViewMut2<f32>, a: ArrayView2<f32>, b: Arra
     matmul(view_mut(&mut dst), Accum::Add, view(&a), view(&b), -1.0, Par::Seq);
 }
 
-/// scale·xᵀx for x: [tokens, k] (a Gram matrix, k × k).
+/// scale·xᵀx for x: [tokens, k] (a Gram matrix, k × k). Only the lower half is computed (the
+/// product is symmetric) and then mirrored, which halves the work.
 pub fn gram(x: ArrayView2<f32>, scale: f32) -> Array2<f32> {
+    use faer::linalg::matmul::triangular::{matmul as triangular_matmul, BlockStructure};
     let k = x.ncols();
     let mut out = Array2::<f32>::zeros((k, k));
-    matmul(view_mut(&mut out.view_mut()), Accum::Replace, view(&x).transpose(), view(&x), scale, Par::Seq);
+    triangular_matmul(
+        view_mut(&mut out.view_mut()),
+        BlockStructure::TriangularLower,
+        Accum::Replace,
+        view(&x).transpose(),
+        BlockStructure::Rectangular,
+        view(&x),
+        BlockStructure::Rectangular,
+        scale,
+        Par::Seq,
+    );
+    for i in 0..k {
+        for j in i + 1..k {
+            out[[i, j]] = out[[j, i]];
+        }
+    }
     out
 }
 
-/// The upper-triangular U with Uᵀ·U = H⁻¹ for a symmetric positive definite H: two Cholesky
-/// factorisations around one inversion, as the GPTQ paper prescribes.
+/// The upper-triangular U with Uᵀ·U = H⁻¹ for a symmetric positive definite H.
+///
+/// With P the order-reversing permutation and P·H·P = L̃·L̃ᵀ (Cholesky), H⁻¹ = P·L̃⁻ᵀ·L̃⁻¹·P,
+/// so U = P·L̃⁻¹·P, which is upper triangular. One factorisation and one triangular inverse
+/// (2n³/3 flops) replace the inverse-then-factorise route (5n³/3 flops) with the same result.
 pub fn inverse_cholesky_upper(h: &Array2<f32>) -> Result<Array2<f32>> {
     let n = h.nrows();
     let not_definite = || Error::Numerical {
         detail: "the calibration Hessian is not positive definite; raise the dampening (--damp) or give more calibration tokens".into(),
     };
-    let hm = view(&h.view()).to_owned();
-    let inverse = {
-        use faer::linalg::solvers::DenseSolveCore;
-        hm.llt(Side::Lower).map_err(|_| not_definite())?.inverse()
-    };
-    let lower = inverse.llt(Side::Lower).map_err(|_| not_definite())?;
-    let l = lower.L();
-    Ok(Array2::from_shape_fn((n, n), |(i, j)| if j >= i { l[(j, i)] } else { 0.0 }))
+    let reversed = faer::Mat::<f32>::from_fn(n, n, |i, j| h[[n - 1 - i, n - 1 - j]]);
+    let factor = reversed.llt(Side::Lower).map_err(|_| not_definite())?;
+    let mut inverse = faer::Mat::<f32>::zeros(n, n);
+    faer::linalg::triangular_inverse::invert_lower_triangular(inverse.as_mut(), factor.L(), Par::Seq);
+    let u = Array2::from_shape_fn((n, n), |(i, j)| if j >= i { inverse[(n - 1 - i, n - 1 - j)] } else { 0.0 });
+    if u.iter().all(|v| v.is_finite()) { Ok(u) } else { Err(not_definite()) }
 }
 
 #[cfg(test)]

@@ -6,6 +6,8 @@
 //! anything unexpected to the console instead of an opaque "unreachable".
 
 use crate::analysis::{analyze_with, Analysis};
+use crate::calib::{CalibKind, Calibration};
+use crate::methods::smooth::{self, ActQuant};
 use crate::metrics::Histogram;
 use crate::error::Error;
 use crate::recipe::Recipe;
@@ -95,6 +97,15 @@ impl ByteSource for BlobSource {
     }
 }
 
+/// A progress callback that forwards to a JS function, when one is given.
+fn reporter(progress: Option<js_sys::Function>) -> impl FnMut(usize, usize) {
+    move |done: usize, total: usize| {
+        if let Some(f) = &progress {
+            let _ = f.call2(&JsValue::NULL, &JsValue::from(done as f64), &JsValue::from(total as f64));
+        }
+    }
+}
+
 fn options(raw16_as_bf16: bool) -> ReadOptions {
     ReadOptions { raw16_as_bf16 }
 }
@@ -123,6 +134,63 @@ fn open_source<S: ByteSource + ?Sized>(src: &S, name: Option<String>, raw16_as_b
     let listing = tensor::list(src, options(raw16_as_bf16)).map_err(js_error)?;
     let entry = listing.choose(name.as_deref()).map_err(js_error)?;
     Ok(TensorHandle { tensor: tensor::read(src, entry).map_err(js_error)? })
+}
+
+/// Calibration data checked against a weight's input width.
+#[wasm_bindgen]
+pub struct CalibrationHandle {
+    calib: Calibration,
+    name: String,
+    shape: Vec<usize>,
+}
+
+fn calibration(tensor: Tensor, kind: &str, cols: usize) -> Result<CalibrationHandle, JsError> {
+    let kind: CalibKind = kind.parse().map_err(js_error)?;
+    let calib = Calibration::from_tensor(&tensor, kind, cols).map_err(js_error)?;
+    Ok(CalibrationHandle { calib, name: tensor.name, shape: tensor.shape })
+}
+
+/// Calibration from a file: `kind` is "sample", "maxabs" or "meanabs"; `cols` is the weight's
+/// input width.
+#[wasm_bindgen(js_name = calibrationFromFile)]
+pub fn calibration_from_file(file: web_sys::Blob, name: Option<String>, kind: &str, cols: usize, raw16_as_bf16: bool) -> Result<CalibrationHandle, JsError> {
+    let src = BlobSource::new(file)?;
+    calibration(open_source(&src, name, raw16_as_bf16)?.tensor, kind, cols)
+}
+
+/// Calibration from bytes already in memory.
+#[wasm_bindgen(js_name = calibrationFromBytes)]
+pub fn calibration_from_bytes(bytes: &[u8], name: Option<String>, kind: &str, cols: usize) -> Result<CalibrationHandle, JsError> {
+    calibration(open_source(bytes, name, false)?.tensor, kind, cols)
+}
+
+/// The demo activation sample (matched to the demo weight).
+#[wasm_bindgen(js_name = demoCalibration)]
+pub fn demo_calibration(cols: usize) -> Result<CalibrationHandle, JsError> {
+    calibration(crate::demo::activations(), "sample", cols)
+}
+
+#[wasm_bindgen]
+impl CalibrationHandle {
+    /// Name, shape, kind, input width, and whether it is a full sample.
+    pub fn info(&self) -> Result<JsValue, JsError> {
+        #[derive(Serialize)]
+        struct Info<'a> {
+            name: &'a str,
+            shape: &'a [usize],
+            kind: CalibKind,
+            cols: usize,
+            tokens: Option<usize>,
+        }
+        let c = &self.calib;
+        to_js(&Info { name: &self.name, shape: &self.shape, kind: c.kind, cols: c.cols(), tokens: c.sample.as_ref().map(|x| x.nrows()) })
+    }
+
+    /// max |x_j| per input column.
+    #[wasm_bindgen(js_name = maxAbs)]
+    pub fn max_abs(&self) -> js_sys::Float32Array {
+        js_sys::Float32Array::from(self.calib.max_abs.as_slice())
+    }
 }
 
 /// Parse a pasted matrix.
@@ -180,8 +248,65 @@ impl TensorHandle {
     }
 
     /// Run a recipe (a plain object with any of the recipe's fields; the rest take defaults),
-    /// calling `progress(done, total)` now and then when it is given.
-    pub fn analyze(&self, recipe: JsValue, progress: Option<js_sys::Function>) -> Result<AnalysisHandle, JsError> {
+    /// with optional calibration, calling `progress(done, total)` now and then when it is given.
+    pub fn analyze(
+        &self,
+        recipe: JsValue,
+        progress: Option<js_sys::Function>,
+        calibration: Option<CalibrationHandle>,
+    ) -> Result<AnalysisHandle, JsError> {
+        self.analyze_ref(recipe, progress, calibration.as_ref())
+    }
+
+    /// `analyze` without giving up the calibration handle.
+    #[wasm_bindgen(js_name = analyzeWith)]
+    pub fn analyze_with_calibration(
+        &self,
+        recipe: JsValue,
+        progress: Option<js_sys::Function>,
+        calibration: &CalibrationHandle,
+    ) -> Result<AnalysisHandle, JsError> {
+        self.analyze_ref(recipe, progress, Some(calibration))
+    }
+
+    /// The W8A8 smoothing study at strength `alpha`, activations per "tensor" or "token".
+    #[wasm_bindgen(js_name = smoothingStudy)]
+    pub fn smoothing_study(
+        &self,
+        calibration: &CalibrationHandle,
+        alpha: f32,
+        act: &str,
+        progress: Option<js_sys::Function>,
+    ) -> Result<JsValue, JsError> {
+        let act: ActQuant = act.parse().map_err(js_error)?;
+        let mut report = reporter(progress);
+        let study = smooth::study(self.tensor.values.view(), &calibration.calib, alpha, act, &mut report).map_err(js_error)?;
+        to_js(&study)
+    }
+
+    /// Per-column max |w'_j| and max |x'_j| after smoothing at `alpha` (cheap, for a live
+    /// slider): `{weight, act}`.
+    #[wasm_bindgen(js_name = smoothedColumns)]
+    pub fn smoothed_columns(&self, calibration: &CalibrationHandle, alpha: f32) -> Result<JsValue, JsError> {
+        #[derive(Serialize)]
+        struct Columns {
+            weight: Vec<f32>,
+            act: Vec<f32>,
+        }
+        let w_max = smooth::column_max(self.tensor.values.view());
+        let s = smooth::factors(self.tensor.values.view(), &calibration.calib, alpha);
+        to_js(&Columns {
+            weight: w_max.iter().zip(&s).map(|(m, f)| m * f).collect(),
+            act: calibration.calib.max_abs.iter().zip(&s).map(|(m, f)| m / f).collect(),
+        })
+    }
+
+    fn analyze_ref(
+        &self,
+        recipe: JsValue,
+        progress: Option<js_sys::Function>,
+        calibration: Option<&CalibrationHandle>,
+    ) -> Result<AnalysisHandle, JsError> {
         // Through JSON text rather than serde-wasm-bindgen, which skips unknown keys: a
         // misspelt field must be an error, not a silent default.
         let recipe: Recipe = if recipe.is_undefined() || recipe.is_null() {
@@ -190,12 +315,9 @@ impl TensorHandle {
             let text = js_sys::JSON::stringify(&recipe).ok().and_then(|s| s.as_string()).unwrap_or_default();
             serde_json::from_str(&text).map_err(|e| JsError::new(&format!("invalid recipe: {e}")))?
         };
-        let mut report = |done: usize, total: usize| {
-            if let Some(f) = &progress {
-                let _ = f.call2(&JsValue::NULL, &JsValue::from(done as f64), &JsValue::from(total as f64));
-            }
-        };
-        let analysis = analyze_with(&self.tensor, &recipe, None, &mut report).map_err(js_error)?;
+        let mut report = reporter(progress);
+        let calib = calibration.map(|c| &c.calib);
+        let analysis = analyze_with(&self.tensor, &recipe, calib, &mut report).map_err(js_error)?;
         let summary = to_js(&Report::new(&self.tensor, &analysis).without_group_lists())?;
         let report_json = Report::new(&self.tensor, &analysis).to_json();
         Ok(AnalysisHandle { analysis, summary, report_json, shape: self.tensor.shape.clone() })
@@ -261,6 +383,13 @@ impl AnalysisHandle {
     #[wasm_bindgen(js_name = groupMaxErr)]
     pub fn group_max_err(&self) -> js_sys::Float32Array {
         js_sys::Float32Array::from(self.analysis.groups.max_abs_err.as_slice())
+    }
+
+    /// Output error of every output row (empty without calibration).
+    #[wasm_bindgen(js_name = outputRowErr)]
+    pub fn output_row_err(&self) -> js_sys::Float32Array {
+        let rows = self.analysis.output.as_ref().map_or(&[][..], |o| o.per_row.as_slice());
+        js_sys::Float32Array::from(rows)
     }
 
     /// max |w| of every input column.

@@ -14,7 +14,7 @@ use super::{clip, rtn, scale_columns, unscale_columns, MethodFigures, Quantized}
 use crate::calib::{output_error, Calibration};
 use crate::error::Result;
 use crate::recipe::{Method, Recipe};
-use ndarray::ArrayView2;
+use ndarray::{Array2, ArrayView2};
 use serde::Serialize;
 
 /// What AWQ reports.
@@ -43,11 +43,11 @@ pub fn run(
     w: ArrayView2<f32>,
     recipe: &Recipe,
     calib: &Calibration,
+    reference: Option<&Array2<f32>>,
     kept: &Kept,
     progress: &mut dyn FnMut(usize, usize),
 ) -> Result<Quantized> {
     let plain = Recipe { method: Method::Rtn, ..*recipe };
-    let reference = calib.reference_output(w);
     let candidate = |alpha: f32| -> Result<(Quantized, Vec<f32>)> {
         let s = factors(&calib.mean_abs, alpha);
         let mut q = rtn(scale_columns(w, &s).view(), &plain, kept)?;
@@ -61,7 +61,7 @@ pub fn run(
     for i in 0..steps {
         let alpha = i as f32 / (steps - 1) as f32;
         let (q, s) = candidate(alpha)?;
-        let err = output_error(calib, w, q.dequantized.view(), reference.as_ref()).rel_err;
+        let err = output_error(calib, w, q.dequantized.view(), reference).rel_err;
         curve.push([f64::from(alpha), err]);
         if best.as_ref().is_none_or(|b| err < b.0) {
             best = Some((err, alpha, q, s));

@@ -52,17 +52,19 @@ pub struct Quantized {
 }
 
 /// Run the recipe's method (with its smoothing and kept values) on weight `w`.
+/// `reference` is X·Wᵀ when the calibration holds a sample (computed once by the caller).
 pub fn run(
     w: ArrayView2<f32>,
     recipe: &Recipe,
     calib: Option<&Calibration>,
+    reference: Option<&Array2<f32>>,
     progress: &mut dyn FnMut(usize, usize),
 ) -> Result<Quantized> {
     let needs = |what: &str| Error::BadRecipe { detail: format!("{what} needs calibration data") };
     let kept = keep::Kept::choose(w, recipe, calib);
     if recipe.method == Method::Awq {
         let calib = calib.ok_or_else(|| needs("AWQ"))?;
-        return awq::run(w, recipe, calib, &kept, progress);
+        return awq::run(w, recipe, calib, reference, &kept, progress);
     }
     let column_factors = match recipe.smooth {
         Some(alpha) => Some(smooth::factors(w, calib.ok_or_else(|| needs("smoothing"))?, alpha)),
