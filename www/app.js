@@ -411,8 +411,8 @@ function showMethod(method) {
   const lines = {
     rtn: () => null,
     clip: () => `Clipping search: the chosen range ratio averages ${method.mean_ratio.toFixed(3)}, ranked by ${method.output_weighted ? 'output-weighted error (diagonal of XᵀX)' : 'weight MSE'}.`,
-    hqq: () => `HQQ: ${method.mean_iterations.toFixed(1)} iterations per group on average; l${method.p} error ${fmt.sci(method.lp_before)} → ${fmt.sci(method.lp_after)} (${fmt.percent(1 - method.lp_after / method.lp_before)} lower). Zero points are real numbers stored in the scale's type.`,
-    gptq: () => `GPTQ: dampening ${method.damp}, ${method.act_order ? 'columns by decreasing diag(H)' : 'columns in order'}, ${fmt.plural(method.dead_columns, 'column')} without input; accumulated quadratic loss ${fmt.sci(method.quadratic_loss)}.`,
+    hqq: () => `HQQ: ${method.mean_iterations.toFixed(1)} iterations per group on average; l${method.p.toFixed(1)} error ${fmt.sci(method.lp_before)} → ${fmt.sci(method.lp_after)} (${fmt.percent(1 - method.lp_after / method.lp_before)} lower). Zero points are real numbers stored in the scale's type.`,
+    gptq: () => `GPTQ: dampening ${Number(method.damp.toPrecision(4))}, ${method.act_order ? 'columns by decreasing diag(H)' : 'columns in order'}, ${fmt.plural(method.dead_columns, 'column')} without input; accumulated quadratic loss ${fmt.sci(method.quadratic_loss)}.`,
     awq: () => `AWQ: the α search chose α = ${method.alpha.toFixed(2)}${method.clip ? ', then a clipping ratio per group' : ''}${method.estimated ? ' (errors estimated from per-column statistics)' : ''}.`,
   };
   const text = lines[method.name]();

@@ -19,6 +19,7 @@ export class CoreBridge {
     this.pending = new Map();
     this.remembered = { open: null, calib: null, analyze: null };
     this.onRestart = () => {};
+    this.ready = Promise.resolve();
   }
 
   /** Start the worker; resolves with what the core's init returns (its defaults). */
@@ -61,6 +62,7 @@ export class CoreBridge {
    * to be replayed (in that order) after a cancel.
    */
   async request(type, payload = {}, { onProgress, remember } = {}) {
+    await this.ready;
     const result = await this.send(type, payload, { onProgress });
     if (remember) {
       this.remembered[remember] = { type, payload };
@@ -79,16 +81,20 @@ export class CoreBridge {
     return this.restart(new Cancelled());
   }
 
-  async restart(reason) {
+  restart(reason) {
     this.worker.terminate();
     const waiting = [...this.pending.values()];
     this.pending.clear();
     waiting.forEach((entry) => entry.reject(reason));
-    await this.start();
-    for (const kind of ['open', 'calib', 'analyze']) {
-      const step = this.remembered[kind];
-      if (step) await this.send(step.type, step.payload).catch(() => {});
-    }
-    this.onRestart(reason);
+    // New requests wait until the fresh worker holds the same state again.
+    this.ready = (async () => {
+      await this.start();
+      for (const kind of ['open', 'calib', 'analyze']) {
+        const step = this.remembered[kind];
+        if (step) await this.send(step.type, step.payload).catch(() => {});
+      }
+      this.onRestart(reason);
+    })();
+    return this.ready;
   }
 }

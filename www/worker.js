@@ -140,7 +140,14 @@ const handlers = {
   },
 };
 
-self.onmessage = async (event) => {
+// Requests run one after another, in the order they came: a request that arrives while the
+// wasm module is still starting waits for it.
+let queue = Promise.resolve();
+self.onmessage = (event) => {
+  queue = queue.then(() => handle(event));
+};
+
+async function handle(event) {
   const { id, type, ...args } = event.data;
   const progress = (done, total) => self.postMessage({ id, progress: [done, total] });
   try {
@@ -158,4 +165,4 @@ self.onmessage = async (event) => {
       : message(err);
     self.postMessage({ id, ok: false, error: text, fatal });
   }
-};
+}

@@ -227,3 +227,75 @@ test('the single-file page works opened straight from disk', async () => {
   await shot(page, '11-single-file');
   await context.close();
 });
+
+async function withDemoCalibration() {
+  const session = await withDemo();
+  const before = await session.page.textContent('#status');
+  await session.page.click('#calib-demo');
+  await waitForAnalysis(session.page, before);
+  await session.page.waitForSelector('#fig-output-card:not([hidden])');
+  return session;
+}
+
+const percent = async (page, id) => Number((await page.textContent(id)).replace(/[^\d.]/g, ''));
+
+test('calibration adds the output error, and GPTQ lowers it', async () => {
+  const { page, context } = await withDemoCalibration();
+  assert.match(await page.textContent('#calib-info'), /512 tokens × 4,096 columns/);
+  const rtn = await percent(page, '#fig-output');
+  const before = await page.textContent('#status');
+  await page.selectOption('#method', 'gptq');
+  await page.waitForFunction((b) => { const s = document.getElementById('status').textContent; return s !== b && s.includes('gptq'); }, before, { timeout: 120_000 });
+  const gptq = await percent(page, '#fig-output');
+  assert.ok(gptq < rtn / 2, `GPTQ ${gptq} % vs round to nearest ${rtn} %`);
+  assert.match(await page.textContent('#method-figures'), /GPTQ: dampening 0\.01/);
+  await page.selectOption('#map-metric', 'out');
+  assert.match(await page.textContent('#map-caption'), /one cell per output row/);
+  await shot(page, '12-gptq-with-calibration');
+  await context.close();
+});
+
+test('AWQ shows its alpha curve and smoothing runs the W8A8 study', async () => {
+  const { page, context } = await withDemoCalibration();
+  const before = await page.textContent('#status');
+  await page.selectOption('#method', 'awq');
+  await page.waitForFunction((b) => { const s = document.getElementById('status').textContent; return s !== b && s.includes('awq'); }, before, { timeout: 120_000 });
+  assert.match(await page.textContent('#method-figures'), /chose α = \d\.\d\d/);
+  assert.equal(await page.isVisible('#method-curve'), true);
+  await page.click('#study-run');
+  await page.waitForFunction(() => /W8A8 with/.test(document.getElementById('smooth-figures').textContent), null, { timeout: 120_000 });
+  assert.match(await page.textContent('#smooth-figures'), /without smoothing, [\d.]+ % with α = 0\.50/);
+  await page.fill('#smooth-alpha', '0.8');
+  await page.dispatchEvent('#smooth-alpha', 'input');
+  await page.waitForFunction(() => /after \(α 0\.80\)/.test(document.getElementById('smooth-columns').textContent));
+  await shot(page, '13-awq-and-smoothing');
+  await context.close();
+});
+
+test('calibration of the wrong width is refused and the weight-only view goes on', async () => {
+  const { page, context } = await withDemo();
+  await page.setInputFiles('#calib-input', { name: 'acts.npy', mimeType: 'application/octet-stream', buffer: fixture('quant_weight.npy') });
+  await page.waitForSelector('#calib-message:not([hidden])');
+  assert.match(await page.textContent('#calib-message'), /300 columns but the weight has 4096 input columns/);
+  assert.equal(await page.isHidden('#fig-output-card'), true);
+  const before = await page.textContent('#status');
+  await page.selectOption('#bits', '3');
+  await waitForAnalysis(page, before);
+  await shot(page, '14-calibration-refused');
+  await context.close();
+});
+
+test('a long GPTQ run can be cancelled and the calibration survives', async () => {
+  const { page, context } = await withDemoCalibration();
+  const output = await page.textContent('#fig-output');
+  await page.selectOption('#method', 'gptq');
+  await page.waitForSelector('#busy:not([hidden])');
+  await page.click('#cancel');
+  await page.waitForFunction(() => document.getElementById('status').textContent.startsWith('Cancelled'));
+  assert.equal(await page.textContent('#fig-output'), output);
+  // The restarted worker has the tensor and the calibration again.
+  await page.selectOption('#method', 'clip');
+  await page.waitForFunction(() => document.getElementById('status').textContent.includes('clip on demo'), null, { timeout: 60_000 });
+  assert.equal(await page.isVisible('#fig-output-card'), true);
+  await context.close();
+});
