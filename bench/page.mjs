@@ -6,13 +6,50 @@
 //    control's change to the painted headline, error map and column profile of the 4-bit runs.
 // 2. listing: a 2 GiB `.safetensors` file (128 f16 tensors of 4096 × 2048; sparse on disk) is
 //    chosen; the time from choosing it to the painted list of its tensors.
+// 3. GPTQ and AWQ on the same 4096 × 4096 weight with 512 calibration tokens, int4 asym g128:
+//    the time from choosing the method to the drawn result in the page, and the wall time of the
+//    native `bitloupe quantize` command (BITLOUPE_BIN) on the same files, single-threaded both.
 import { mkdirSync, writeFileSync, openSync, ftruncateSync, closeSync, writeSync } from 'node:fs';
+import { execFileSync } from 'node:child_process';
 import os from 'node:os';
 import path from 'node:path';
 import { launch, URL_UNDER_TEST } from '../tests/browser/harness.mjs';
 
 const dir = path.join(os.tmpdir(), 'bitloupe-bench');
 mkdirSync(dir, { recursive: true });
+
+function random(seed) {
+  let s = seed >>> 0;
+  return () => {
+    s = (s * 1103515245 + 12345) >>> 0;
+    return s / 2 ** 32 - 0.5;
+  };
+}
+
+/** Activations with 16 shared factors and two loud channels, [tokens, cols]. */
+function activationsNpy(tokens, cols, file) {
+  const next = random(777);
+  const mixing = Float32Array.from({ length: 16 * cols }, () => next());
+  const data = new Float32Array(tokens * cols);
+  for (let t = 0; t < tokens; t++) {
+    const latent = Array.from({ length: 16 }, () => next() * 3);
+    for (let j = 0; j < cols; j++) {
+      let v = 0.3 * next();
+      for (let k = 0; k < 16; k++) v += latent[k] * mixing[k * cols + j];
+      data[t * cols + j] = v * (j === 17 ? 60 : j === 2900 ? 30 : 1);
+    }
+  }
+  writeNpy(file, tokens, cols, data);
+}
+
+function writeNpy(file, rows, cols, data) {
+  const header = `{'descr': '<f4', 'fortran_order': False, 'shape': (${rows}, ${cols}), }`;
+  const padded = header + ' '.repeat(64 - ((10 + header.length + 1) % 64)) + '\n';
+  const head = Buffer.alloc(10);
+  Buffer.from([0x93, 0x4e, 0x55, 0x4d, 0x50, 0x59, 1, 0]).copy(head);
+  head.writeUInt16LE(padded.length, 8);
+  writeFileSync(file, Buffer.concat([head, Buffer.from(padded), Buffer.from(data.buffer)]));
+}
 
 function npyF32(rows, cols, file) {
   const header = `{'descr': '<f4', 'fortran_order': False, 'shape': (${rows}, ${cols}), }`;
@@ -53,6 +90,7 @@ npyF32(4096, 4096, weightFile);
 sparseSafetensors(bigFile, 128, 4096, 2048);
 
 const browser = await launch();
+// The methods below take seconds in the page.
 const page = await browser.newPage({ viewport: { width: 1400, height: 1000 } });
 await page.goto(URL_UNDER_TEST);
 await page.waitForSelector('body[data-ready=true]');
@@ -71,6 +109,30 @@ for (let i = 0; i < rounds; i++) {
 const recipeRuns = (await timings()).filter((t) => t.what === 'recipe-to-drawn').filter((_, i) => i % 2 === 1).map((t) => t.ms);
 const openRun = (await timings()).find((t) => t.what === 'open-to-drawn').ms;
 
+// GPTQ and AWQ with calibration, in the page.
+const actsFile = path.join(dir, 'acts-512x4096.npy');
+activationsNpy(512, 4096, actsFile);
+await page.setInputFiles('#calib-input', actsFile);
+await page.waitForFunction(() => !document.getElementById('fig-output-card').hidden, null, { timeout: 120_000 });
+const methodTimes = {};
+for (const method of ['gptq', 'awq']) {
+  const done = (await timings()).filter((t) => t.what === 'recipe-to-drawn').length;
+  await page.selectOption('#method', method);
+  await waitFor('recipe-to-drawn', done + 1);
+  const runs = (await timings()).filter((t) => t.what === 'recipe-to-drawn');
+  methodTimes[method] = runs[runs.length - 1].ms;
+}
+await page.selectOption('#method', 'rtn');
+
+const native = {};
+if (process.env.BITLOUPE_BIN) {
+  for (const method of ['gptq', 'awq']) {
+    const start = performance.now();
+    execFileSync(process.env.BITLOUPE_BIN, ['quantize', weightFile, '--calib', actsFile, '--method', method]);
+    native[method] = performance.now() - start;
+  }
+}
+
 const listRuns = [];
 for (let i = 0; i < 5; i++) {
   await page.setInputFiles('#file-input', bigFile);
@@ -84,3 +146,7 @@ console.log('| --- | --- | --- |');
 console.log(`| 4096×4096 f32, recipe change to int4 asym g128 f16 → drawn | ${median(recipeRuns).toFixed(0)} ms | ${recipeRuns.map((x) => x.toFixed(0)).join(', ')} |`);
 console.log(`| 4096×4096 f32, open file → first drawn result | ${openRun.toFixed(0)} ms | 1 |`);
 console.log(`| 2 GiB .safetensors (128 tensors), choose file → list drawn | ${median(listRuns).toFixed(0)} ms | ${listRuns.map((x) => x.toFixed(0)).join(', ')} |`);
+for (const method of ['gptq', 'awq']) {
+  const ratio = native[method] ? ` (native command ${(native[method] / 1000).toFixed(2)} s; page/native ${(methodTimes[method] / native[method]).toFixed(2)}×)` : '';
+  console.log(`| 4096×4096 f32 + 512 tokens, ${method.toUpperCase()} int4 g128 → drawn | ${(methodTimes[method] / 1000).toFixed(2)} s${ratio} | 1 |`);
+}

@@ -129,7 +129,7 @@ fn run(tensor: &Tensor, recipe: &Recipe, calib: Option<&Calibration>, progress: 
     let mut measure = Measure::new(recipe, rows, cols);
     let reference = calib.and_then(|c| c.reference_output(tensor.values.view()));
     let plain = recipe.method == Method::Rtn && recipe.smooth.is_none() && recipe.keep_cols == 0 && recipe.keep_frac == 0.0;
-    let (dequantized, params, method) = if plain {
+    let (dequantized, params, method, measured) = if plain {
         // The hot path: each row is measured while it is still in cache.
         let q = methods::rtn_rows(tensor.values.view(), recipe, |r, x, out| {
             measure.row(r, x, out);
@@ -137,15 +137,18 @@ fn run(tensor: &Tensor, recipe: &Recipe, calib: Option<&Calibration>, progress: 
                 progress(r + 1, rows);
             }
         })?;
-        (q.dequantized, q.params, q.figures)
+        (q.dequantized, q.params, q.figures, None)
     } else {
         let q = methods::run(tensor.values.view(), recipe, calib, reference.as_ref(), progress)?;
         for (r, (x, out)) in tensor.values.rows().into_iter().zip(q.dequantized.rows()).enumerate() {
             measure.row(r, x.as_slice().expect("row-major"), out.as_slice().expect("row-major"));
         }
-        (q.dequantized, q.params, q.figures)
+        (q.dequantized, q.params, q.figures, q.output)
     };
-    let output = calib.map(|c| output_error(c, tensor.values.view(), dequantized.view(), reference.as_ref()));
+    let output = match measured {
+        Some(known) => Some(known),
+        None => calib.map(|c| output_error(c, tensor.values.view(), dequantized.view(), reference.as_ref())),
+    };
     let (totals, groups, columns) = measure.finish(recipe);
     Ok(Analysis {
         recipe: *recipe,

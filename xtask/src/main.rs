@@ -393,6 +393,7 @@ fn bench() -> Result {
     let root = root();
     step("native benchmarks (divan)");
     run(Command::new("cargo").args(["bench", "-p", "bitloupe"]).current_dir(&root))?;
+    run(Command::new("cargo").args(["build", "--release", "-p", "bitloupe"]).current_dir(&root))?;
     ensure_chromium()?;
     let dist = build()?;
     step("in-browser benchmark (headless Chromium)");
@@ -401,6 +402,7 @@ fn bench() -> Result {
     run(Command::new("node")
         .arg(root.join("bench/page.mjs"))
         .env("BITLOUPE_URL", format!("http://127.0.0.1:{port}/"))
+        .env("BITLOUPE_BIN", root.join("target/release/bitloupe"))
         .env("BITLOUPE_CHROMIUM", CHROMIUM)
         .current_dir(&root))
 }

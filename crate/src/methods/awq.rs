@@ -10,7 +10,8 @@
 //! is the diagonal estimate of `calib`.
 
 use super::keep::Kept;
-use super::{clip, rtn, scale_columns, unscale_columns, MethodFigures, Quantized};
+use super::{clip, quantize_groups, scale_columns, unscale_columns, MethodFigures, Quantized};
+use crate::grid::IntGrid;
 use crate::calib::{output_error, Calibration};
 use crate::error::Result;
 use crate::recipe::{Method, Recipe};
@@ -38,6 +39,12 @@ pub fn factors(mean_abs: &[f32], alpha: f32) -> Vec<f32> {
     raw.iter().map(|v| v / centre).collect()
 }
 
+/// The factors of the columns from `col0` on; a per-tensor group runs over every row, so its
+/// factors repeat every `cols` values.
+fn factors_from(s: &[f32], col0: usize, cols: usize) -> impl Iterator<Item = &f32> {
+    s[col0 % cols..].iter().chain(s.iter().cycle())
+}
+
 /// AWQ's α search on weight `w`.
 pub fn run(
     w: ArrayView2<f32>,
@@ -48,22 +55,42 @@ pub fn run(
     progress: &mut dyn FnMut(usize, usize),
 ) -> Result<Quantized> {
     let plain = Recipe { method: Method::Rtn, ..*recipe };
+    let grid = IntGrid::new(&plain);
+    let cols = w.ncols();
+    // Q(W·diag(s))·diag(s)⁻¹ group by group, scaling on the fly instead of copying W per α.
     let candidate = |alpha: f32| -> Result<(Quantized, Vec<f32>)> {
         let s = factors(&calib.mean_abs, alpha);
-        let mut q = rtn(scale_columns(w, &s).view(), &plain, kept)?;
-        unscale_columns(&mut q.dequantized, &s);
-        kept.restore(w, &mut q.dequantized);
-        Ok((q, s))
+        let mut scaled = Vec::new();
+        let (mut dequantized, params) = quantize_groups(
+            w,
+            &plain,
+            kept,
+            |x, col0| {
+                scaled.clear();
+                scaled.extend(x.iter().zip(factors_from(&s, col0, cols)).map(|(v, f)| v * f));
+                grid.fit(&scaled)
+            },
+            |p, x, out, col0| {
+                for ((o, &v), &f) in out.iter_mut().zip(x).zip(factors_from(&s, col0, cols)) {
+                    *o = grid.dequantize_one(p, v * f) / f;
+                }
+            },
+            |_, _, _| {},
+        )?;
+        kept.restore(w, &mut dequantized);
+        Ok((Quantized { dequantized, params, figures: MethodFigures::Rtn, output: None }, s))
     };
     let steps = 21;
     let mut curve = Vec::with_capacity(steps);
     let mut best: Option<(f64, f32, Quantized, Vec<f32>)> = None;
     for i in 0..steps {
         let alpha = i as f32 / (steps - 1) as f32;
-        let (q, s) = candidate(alpha)?;
-        let err = output_error(calib, w, q.dequantized.view(), reference).rel_err;
+        let (mut q, s) = candidate(alpha)?;
+        let measured = output_error(calib, w, q.dequantized.view(), reference);
+        let err = measured.rel_err;
         curve.push([f64::from(alpha), err]);
         if best.as_ref().is_none_or(|b| err < b.0) {
+            q.output = Some(measured);
             best = Some((err, alpha, q, s));
         }
         progress(i + 1, steps);

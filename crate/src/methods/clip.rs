@@ -53,12 +53,13 @@ pub fn run(w: ArrayView2<f32>, recipe: &Recipe, calib: Option<&Calibration>, kep
             groups += 1;
             Ok(p)
         },
-        |p, x, out| grid.quantize_into(p, x, out),
+        |p, x, out, _| grid.quantize_into(p, x, out),
         |_, _, _| {},
     )?;
     Ok(Quantized {
         dequantized,
         params,
+        output: None,
         figures: MethodFigures::Clip { mean_ratio: (ratio_sum / groups.max(1) as f64) as f32, output_weighted: calib.is_some() },
     })
 }

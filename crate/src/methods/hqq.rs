@@ -111,7 +111,7 @@ pub fn run(w: ArrayView2<f32>, recipe: &Recipe, kept: &Kept) -> Result<Quantized
             groups += 1;
             Ok(p)
         },
-        |p, x, out| {
+        |p, x, out, _| {
             for (o, &v) in out.iter_mut().zip(x) {
                 *o = dequantize(p, grid.qmax, v);
             }
@@ -121,6 +121,7 @@ pub fn run(w: ArrayView2<f32>, recipe: &Recipe, kept: &Kept) -> Result<Quantized
     Ok(Quantized {
         dequantized,
         params,
+        output: None,
         figures: MethodFigures::Hqq(HqqFigures {
             p: P,
             mean_iterations: iterations as f32 / groups.max(1) as f32,

@@ -49,6 +49,8 @@ pub struct Quantized {
     pub params: Vec<GroupParams>,
     /// The method's own figures.
     pub figures: MethodFigures,
+    /// The output error of `dequantized`, when the method already measured it (AWQ does).
+    pub output: Option<crate::calib::OutputError>,
 }
 
 /// Run the recipe's method (with its smoothing and kept values) on weight `w`.
@@ -104,8 +106,8 @@ pub fn run(
 pub fn rtn(w: ArrayView2<f32>, recipe: &Recipe, kept: &keep::Kept) -> Result<Quantized> {
     let grid = IntGrid::new(recipe);
     let (dequantized, params) =
-        quantize_groups(w, recipe, kept, |x, _| grid.fit(x), |p, x, out| grid.quantize_into(p, x, out), |_, _, _| {})?;
-    Ok(Quantized { dequantized, params, figures: MethodFigures::Rtn })
+        quantize_groups(w, recipe, kept, |x, _| grid.fit(x), |p, x, out, _| grid.quantize_into(p, x, out), |_, _, _| {})?;
+    Ok(Quantized { dequantized, params, figures: MethodFigures::Rtn, output: None })
 }
 
 /// Round to nearest over the rows of `w` in one pass, handing each row and its reconstruction to
@@ -115,8 +117,8 @@ pub fn rtn_rows(w: ArrayView2<f32>, recipe: &Recipe, each_row: impl FnMut(usize,
     let grid = IntGrid::new(recipe);
     let none = keep::Kept::default();
     let (dequantized, params) =
-        quantize_groups(w, recipe, &none, |x, _| grid.fit(x), |p, x, out| grid.quantize_into(p, x, out), each_row)?;
-    Ok(Quantized { dequantized, params, figures: MethodFigures::Rtn })
+        quantize_groups(w, recipe, &none, |x, _| grid.fit(x), |p, x, out, _| grid.quantize_into(p, x, out), each_row)?;
+    Ok(Quantized { dequantized, params, figures: MethodFigures::Rtn, output: None })
 }
 
 /// Width of the groups of a row (the whole row for per-row and per-tensor recipes).
@@ -128,14 +130,16 @@ pub fn group_width(granularity: Granularity, cols: usize) -> usize {
 }
 
 /// Fit and quantize every group of `w`: `fit(values, first column)` chooses the parameters
-/// (kept values are zeroed first so they do not stretch the range), `quantize` writes the
-/// group's reconstruction, and `each_row(row, values, reconstruction)` sees every finished row.
+/// (kept values are zeroed first so they do not stretch the range), `quantize(params, values,
+/// out, first column)` writes the group's reconstruction, and `each_row(row, values,
+/// reconstruction)` sees every finished row. For a per-tensor recipe the one fit sees the whole
+/// tensor row-major, so its value j belongs to column j mod cols.
 pub fn quantize_groups(
     w: ArrayView2<f32>,
     recipe: &Recipe,
     kept: &keep::Kept,
     mut fit: impl FnMut(&[f32], usize) -> std::result::Result<GroupParams, ScaleOverflow>,
-    mut quantize: impl FnMut(GroupParams, &[f32], &mut [f32]),
+    mut quantize: impl FnMut(GroupParams, &[f32], &mut [f32], usize),
     mut each_row: impl FnMut(usize, &[f32], &[f32]),
 ) -> Result<(Array2<f32>, Vec<GroupParams>)> {
     let masked = kept.masked(w);
@@ -168,7 +172,7 @@ pub fn quantize_groups(
                     p
                 }
             };
-            quantize(p, x, o);
+            quantize(p, x, o, k * width);
         }
         each_row(r, x_row, out_row);
     }
