@@ -78,7 +78,7 @@ fn awq_search_matches_numpy_and_never_loses_to_alpha_zero() {
     assert!(out <= figures.curve[0][1], "the chosen α is never worse than α = 0");
     // α = 0 gives s = 1: exactly plain round to nearest.
     let rtn = analyze(&w, &recipe(Method::Rtn, 3, 64)).unwrap();
-    let plain = bitloupe::calib::output_error(&calib, w.values.view(), rtn.dequantized.view(), calib.reference_output(w.values.view()).as_ref());
+    let plain = bitloupe::calib::output_error(&calib, w.values.view(), rtn.dequantized.view(), calib.reference_output(w.values.view()).as_deref());
     assert_eq!(figures.curve[0][1], plain.rel_err);
 }
 

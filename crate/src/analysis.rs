@@ -139,7 +139,7 @@ fn run(tensor: &Tensor, recipe: &Recipe, calib: Option<&Calibration>, progress: 
         })?;
         (q.dequantized, q.params, q.figures, None)
     } else {
-        let q = methods::run(tensor.values.view(), recipe, calib, reference.as_ref(), progress)?;
+        let q = methods::run(tensor.values.view(), recipe, calib, reference.as_deref(), progress)?;
         for (r, (x, out)) in tensor.values.rows().into_iter().zip(q.dequantized.rows()).enumerate() {
             measure.row(r, x.as_slice().expect("row-major"), out.as_slice().expect("row-major"));
         }
@@ -147,7 +147,7 @@ fn run(tensor: &Tensor, recipe: &Recipe, calib: Option<&Calibration>, progress: 
     };
     let output = match measured {
         Some(known) => Some(known),
-        None => calib.map(|c| output_error(c, tensor.values.view(), dequantized.view(), reference.as_ref())),
+        None => calib.map(|c| output_error(c, tensor.values.view(), dequantized.view(), reference.as_deref())),
     };
     let (totals, groups, columns) = measure.finish(recipe);
     Ok(Analysis {

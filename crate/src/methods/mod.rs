@@ -54,7 +54,7 @@ pub struct Quantized {
 }
 
 /// Run the recipe's method (with its smoothing and kept values) on weight `w`.
-/// `reference` is X·Wᵀ when the calibration holds a sample (computed once by the caller).
+/// `reference` is X·Wᵀ when the calibration holds a sample.
 pub fn run(
     w: ArrayView2<f32>,
     recipe: &Recipe,

@@ -109,7 +109,7 @@ pub fn study(
     let x = calib.sample.as_ref().ok_or_else(|| Error::BadRecipe {
         detail: "the W8A8 study needs an activation sample [tokens, cols], not only per-column statistics".into(),
     })?;
-    let y = linalg::matmul_transposed(x.view(), w);
+    let y = calib.reference_output(w).expect("the sample exists");
     let w_max = column_max(w);
     let error_at = |s: Option<&[f32]>| w8a8_error(w, x.view(), s, act, &y);
     let error_without = error_at(None)?;
