@@ -371,6 +371,7 @@ async function analyze() {
     if (result) {
       showResults(result, { fresh: false });
       recordTiming('recipe-to-drawn', started);
+      timings.push({ what: 'recipe-compute', ms: bridge.lastComputeMs });
     }
   } catch (err) {
     showRecipeError(err.message);

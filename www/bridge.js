@@ -42,6 +42,7 @@ export class CoreBridge {
     }
     this.pending.delete(message.id);
     if (message.ok) {
+      this.lastComputeMs = message.computeMs;
       entry.resolve(message.result);
       return;
     }

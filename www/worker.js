@@ -153,8 +153,9 @@ async function handle(event) {
   try {
     const handler = handlers[type];
     if (!handler) throw new Error(`unknown request ${type}`);
+    const started = performance.now();
     const out = await handler(args, progress);
-    self.postMessage({ id, ok: true, result: out.value }, out.transfer || []);
+    self.postMessage({ id, ok: true, result: out.value, computeMs: performance.now() - started }, out.transfer || []);
   } catch (err) {
     // A trap (a panic, or memory exhausted) leaves the wasm instance unusable: report it, and
     // let the bridge start a fresh worker.

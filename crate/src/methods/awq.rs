@@ -3,7 +3,7 @@
 //!
 //! Per-column factors s_j = (mean|x_j|)^α, clamped below at 10⁻⁴ and divided by
 //! √(max s · min s) so they centre on 1 (from memory of the paper's reference code), scale the
-//! weight before quantization: Ŵ = Q(W·diag(s))·diag(s)⁻¹. α is searched on 0, 0.05, …, 1 and
+//! weight before quantization: Ŵ = Q(W·diag(s))·diag(s)⁻¹. α is searched on 0, 0.05, …, 0.95 and
 //! the α with the lowest output error on the calibration data is kept; α = 0 gives s = 1, plain
 //! round to nearest, so the choice is never worse than that. Optionally a clipping ratio is then
 //! searched per group by output-weighted error. Without an activation sample the output error
@@ -17,6 +17,9 @@ use crate::error::Result;
 use crate::recipe::{Method, Recipe};
 use ndarray::{Array2, ArrayView2};
 use serde::Serialize;
+
+/// Points of the α grid: 0, 0.05, …, 0.95, as in the paper's reference search (from memory).
+pub const ALPHA_STEPS: usize = 20;
 
 /// What AWQ reports.
 #[derive(Debug, Clone, PartialEq, Serialize)]
@@ -39,10 +42,11 @@ pub fn factors(mean_abs: &[f32], alpha: f32) -> Vec<f32> {
     raw.iter().map(|v| v / centre).collect()
 }
 
-/// The factors of the columns from `col0` on; a per-tensor group runs over every row, so its
-/// factors repeat every `cols` values.
-fn factors_from(s: &[f32], col0: usize, cols: usize) -> impl Iterator<Item = &f32> {
-    s[col0 % cols..].iter().chain(s.iter().cycle())
+/// A group's values paired with their columns' factors, in pieces that lie within one row: a
+/// per-row or grouped recipe's group is one piece, a per-tensor group one piece per row.
+fn aligned<'a>(x: &'a [f32], s: &'a [f32], col0: usize, cols: usize) -> impl Iterator<Item = (&'a [f32], &'a [f32])> {
+    let first = x.len().min(cols - col0);
+    std::iter::once((&x[..first], &s[col0..col0 + first])).chain(x[first..].chunks(cols).map(move |row| (row, &s[..row.len()])))
 }
 
 /// AWQ's α search on weight `w`.
@@ -67,12 +71,18 @@ pub fn run(
             kept,
             |x, col0| {
                 scaled.clear();
-                scaled.extend(x.iter().zip(factors_from(&s, col0, cols)).map(|(v, f)| v * f));
+                for (xs, fs) in aligned(x, &s, col0, cols) {
+                    scaled.extend(xs.iter().zip(fs).map(|(v, f)| v * f));
+                }
                 grid.fit(&scaled)
             },
             |p, x, out, col0| {
-                for ((o, &v), &f) in out.iter_mut().zip(x).zip(factors_from(&s, col0, cols)) {
-                    *o = grid.dequantize_one(p, v * f) / f;
+                let mut done = 0;
+                for (xs, fs) in aligned(x, &s, col0, cols) {
+                    for ((o, &v), &f) in out[done..done + xs.len()].iter_mut().zip(xs).zip(fs) {
+                        *o = grid.dequantize_one(p, v * f) / f;
+                    }
+                    done += xs.len();
                 }
             },
             |_, _, _| {},
@@ -80,11 +90,10 @@ pub fn run(
         kept.restore(w, &mut dequantized);
         Ok((Quantized { dequantized, params, figures: MethodFigures::Rtn, output: None }, s))
     };
-    let steps = 21;
-    let mut curve = Vec::with_capacity(steps);
+    let mut curve = Vec::with_capacity(ALPHA_STEPS);
     let mut best: Option<(f64, f32, Quantized, Vec<f32>)> = None;
-    for i in 0..steps {
-        let alpha = i as f32 / (steps - 1) as f32;
+    for i in 0..ALPHA_STEPS {
+        let alpha = i as f32 / ALPHA_STEPS as f32;
         let (mut q, s) = candidate(alpha)?;
         let measured = output_error(calib, w, q.dequantized.view(), reference);
         let err = measured.rel_err;
@@ -93,7 +102,7 @@ pub fn run(
             q.output = Some(measured);
             best = Some((err, alpha, q, s));
         }
-        progress(i + 1, steps);
+        progress(i + 1, ALPHA_STEPS);
     }
     let (_, alpha, mut q, s) = best.expect("the grid is not empty");
     if recipe.awq_clip {

@@ -158,42 +158,44 @@ pub fn quantize(
 
     let mut out = Array2::<f32>::zeros((rows, cols));
     let mut row_losses = vec![0f64; rows];
+    let any_kept = !kept.is_empty();
     let mut i1 = 0;
     while i1 < cols {
         let i2 = (i1 + block).min(cols);
         let count = i2 - i1;
         let mut w1 = work.slice(s![.., i1..i2]).to_owned();
         let mut err1 = Array2::<f32>::zeros((rows, count));
-        for i in 0..count {
-            let col = i1 + i;
-            let orig = perm[col];
-            if dynamic_groups && orig % width == 0 {
-                let end = (i + width).min(count);
-                for r in 0..rows {
-                    fit_values(&mut scratch, r, &mut (i..end).map(|j| (orig + j - i, w1[[r, j]])));
+        let u_block = u.slice(s![i1..i2, i1..i2]);
+        // Inside a block each row evolves on its own (an update touches only its own row), so
+        // rows are swept one at a time while their 128 values stay in cache.
+        for (r, (mut w_row, mut e_row)) in w1.rows_mut().into_iter().zip(err1.rows_mut()).enumerate() {
+            let w_row = w_row.as_slice_mut().expect("row-major");
+            let e_row = e_row.as_slice_mut().expect("row-major");
+            let mut loss = 0f64;
+            for i in 0..count {
+                let orig = perm[i1 + i];
+                if dynamic_groups && orig % width == 0 {
+                    let end = (i + width).min(count);
+                    fit_values(&mut scratch, r, &mut (i..end).map(|j| (orig + j - i, w_row[j])));
                     params[r * per_row + orig / width] = grid.fit(&scratch).map_err(overflow(r, orig))?;
                 }
-            }
-            let d = u[[col, col]];
-            let u_row = u.slice(s![col, col + 1..i2]);
-            let u_row = u_row.as_slice().expect("row-major");
-            for r in 0..rows {
-                let mut w_row = w1.row_mut(r);
-                let w_row = w_row.as_slice_mut().expect("row-major");
                 let value = w_row[i];
-                let q = if kept.contains(orig, r * cols + orig) {
+                let q = if any_kept && kept.contains(orig, r * cols + orig) {
                     f16::from_f32(value).to_f32()
                 } else {
                     grid.dequantize_one(params[param_index(r, orig)], value)
                 };
                 out[[r, orig]] = q;
-                let e = (value - q) / d;
-                row_losses[r] += f64::from(e) * f64::from(e);
-                err1[[r, i]] = e;
-                for (target, &uv) in w_row[i + 1..].iter_mut().zip(u_row) {
+                let u_row = u_block.row(i);
+                let u_row = u_row.as_slice().expect("row-major");
+                let e = (value - q) / u_row[i];
+                loss += f64::from(e) * f64::from(e);
+                e_row[i] = e;
+                for (target, &uv) in w_row[i + 1..].iter_mut().zip(&u_row[i + 1..]) {
                     *target -= e * uv;
                 }
             }
+            row_losses[r] += loss;
         }
         if i2 < cols {
             linalg::subtract_product(work.slice_mut(s![.., i2..]), err1.view(), u.slice(s![i1..i2, i2..]));
