@@ -11,6 +11,7 @@
 //! A scale of 0 (an all-zero group) becomes 1; keeping 0 inside [lo, hi] so that zero is exactly
 //! representable is common practice. Both modes share one kernel, with z = 0 for symmetric grids.
 
+use crate::error::Error;
 use crate::recipe::{Recipe, ScaleDType};
 
 /// The fitted parameters of one group.
@@ -38,6 +39,13 @@ pub struct IntGrid {
 /// A scale too large for its storage type.
 #[derive(Debug, Clone, Copy, PartialEq)]
 pub struct ScaleOverflow(pub f32);
+
+impl ScaleOverflow {
+    /// The core error for this overflow in the group starting at (row, col).
+    pub fn at(self, scale_dtype: ScaleDType, row: usize, col: usize) -> Error {
+        Error::ScaleOverflow { scale: self.0, dtype: scale_dtype.name(), row, col }
+    }
+}
 
 impl IntGrid {
     /// The grid a recipe describes.

@@ -21,7 +21,7 @@
 use super::keep::Kept;
 use super::{group_width, MethodFigures, Quantized};
 use crate::calib::Calibration;
-use crate::error::{Error, Result};
+use crate::error::Result;
 use crate::grid::{min_max, GroupParams, IntGrid, ScaleOverflow};
 use crate::linalg;
 use crate::recipe::{Granularity, Recipe};
@@ -114,9 +114,7 @@ pub fn quantize(
     let per_row = recipe.granularity.groups_per_row(cols);
     let dynamic_groups = matches!(recipe.granularity, Granularity::Group(_)) && !recipe.act_order;
     let block = if dynamic_groups { width * BLOCK.div_ceil(width) } else { BLOCK };
-    let overflow = |row: usize, col: usize| {
-        move |e: ScaleOverflow| Error::ScaleOverflow { scale: e.0, dtype: recipe.scale_dtype.name(), row, col }
-    };
+    let overflow = |row: usize, col: usize| move |e: ScaleOverflow| e.at(recipe.scale_dtype, row, col);
     // Kept values are left out of every fit, as in the other methods.
     let fit_values = |values: &mut Vec<f32>, r: usize, cols_in_order: &mut dyn Iterator<Item = (usize, f32)>| {
         values.clear();

@@ -59,11 +59,6 @@ impl Kept {
         self.columns.is_empty() && self.elements.is_empty()
     }
 
-    /// Number of kept values in a tensor with `rows` rows.
-    pub fn count(&self, rows: usize) -> usize {
-        self.columns.len() * rows + self.elements.len()
-    }
-
     /// A copy of `w` with the kept values set to 0 (which every grid holds exactly, so they
     /// neither stretch a range nor cost error there), or `None` when nothing is kept.
     pub fn masked(&self, w: ArrayView2<f32>) -> Option<Array2<f32>> {

@@ -149,9 +149,7 @@ pub fn quantize_groups(
     };
     let (rows, cols) = w.dim();
     let width = group_width(recipe.granularity, cols);
-    let overflow = |row: usize, col: usize| {
-        move |e: ScaleOverflow| Error::ScaleOverflow { scale: e.0, dtype: recipe.scale_dtype.name(), row, col }
-    };
+    let overflow = |row: usize, col: usize| move |e: ScaleOverflow| e.at(recipe.scale_dtype, row, col);
     let source = source.as_standard_layout();
     let whole = match recipe.granularity {
         Granularity::Tensor => Some(fit(source.as_slice().expect("standard layout"), 0).map_err(overflow(0, 0))?),
