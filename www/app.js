@@ -311,10 +311,44 @@ function setCalibration(result) {
   showDependentControls();
 }
 
+/** A calibration file: its only tensor at once, or a choice when it holds several. */
+async function openCalibrationFile(file) {
+  showMessage('calib-message', '');
+  $('calib-pick').hidden = true;
+  const load = (name) => loadCalibration(`Reading ${file.name}`, 'calibFile', { file, name, kind: $('calib-kind').value, bf16: $('bf16').checked });
+  if (TEXT_FILE.test(file.name)) {
+    showMessage('calib-message', 'Calibration must be a .npy or .safetensors file.');
+    return;
+  }
+  try {
+    const listing = await bridge.request('list', { file, bf16: $('bf16').checked });
+    if (listing.entries.length === 1) {
+      load(null);
+      return;
+    }
+    const select = $('calib-tensor');
+    select.replaceChildren(new Option('choose a tensor…', ''), ...listing.entries.map((e) => new Option(`${e.name} (${fmt.shape(e.shape)})`, e.name)));
+    select.onchange = () => select.value && load(select.value);
+    $('calib-pick').hidden = false;
+  } catch (err) {
+    showMessage('calib-message', `Could not open ${file.name}: ${err.message}.`);
+  }
+}
+
 $('calib-input').addEventListener('change', (e) => {
   const file = e.target.files[0];
   e.target.value = '';
-  if (file) loadCalibration(`Reading ${file.name}`, 'calibFile', { file, name: null, kind: $('calib-kind').value, bf16: $('bf16').checked });
+  if (file) openCalibrationFile(file);
+});
+// A file dropped on the calibration box is calibration, not a new weight.
+$('calib-card').addEventListener('dragover', (e) => e.preventDefault());
+$('calib-card').addEventListener('drop', (e) => {
+  e.preventDefault();
+  e.stopPropagation();
+  dragDepth = 0;
+  $('drop-overlay').hidden = true;
+  const file = e.dataTransfer?.files?.[0];
+  if (file) openCalibrationFile(file);
 });
 $('calib-demo').addEventListener('click', () => loadCalibration('Generating the demo activations', 'calibDemo', {}));
 $('calib-clear').addEventListener('click', async () => {

@@ -39,14 +39,15 @@ export async function shot(page, name) {
   await page.screenshot({ path: path.join(SHOTS, `${name}.png`), fullPage: true });
 }
 
-/** Drop a file on the page the way a user's drag and drop delivers it. */
-export async function dropFile(page, name, bytes) {
-  await page.evaluate(({ name, data }) => {
+/** Drop a file on the page (or on the element `target` selects) as a user's drag and drop does. */
+export async function dropFile(page, name, bytes, target = null) {
+  await page.evaluate(({ name, data, target }) => {
     const file = new File([Uint8Array.from(data)], name);
     const transfer = new DataTransfer();
     transfer.items.add(file);
-    window.dispatchEvent(new DragEvent('drop', { dataTransfer: transfer, bubbles: true, cancelable: true }));
-  }, { name, data: [...bytes] });
+    const on = target ? document.querySelector(target) : window;
+    on.dispatchEvent(new DragEvent('drop', { dataTransfer: transfer, bubbles: true, cancelable: true }));
+  }, { name, data: [...bytes], target });
 }
 
 /** Wait until the status line reports a finished analysis different from `before`. */

@@ -299,3 +299,15 @@ test('a long GPTQ run can be cancelled and the calibration survives', async () =
   assert.equal(await page.isVisible('#fig-output-card'), true);
   await context.close();
 });
+
+test('calibration dropped on its box offers the tensors of a several-tensor file', async () => {
+  const { page, context } = await withDemo();
+  await dropFile(page, 'multi.safetensors', fixture('multi.safetensors'), '#calib-card');
+  await page.waitForSelector('#calib-pick:not([hidden])');
+  assert.equal(await page.locator('#calib-tensor option').count(), 9);
+  assert.match(await page.textContent('#tensor-info'), /1024 × 4096/, 'the weight is untouched');
+  await page.selectOption('#calib-tensor', 'block.0.mlp.up.weight');
+  await page.waitForSelector('#calib-message:not([hidden])');
+  assert.match(await page.textContent('#calib-message'), /5 columns but the weight has 4096/);
+  await context.close();
+});
