@@ -660,7 +660,8 @@ async function showHistogram(index) {
     const h = await bridge.request('histogram', { index, bins: HISTOGRAM_BINS });
     histogram.setData(h);
     const rows = h.rows[1] - h.rows[0] > 1 ? `rows ${h.rows[0]}–${h.rows[1] - 1}` : `row ${h.rows[0]}`;
-    $('hist-caption').textContent = `Values of the group at ${rows}, columns ${h.cols[0]}–${h.cols[1] - 1}; vertical lines are its ${h.grid.length} grid levels.`;
+    const what = h.scaled ? 'Values × their column factors (what the grid saw)' : 'Values';
+    $('hist-caption').textContent = `${what} of the group at ${rows}, columns ${h.cols[0]}–${h.cols[1] - 1}; vertical lines are its ${h.grid.length} grid levels.`;
   } catch (err) {
     if (!(err instanceof Cancelled)) $('hist-caption').textContent = `No histogram: ${err.message}`;
   }

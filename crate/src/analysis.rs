@@ -35,6 +35,9 @@ pub struct Analysis {
     pub method: MethodFigures,
     /// The output error, when calibration data was given.
     pub output: Option<OutputError>,
+    /// Per-column factors the grid saw the weight through (smoothing, AWQ): a group's grid
+    /// applies to its values times these.
+    pub column_factors: Option<Vec<f32>>,
 }
 
 /// Run `recipe` on `tensor` without calibration data.
@@ -129,7 +132,7 @@ fn run(tensor: &Tensor, recipe: &Recipe, calib: Option<&Calibration>, progress: 
     let mut measure = Measure::new(recipe, rows, cols);
     let reference = calib.and_then(|c| c.reference_output(tensor.values.view()));
     let plain = recipe.method == Method::Rtn && recipe.smooth.is_none() && recipe.keep_cols == 0 && recipe.keep_frac == 0.0;
-    let (dequantized, params, method, measured) = if plain {
+    let (dequantized, params, method, measured, column_factors) = if plain {
         // The hot path: each row is measured while it is still in cache.
         let q = methods::rtn_rows(tensor.values.view(), recipe, |r, x, out| {
             measure.row(r, x, out);
@@ -137,13 +140,13 @@ fn run(tensor: &Tensor, recipe: &Recipe, calib: Option<&Calibration>, progress: 
                 progress(r + 1, rows);
             }
         })?;
-        (q.dequantized, q.params, q.figures, None)
+        (q.dequantized, q.params, q.figures, None, None)
     } else {
         let q = methods::run(tensor.values.view(), recipe, calib, reference.as_deref(), progress)?;
         for (r, (x, out)) in tensor.values.rows().into_iter().zip(q.dequantized.rows()).enumerate() {
             measure.row(r, x.as_slice().expect("row-major"), out.as_slice().expect("row-major"));
         }
-        (q.dequantized, q.params, q.figures, q.output)
+        (q.dequantized, q.params, q.figures, q.output, q.column_factors)
     };
     let output = match measured {
         Some(known) => Some(known),
@@ -160,6 +163,7 @@ fn run(tensor: &Tensor, recipe: &Recipe, calib: Option<&Calibration>, progress: 
         cost: BitCost::of(recipe, rows, cols, tensor.dtype.bits()),
         method,
         output,
+        column_factors,
     })
 }
 

@@ -262,6 +262,9 @@ impl Recipe {
         if self.keep_cols > 0 && self.keep_frac > 0.0 {
             return bad("keep either whole columns or a fraction of weights, not both".into());
         }
+        if self.method == Method::Awq && self.smooth.is_some() {
+            return bad("AWQ chooses its own column factors; use it without smoothing".into());
+        }
         if self.method == Method::Hqq && self.symmetric {
             return bad("HQQ fits the zero point, so it needs an asymmetric grid".into());
         }
@@ -312,6 +315,7 @@ mod tests {
         assert!(Recipe { method: Method::Hqq, symmetric: true, ..Recipe::default() }.validate().is_err());
         assert!(Recipe { keep_cols: 2, keep_frac: 0.01, ..Recipe::default() }.validate().is_err());
         assert!(Recipe { smooth: Some(1.5), ..Recipe::default() }.validate().is_err());
+        assert!(Recipe { method: Method::Awq, smooth: Some(0.5), ..Recipe::default() }.validate().is_err());
         assert!(Recipe { damp: -0.1, ..Recipe::default() }.validate().is_err());
     }
 

@@ -329,14 +329,24 @@ impl TensorHandle {
     pub fn group_histogram(&self, analysis: &AnalysisHandle, index: usize, bins: usize) -> Result<JsValue, JsError> {
         #[derive(Serialize)]
         struct GroupHistogram {
+            scaled: bool,
             histogram: Histogram,
             grid: Vec<f32>,
             rows: [usize; 2],
             cols: [usize; 2],
         }
         let (rows, cols) = analysis.analysis.group_span(index).ok_or_else(|| JsError::new("no such group"))?;
-        let values = self.tensor.values.slice(ndarray::s![rows.clone(), cols.clone()]);
+        let mut values = self.tensor.values.slice(ndarray::s![rows.clone(), cols.clone()]).to_owned();
+        // With column factors the grid applies to W·diag(s); show the values it saw.
+        if let Some(s) = &analysis.analysis.column_factors {
+            for mut row in values.rows_mut() {
+                for (v, f) in row.iter_mut().zip(&s[cols.clone()]) {
+                    *v *= f;
+                }
+            }
+        }
         to_js(&GroupHistogram {
+            scaled: analysis.analysis.column_factors.is_some(),
             histogram: Histogram::of(values.iter(), bins),
             grid: analysis.analysis.grid_points(index),
             rows: [rows.start, rows.end],

@@ -60,6 +60,7 @@ pub fn run(w: ArrayView2<f32>, recipe: &Recipe, calib: Option<&Calibration>, kep
         dequantized,
         params,
         output: None,
+        column_factors: None,
         figures: MethodFigures::Clip { mean_ratio: (ratio_sum / groups.max(1) as f64) as f32, output_weighted: calib.is_some() },
     })
 }

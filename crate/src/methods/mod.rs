@@ -51,6 +51,8 @@ pub struct Quantized {
     pub figures: MethodFigures,
     /// The output error of `dequantized`, when the method already measured it (AWQ does).
     pub output: Option<crate::calib::OutputError>,
+    /// Per-column factors s the grid saw W·diag(s) through (smoothing, AWQ), if any.
+    pub column_factors: Option<Vec<f32>>,
 }
 
 /// Run the recipe's method (with its smoothing and kept values) on weight `w`.
@@ -99,6 +101,7 @@ pub fn run(
     if recipe.method != Method::Gptq {
         kept.restore(w, &mut q.dequantized);
     }
+    q.column_factors = column_factors;
     Ok(q)
 }
 
@@ -107,7 +110,7 @@ pub fn rtn(w: ArrayView2<f32>, recipe: &Recipe, kept: &keep::Kept) -> Result<Qua
     let grid = IntGrid::new(recipe);
     let (dequantized, params) =
         quantize_groups(w, recipe, kept, |x, _| grid.fit(x), |p, x, out, _| grid.quantize_into(p, x, out), |_, _, _| {})?;
-    Ok(Quantized { dequantized, params, figures: MethodFigures::Rtn, output: None })
+    Ok(Quantized { dequantized, params, figures: MethodFigures::Rtn, output: None, column_factors: None })
 }
 
 /// Round to nearest over the rows of `w` in one pass, handing each row and its reconstruction to
@@ -118,7 +121,7 @@ pub fn rtn_rows(w: ArrayView2<f32>, recipe: &Recipe, each_row: impl FnMut(usize,
     let none = keep::Kept::default();
     let (dequantized, params) =
         quantize_groups(w, recipe, &none, |x, _| grid.fit(x), |p, x, out, _| grid.quantize_into(p, x, out), each_row)?;
-    Ok(Quantized { dequantized, params, figures: MethodFigures::Rtn, output: None })
+    Ok(Quantized { dequantized, params, figures: MethodFigures::Rtn, output: None, column_factors: None })
 }
 
 /// Width of the groups of a row (the whole row for per-row and per-tensor recipes).
