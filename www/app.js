@@ -143,7 +143,7 @@ function setRecipe(recipe) {
   $('symmetric').value = String(recipe.symmetric);
   $('scale-dtype').value = recipe.scale_dtype;
   $('method').value = recipe.method;
-  $('damp').value = String(recipe.damp);
+  $('damp').value = String(Number(recipe.damp.toPrecision(6)));
   $('act-order').checked = recipe.act_order;
   $('awq-clip').checked = recipe.awq_clip;
   $('smooth-on').checked = recipe.smooth !== null;
@@ -587,6 +587,8 @@ function drawMap(keepView) {
   canvas.style.height = `${height}px`;
   const grid = metric.perRow ? { rows: state.info.rows, per_row: 1, group_size: null } : g;
   map.setData({ rows: grid.rows, perRow: grid.per_row, cols, groupSize: grid.group_size, values: result[metric.key], log: metric.log }, { keepView });
+  // A per-row map has no input columns to point at.
+  map.setSelectedColumn(metric.perRow ? null : state.selectedColumn);
   const what = metric.perRow ? 'one cell per output row' : g.group_size ? `groups of ${g.group_size} along each row` : g.rows === 1 ? 'the whole tensor as one group' : 'one group per row';
   $('map-caption').textContent = `${fmt.plural(grid.rows, 'row')} × ${fmt.plural(grid.per_row, 'cell')} (${what}); colour: ${metric.label}, log scale. Scroll or press + and − to zoom, drag to pan, click a cell for its histogram.`;
   const { lo, hi } = map.range();
@@ -669,7 +671,7 @@ async function showHistogram(index) {
 
 function selectColumn(col) {
   state.selectedColumn = col;
-  map.setSelectedColumn(col);
+  map.setSelectedColumn(METRICS[$('map-metric').value].perRow ? null : col);
   profile.mark(col);
   const r = state.result;
   if (col === null || !r) {
