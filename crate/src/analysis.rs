@@ -6,7 +6,8 @@
 use crate::calib::{output_error, Calibration, OutputError};
 use crate::cost::BitCost;
 use crate::error::{Error, Result};
-use crate::grid::{GroupParams, IntGrid};
+use crate::formats::{Format, Grid};
+use crate::grid::GroupParams;
 use crate::methods::{self, group_width, MethodFigures};
 use crate::metrics::{ColumnFigures, ColumnSums, ErrorFigures, ErrorSums, GroupFigures};
 use crate::recipe::{Granularity, Method, Recipe};
@@ -38,6 +39,8 @@ pub struct Analysis {
     /// Per-column factors the grid saw the weight through (smoothing, AWQ): a group's grid
     /// applies to its values times these.
     pub column_factors: Option<Vec<f32>>,
+    /// The fitted levels of each group, for codebooks (empty otherwise).
+    pub codebooks: Vec<Vec<f32>>,
 }
 
 /// Run `recipe` on `tensor` without calibration data.
@@ -131,8 +134,12 @@ fn run(tensor: &Tensor, recipe: &Recipe, calib: Option<&Calibration>, progress: 
     let (rows, cols) = (tensor.rows(), tensor.cols());
     let mut measure = Measure::new(recipe, rows, cols);
     let reference = calib.and_then(|c| c.reference_output(tensor.values.view()));
-    let plain = recipe.method == Method::Rtn && recipe.smooth.is_none() && recipe.keep_cols == 0 && recipe.keep_frac == 0.0;
-    let (dequantized, params, method, measured, column_factors) = if plain {
+    let plain = recipe.method == Method::Rtn
+        && recipe.format != Format::Codebook
+        && recipe.smooth.is_none()
+        && recipe.keep_cols == 0
+        && recipe.keep_frac == 0.0;
+    let (dequantized, params, method, measured, column_factors, codebooks) = if plain {
         // The hot path: each row is measured while it is still in cache.
         let q = methods::rtn_rows(tensor.values.view(), recipe, |r, x, out| {
             measure.row(r, x, out);
@@ -140,13 +147,13 @@ fn run(tensor: &Tensor, recipe: &Recipe, calib: Option<&Calibration>, progress: 
                 progress(r + 1, rows);
             }
         })?;
-        (q.dequantized, q.params, q.figures, None, None)
+        (q.dequantized, q.params, q.figures, None, None, q.codebooks)
     } else {
         let q = methods::run(tensor.values.view(), recipe, calib, reference.as_deref(), progress)?;
         for (r, (x, out)) in tensor.values.rows().into_iter().zip(q.dequantized.rows()).enumerate() {
             measure.row(r, x.as_slice().expect("row-major"), out.as_slice().expect("row-major"));
         }
-        (q.dequantized, q.params, q.figures, q.output, q.column_factors)
+        (q.dequantized, q.params, q.figures, q.output, q.column_factors, q.codebooks)
     };
     let output = match measured {
         Some(known) => Some(known),
@@ -164,6 +171,7 @@ fn run(tensor: &Tensor, recipe: &Recipe, calib: Option<&Calibration>, progress: 
         method,
         output,
         column_factors,
+        codebooks,
     })
 }
 
@@ -186,16 +194,21 @@ impl Analysis {
 
     /// Every value the grid of group `index` can represent, in increasing order.
     pub fn grid_points(&self, index: usize) -> Vec<f32> {
-        let grid = IntGrid::new(&self.recipe);
-        let Some(p) = self.params.get(if self.params.len() == 1 { 0 } else { index }) else { return Vec::new() };
-        let codes = grid.qmin as i32..=grid.qmax as i32;
-        codes.map(|q| (q as f32 - p.zero) * p.scale).collect()
+        let one = |list: usize| if list == 1 { 0 } else { index };
+        if self.recipe.format == Format::Codebook {
+            return self.codebooks.get(one(self.codebooks.len())).cloned().unwrap_or_default();
+        }
+        match self.params.get(one(self.params.len())) {
+            Some(&p) => Grid::new(&self.recipe).points(p),
+            None => Vec::new(),
+        }
     }
 }
 
 #[cfg(test)]
 mod tests {
     use super::*;
+    use crate::grid::IntGrid;
     use crate::recipe::ScaleDType;
     use crate::tensor::DType;
 

@@ -5,6 +5,12 @@
 //! a whole scale. Example: 4-bit asymmetric, groups of 128, f16 scales costs
 //! 4 + (16 + 4)/128 = 4.15625 bits per weight when every row is a multiple of 128 long.
 //!
+//! Other formats: small floats and NF4 store one scale per group and no zero point; MX formats
+//! one 8-bit E8M0 scale per block of 32 (MXFP4: 4 + 8/32 = 4.25 bits per weight); NF4 with
+//! double quantization stores 8-bit block constants plus one f32 per 256 of them (QLoRA's
+//! 4 + 8/64 + 32/(64·256) ≈ 4.127 bits per weight) and one f32 mean per tensor; a codebook
+//! stores 2^b f16 levels per tensor or per row.
+//!
 //! Further parts, when the recipe has them:
 //! * HQQ's zero points are real numbers, stored in the scale's type instead of b bits;
 //! * kept values cost 16 bits each plus their index: one u32 per kept column, or one u32
@@ -12,8 +18,12 @@
 //! * per-column factors of smoothing or AWQ cost one scale-type value per input column unless
 //!   they are folded into the previous layer (we count them; folding makes them free).
 
+use crate::formats::{codebook, Format};
 use crate::methods::keep::kept_count;
 use crate::recipe::{Method, Recipe};
+
+/// Block constants per f32 constant in NF4's double quantization (QLoRA).
+pub const DOUBLE_QUANT_BLOCK: u64 = 256;
 use serde::Serialize;
 
 /// Bits of one kept value (f16).
@@ -59,14 +69,21 @@ impl BitCost {
     pub fn of(recipe: &Recipe, rows: usize, cols: usize, source_bits_per_element: u32) -> Self {
         let elements = (rows as u64) * (cols as u64);
         let groups = recipe.granularity.group_count(rows, cols) as u64;
-        let bits = u64::from(recipe.bits);
+        let bits = u64::from(recipe.format.element_bits(recipe.bits));
         let payload_bits = elements * bits;
         let scale_type_bits = u64::from(recipe.scale_dtype.bits());
-        let scale_bits = groups * scale_type_bits;
-        let zero_point_bits = match (recipe.symmetric, recipe.method) {
-            (true, _) => 0,
-            (false, Method::Hqq) => groups * scale_type_bits,
-            (false, _) => groups * bits,
+        let scale_bits = match recipe.format {
+            Format::Codebook => groups * (1u64 << recipe.bits) * codebook::LEVEL_BITS,
+            Format::Nf4 if recipe.double_quant => {
+                // 8-bit codes of the block constants, one f32 per 256 of them, and their f32 mean.
+                groups * 8 + groups.div_ceil(DOUBLE_QUANT_BLOCK) * 32 + if groups > 0 { 32 } else { 0 }
+            }
+            _ => groups * scale_type_bits,
+        };
+        let zero_point_bits = match (recipe.format, recipe.symmetric, recipe.method) {
+            (Format::Int, false, Method::Hqq) => groups * scale_type_bits,
+            (Format::Int, false, _) => groups * bits,
+            _ => 0,
         };
         let (kept_values, index_bits) = if recipe.keep_cols > 0 {
             let k = recipe.keep_cols.min(cols) as u64;
@@ -147,5 +164,23 @@ mod tests {
         assert_eq!(hqq.zero_point_bits, hqq.groups * 16);
         let awq = BitCost::of(&Recipe { method: Method::Awq, ..Recipe::default() }, 64, 256, 16);
         assert_eq!(awq.column_factor_bits, 256 * 16);
+    }
+
+    /// Source: QLoRA (Dettmers et al., NeurIPS 2023), section 3: NF4 with double quantization
+    /// costs 4 + 8/64 + 32/(64·256) ≈ 4.127 bits per weight (plus our one f32 mean per tensor);
+    /// OCP MX v1.0: MXFP4 costs 4 + 8/32 = 4.25.
+    #[test]
+    fn format_costs_match_the_published_figures() {
+        let n = 4096.0 * 4096.0;
+        let nf4 = Recipe { format: Format::Nf4, double_quant: true, symmetric: true, granularity: Granularity::Group(64), ..Recipe::default() };
+        let c = BitCost::of(&nf4, 4096, 4096, 16);
+        assert_eq!(c.bits_per_weight, 4.0 + 8.0 / 64.0 + 32.0 / (64.0 * 256.0) + 32.0 / n);
+        assert!((c.bits_per_weight - 4.127).abs() < 0.0005);
+        let mx = Recipe { format: Format::Mxfp4, symmetric: true, scale_dtype: ScaleDType::E8M0, granularity: Granularity::Group(32), ..Recipe::default() };
+        assert_eq!(BitCost::of(&mx, 4096, 4096, 16).bits_per_weight, 4.25);
+        let e4m3 = Recipe { format: Format::E4m3, symmetric: true, granularity: Granularity::Row, ..Recipe::default() };
+        assert_eq!(BitCost::of(&e4m3, 4096, 4096, 16).bits_per_weight, 8.0 + 16.0 / 4096.0);
+        let cb = Recipe { format: Format::Codebook, bits: 3, granularity: Granularity::Row, ..Recipe::default() };
+        assert_eq!(BitCost::of(&cb, 4096, 4096, 16).bits_per_weight, 3.0 + 8.0 * 16.0 / 4096.0);
     }
 }

@@ -13,6 +13,7 @@ pub mod calib;
 pub mod cost;
 pub mod demo;
 pub mod error;
+pub mod formats;
 pub mod grid;
 pub mod linalg;
 pub mod methods;

@@ -15,6 +15,7 @@ mod cli {
     use bitloupe::tensor::{self, npy, text, Listing};
     use bitloupe::calib::{CalibKind, Calibration};
     use bitloupe::methods::smooth::{self, ActQuant, DEFAULT_SMOOTHING};
+    use bitloupe::formats::Format;
     use bitloupe::recipe::Method;
     use bitloupe::{analyze_with, Granularity, ReadOptions, Recipe, ScaleDType, Tensor};
     use clap::{Args, Parser, Subcommand};
@@ -81,7 +82,13 @@ mod cli {
     /// Recipe flags; anything left out takes the core's default.
     #[derive(Args)]
     struct RecipeArgs {
-        /// Bits per weight, 2 to 8.
+        /// Number format of the elements; the other flags default to the format's usual choice.
+        #[arg(long, value_name = "int|nf4|e2m1|e2m3|e3m2|e4m3|e5m2|mxfp4|mxfp6e2m3|mxfp6e3m2|mxfp8e4m3|mxfp8e5m2|mxint8|codebook")]
+        format: Option<String>,
+        /// NF4: quantize the block scales again (8-bit, blocks of 256).
+        #[arg(long)]
+        double_quant: bool,
+        /// Bits per weight: 2 to 8 for int, 1 to 8 for codebook.
         #[arg(long)]
         bits: Option<u8>,
         /// Elements sharing a scale: a group size (8 to 4096), 'row' or 'tensor'.
@@ -94,7 +101,7 @@ mod cli {
         #[arg(long)]
         asym: bool,
         /// Storage type of the scales.
-        #[arg(long, value_name = "f16|bf16|f32")]
+        #[arg(long, value_name = "f16|bf16|f32|e8m0")]
         scale_dtype: Option<String>,
         /// What chooses the codes.
         #[arg(long, value_name = "rtn|clip|hqq|gptq|awq")]
@@ -121,8 +128,11 @@ mod cli {
 
     impl RecipeArgs {
         fn recipe(&self) -> bitloupe::Result<Recipe> {
-            let default = Recipe::default();
+            let format = self.format.as_deref().map(str::parse::<Format>).transpose()?.unwrap_or(Format::Int);
+            let default = Recipe::for_format(format);
             let recipe = Recipe {
+                format,
+                double_quant: self.double_quant,
                 bits: self.bits.unwrap_or(default.bits),
                 granularity: self.group.as_deref().map(str::parse::<Granularity>).transpose()?.unwrap_or(default.granularity),
                 symmetric: if self.sym { true } else if self.asym { false } else { default.symmetric },

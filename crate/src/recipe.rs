@@ -4,6 +4,7 @@
 //! from [`Recipe`]; its defaults live here and nowhere else.
 
 use crate::error::{Error, Result};
+pub use crate::formats::Format;
 use half::{bf16, f16};
 use serde::{Deserialize, Serialize};
 use std::fmt;
@@ -81,6 +82,8 @@ pub enum ScaleDType {
     BF16,
     /// IEEE binary32.
     F32,
+    /// 8-bit power of two (the OCP MX shared scale).
+    E8M0,
 }
 
 impl ScaleDType {
@@ -89,6 +92,7 @@ impl ScaleDType {
         match self {
             ScaleDType::F16 | ScaleDType::BF16 => 16,
             ScaleDType::F32 => 32,
+            ScaleDType::E8M0 => 8,
         }
     }
 
@@ -98,6 +102,7 @@ impl ScaleDType {
             ScaleDType::F16 => "f16",
             ScaleDType::BF16 => "bf16",
             ScaleDType::F32 => "f32",
+            ScaleDType::E8M0 => "e8m0",
         }
     }
 
@@ -107,6 +112,7 @@ impl ScaleDType {
             ScaleDType::F16 => f16::MIN_POSITIVE.to_f32(),
             ScaleDType::BF16 => bf16::MIN_POSITIVE.to_f32(),
             ScaleDType::F32 => f32::MIN_POSITIVE,
+            ScaleDType::E8M0 => 2f32.powi(-127),
         }
     }
 
@@ -117,6 +123,8 @@ impl ScaleDType {
             ScaleDType::F16 => f16::from_f32(scale).to_f32(),
             ScaleDType::BF16 => bf16::from_f32(scale).to_f32(),
             ScaleDType::F32 => scale,
+            // The nearest power of two in the log domain, within E8M0's 2⁻¹²⁷…2¹²⁷.
+            ScaleDType::E8M0 => 2f64.powi((f64::from(scale).log2().round() as i32).clamp(-127, 127)) as f32,
         };
         if !stored.is_finite() {
             None
@@ -135,7 +143,8 @@ impl FromStr for ScaleDType {
             "f16" | "fp16" | "float16" => Ok(ScaleDType::F16),
             "bf16" | "bfloat16" => Ok(ScaleDType::BF16),
             "f32" | "fp32" | "float32" => Ok(ScaleDType::F32),
-            _ => Err(Error::BadRecipe { detail: format!("scale type '{s}' is not one of f16, bf16, f32") }),
+            "e8m0" => Ok(ScaleDType::E8M0),
+            _ => Err(Error::BadRecipe { detail: format!("scale type '{s}' is not one of f16, bf16, f32, e8m0") }),
         }
     }
 }
@@ -187,7 +196,12 @@ impl FromStr for Method {
 #[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
 #[serde(default, deny_unknown_fields)]
 pub struct Recipe {
-    /// Bits per quantized element.
+    /// Number format of the elements.
+    pub format: Format,
+    /// NF4: quantize the block scales again to 8 bits in blocks of 256 (QLoRA's double
+    /// quantization).
+    pub double_quant: bool,
+    /// Bits per quantized element (integer grids and codebooks; the other formats fix it).
     pub bits: u8,
     /// Which elements share a scale.
     pub granularity: Granularity,
@@ -217,6 +231,8 @@ impl Default for Recipe {
     /// the GPTQ paper's default.
     fn default() -> Self {
         Recipe {
+            format: Format::Int,
+            double_quant: false,
             bits: 4,
             granularity: Granularity::Group(128),
             symmetric: false,
@@ -233,8 +249,25 @@ impl Default for Recipe {
 }
 
 impl Recipe {
+    /// The default recipe for a format: blocks of 64 for NF4 (the QLoRA paper's choice), of 32
+    /// for the MX formats (their specification) with E8M0 scales, symmetric groups of 32 for the
+    /// small floats, and a 4-bit codebook per row.
+    pub fn for_format(format: Format) -> Self {
+        let base = Recipe { format, ..Recipe::default() };
+        match format {
+            Format::Int => base,
+            Format::Nf4 => Recipe { symmetric: true, granularity: Granularity::Group(64), ..base },
+            Format::Codebook => Recipe { granularity: Granularity::Row, ..base },
+            f if f.is_mx() => Recipe { symmetric: true, granularity: Granularity::Group(crate::formats::MX_BLOCK), scale_dtype: ScaleDType::E8M0, ..base },
+            _ => Recipe { symmetric: true, granularity: Granularity::Group(32), ..base },
+        }
+    }
+
     /// Check the recipe's ranges; every analysis calls this first.
     pub fn validate(&self) -> Result<()> {
+        if self.format != Format::Int {
+            return self.validate_format();
+        }
         if !BITS.contains(&self.bits) {
             return Err(Error::BadRecipe {
                 detail: format!("{} bits is outside {}..={}", self.bits, BITS.start(), BITS.end()),
@@ -271,6 +304,28 @@ impl Recipe {
         Ok(())
     }
 
+    /// The checks of a non-integer format, then the shared ones.
+    fn validate_format(&self) -> Result<()> {
+        self.format.validate(self)?;
+        let bad = |detail: String| Err(Error::BadRecipe { detail });
+        if let Granularity::Group(g) = self.granularity {
+            if !GROUP_SIZES.contains(&g) {
+                return bad(format!("group size {g} is outside {}..={}", GROUP_SIZES.start(), GROUP_SIZES.end()));
+            }
+        }
+        if self.double_quant && (self.format != Format::Nf4 || self.method != Method::Rtn) {
+            return bad("double quantization applies to NF4's block scales under round to nearest".into());
+        }
+        match self.method {
+            Method::Hqq => return bad("HQQ fits a zero point, which only the integer grid has".into()),
+            Method::Gptq | Method::Awq | Method::Clip if self.format == Format::Codebook => {
+                return bad(format!("{} works on scaled formats, not on a fitted codebook", self.method.name()))
+            }
+            _ => {}
+        }
+        Recipe { format: Format::Int, bits: 4, double_quant: false, method: Method::Rtn, ..*self }.validate()
+    }
+
     /// Whether per-column factors are folded into the weight (smoothing or AWQ).
     pub fn scales_columns(&self) -> bool {
         self.smooth.is_some() || self.method == Method::Awq
@@ -283,7 +338,12 @@ impl Recipe {
             other => format!("per-{other}"),
         };
         let mode = if self.symmetric { "sym" } else { "asym" };
-        let mut label = format!("int{} {mode} {grouping} {}", self.bits, self.scale_dtype.name());
+        let mut label = match self.format {
+            Format::Int => format!("int{} {mode} {grouping} {}", self.bits, self.scale_dtype.name()),
+            Format::Codebook => format!("codebook{} {grouping}", self.bits),
+            f if f.is_mx() => f.name().to_string(),
+            f => format!("{} {grouping} {}{}", f.name(), self.scale_dtype.name(), if self.double_quant { " dq" } else { "" }),
+        };
         if self.method != Method::Rtn {
             label.push(' ');
             label.push_str(self.method.name());
@@ -352,7 +412,7 @@ mod tests {
     fn recipes_round_trip_through_json() {
         let r = Recipe { bits: 3, granularity: Granularity::Group(32), symmetric: true, scale_dtype: ScaleDType::BF16, ..Recipe::default() };
         let json = serde_json::to_string(&r).unwrap();
-        assert!(json.starts_with(r#"{"bits":3,"granularity":{"group":32},"symmetric":true,"scale_dtype":"bf16","method":"rtn""#), "{json}");
+        assert!(json.starts_with(r#"{"format":"int","double_quant":false,"bits":3,"granularity":{"group":32},"symmetric":true,"scale_dtype":"bf16","method":"rtn""#), "{json}");
         assert_eq!(serde_json::from_str::<Recipe>(&json).unwrap(), r);
         assert_eq!(serde_json::from_str::<Recipe>("{}").unwrap(), Recipe::default());
         assert!(serde_json::from_str::<Recipe>(r#"{"bitz":3}"#).is_err());

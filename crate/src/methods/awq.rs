@@ -11,7 +11,7 @@
 
 use super::keep::Kept;
 use super::{clip, quantize_groups, scale_columns, unscale_columns, MethodFigures, Quantized};
-use crate::grid::IntGrid;
+use crate::formats::Grid;
 use crate::calib::{output_error, Calibration};
 use crate::error::Result;
 use crate::recipe::{Method, Recipe};
@@ -59,7 +59,7 @@ pub fn run(
     progress: &mut dyn FnMut(usize, usize),
 ) -> Result<Quantized> {
     let plain = Recipe { method: Method::Rtn, ..*recipe };
-    let grid = IntGrid::new(&plain);
+    let grid = Grid::new(&plain);
     let cols = w.ncols();
     // Q(W·diag(s))·diag(s)⁻¹ group by group, scaling on the fly instead of copying W per α.
     let candidate = |alpha: f32| -> Result<(Quantized, Vec<f32>)> {
@@ -88,7 +88,7 @@ pub fn run(
             |_, _, _| {},
         )?;
         kept.restore(w, &mut dequantized);
-        Ok((Quantized { dequantized, params, figures: MethodFigures::Rtn, output: None, column_factors: None }, s))
+        Ok((Quantized { dequantized, params, figures: MethodFigures::Rtn, output: None, column_factors: None, codebooks: Vec::new() }, s))
     };
     let mut curve = Vec::with_capacity(ALPHA_STEPS);
     let mut best: Option<(f64, f32, Quantized, Vec<f32>)> = None;

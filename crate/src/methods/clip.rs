@@ -7,7 +7,8 @@ use super::keep::Kept;
 use super::{quantize_groups, MethodFigures, Quantized};
 use crate::calib::Calibration;
 use crate::error::Result;
-use crate::grid::{min_max, IntGrid};
+use crate::formats::Grid;
+use crate::grid::min_max;
 use crate::recipe::Recipe;
 use ndarray::ArrayView2;
 
@@ -18,7 +19,7 @@ pub fn ratios() -> impl Iterator<Item = f32> {
 
 /// Clipping search on every group of `w`.
 pub fn run(w: ArrayView2<f32>, recipe: &Recipe, calib: Option<&Calibration>, kept: &Kept) -> Result<Quantized> {
-    let grid = IntGrid::new(recipe);
+    let grid = Grid::new(recipe);
     let cols = w.ncols();
     let weights = calib.map(|c| c.mean_sq.as_slice());
     let mut ratio_sum = 0f64;
@@ -61,6 +62,7 @@ pub fn run(w: ArrayView2<f32>, recipe: &Recipe, calib: Option<&Calibration>, kep
         params,
         output: None,
         column_factors: None,
+        codebooks: Vec::new(),
         figures: MethodFigures::Clip { mean_ratio: (ratio_sum / groups.max(1) as f64) as f32, output_weighted: calib.is_some() },
     })
 }

@@ -22,7 +22,8 @@ use super::keep::Kept;
 use super::{group_width, MethodFigures, Quantized};
 use crate::calib::Calibration;
 use crate::error::Result;
-use crate::grid::{min_max, GroupParams, IntGrid, ScaleOverflow};
+use crate::formats::Grid;
+use crate::grid::{min_max, GroupParams, ScaleOverflow};
 use crate::linalg;
 use crate::recipe::{Granularity, Recipe};
 use half::f16;
@@ -72,7 +73,7 @@ pub fn run(
     let sample = calib.sample.as_ref().expect("checked by the caller");
     let h = hessian(sample.view(), column_factors);
     let (q, figures, params) = quantize(w, h, recipe, kept, progress)?;
-    Ok(Quantized { dequantized: q, params, figures: MethodFigures::Gptq(figures), output: None, column_factors: None })
+    Ok(Quantized { dequantized: q, params, figures: MethodFigures::Gptq(figures), output: None, column_factors: None, codebooks: Vec::new() })
 }
 
 /// GPTQ with a given Hessian (before dampening); returns Ŵ, the figures and the group params.
@@ -84,7 +85,7 @@ pub fn quantize(
     progress: &mut dyn FnMut(usize, usize),
 ) -> Result<(Array2<f32>, GptqFigures, Vec<GroupParams>)> {
     let (rows, cols) = w.dim();
-    let grid = IntGrid::new(recipe);
+    let grid = Grid::new(recipe);
     let mut work = w.to_owned();
     let mut dead_columns = 0;
     for j in 0..cols {

@@ -123,6 +123,7 @@ pub fn run(w: ArrayView2<f32>, recipe: &Recipe, kept: &Kept) -> Result<Quantized
         params,
         output: None,
         column_factors: None,
+        codebooks: Vec::new(),
         figures: MethodFigures::Hqq(HqqFigures {
             p: P,
             mean_iterations: iterations as f32 / groups.max(1) as f32,

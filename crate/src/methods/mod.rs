@@ -14,7 +14,8 @@ pub mod smooth;
 
 use crate::calib::Calibration;
 use crate::error::{Error, Result};
-use crate::grid::{GroupParams, IntGrid, ScaleOverflow};
+use crate::formats::{codebook, double_quantize, Format, Grid};
+use crate::grid::{GroupParams, ScaleOverflow};
 use crate::recipe::{Granularity, Method, Recipe};
 use ndarray::{Array2, ArrayView2};
 use serde::Serialize;
@@ -53,6 +54,8 @@ pub struct Quantized {
     pub output: Option<crate::calib::OutputError>,
     /// Per-column factors s the grid saw W·diag(s) through (smoothing, AWQ), if any.
     pub column_factors: Option<Vec<f32>>,
+    /// The fitted levels of each group, for codebooks (empty otherwise).
+    pub codebooks: Vec<Vec<f32>>,
 }
 
 /// Run the recipe's method (with its smoothing and kept values) on weight `w`.
@@ -107,21 +110,71 @@ pub fn run(
 
 /// Round to nearest, group by group, with kept values left out of the fit.
 pub fn rtn(w: ArrayView2<f32>, recipe: &Recipe, kept: &keep::Kept) -> Result<Quantized> {
-    let grid = IntGrid::new(recipe);
-    let (dequantized, params) =
-        quantize_groups(w, recipe, kept, |x, _| grid.fit(x), |p, x, out, _| grid.quantize_into(p, x, out), |_, _, _| {})?;
-    Ok(Quantized { dequantized, params, figures: MethodFigures::Rtn, output: None, column_factors: None })
+    if recipe.format == Format::Codebook {
+        return codebooks(w, recipe, kept);
+    }
+    round_to_nearest(w, recipe, kept, |_, _, _| {})
 }
 
 /// Round to nearest over the rows of `w` in one pass, handing each row and its reconstruction to
 /// `each_row` while both are still in cache. This is the plain recipe's path, and the speed
 /// benchmark's subject.
 pub fn rtn_rows(w: ArrayView2<f32>, recipe: &Recipe, each_row: impl FnMut(usize, &[f32], &[f32])) -> Result<Quantized> {
-    let grid = IntGrid::new(recipe);
-    let none = keep::Kept::default();
-    let (dequantized, params) =
-        quantize_groups(w, recipe, &none, |x, _| grid.fit(x), |p, x, out, _| grid.quantize_into(p, x, out), each_row)?;
-    Ok(Quantized { dequantized, params, figures: MethodFigures::Rtn, output: None, column_factors: None })
+    round_to_nearest(w, recipe, &keep::Kept::default(), each_row)
+}
+
+fn round_to_nearest(
+    w: ArrayView2<f32>,
+    recipe: &Recipe,
+    kept: &keep::Kept,
+    each_row: impl FnMut(usize, &[f32], &[f32]),
+) -> Result<Quantized> {
+    let grid = Grid::new(recipe);
+    let quantize = |p: GroupParams, x: &[f32], out: &mut [f32], _| grid.quantize_into(p, x, out);
+    let (dequantized, params) = if recipe.double_quant {
+        // Fit every block first, quantize the block constants, then quantize with them.
+        let (_, mut fitted) = quantize_groups(w, recipe, kept, |x, _| grid.fit(x), |_, _, _, _| {}, |_, _, _| {})?;
+        double_quantize(&mut fitted);
+        let mut next = fitted.into_iter();
+        quantize_groups(w, recipe, kept, |_, _| Ok(next.next().expect("same groups")), quantize, each_row)?
+    } else {
+        quantize_groups(w, recipe, kept, |x, _| grid.fit(x), quantize, each_row)?
+    };
+    Ok(Quantized { dequantized, params, figures: MethodFigures::Rtn, output: None, column_factors: None, codebooks: Vec::new() })
+}
+
+/// A codebook per tensor or per row, fitted by Lloyd–Max; kept values stay out of the fit.
+pub fn codebooks(w: ArrayView2<f32>, recipe: &Recipe, kept: &keep::Kept) -> Result<Quantized> {
+    let masked = kept.masked(w);
+    let source = match &masked {
+        Some(m) => m.view(),
+        None => w.view(),
+    };
+    let source = source.as_standard_layout();
+    let count = 1usize << recipe.bits;
+    let (rows, cols) = w.dim();
+    let mut out = Array2::<f32>::zeros((rows, cols));
+    let mut books = Vec::new();
+    let fill = |values: &[f32], dst: &mut [f32], book: &[f32]| {
+        for (o, &v) in dst.iter_mut().zip(values) {
+            *o = codebook::nearest(book, v);
+        }
+    };
+    let all = source.as_slice().expect("standard layout");
+    if recipe.granularity == Granularity::Tensor {
+        let book = codebook::fit(all, count).levels;
+        fill(all, out.as_slice_mut().expect("row-major"), &book);
+        books.push(book);
+    } else {
+        for (x, mut o) in source.rows().into_iter().zip(out.rows_mut()) {
+            let x = x.to_slice().expect("standard layout");
+            let book = codebook::fit(x, count).levels;
+            fill(x, o.as_slice_mut().expect("row-major"), &book);
+            books.push(book);
+        }
+    }
+    let params = vec![GroupParams { scale: 1.0, zero: 0.0 }; books.len()];
+    Ok(Quantized { dequantized: out, params, figures: MethodFigures::Rtn, output: None, column_factors: None, codebooks: books })
 }
 
 /// Width of the groups of a row (the whole row for per-row and per-tensor recipes).
