@@ -176,3 +176,25 @@ fn command_line_runs_methods_with_calibration() {
     assert_eq!(bad.status.code(), Some(1));
     assert!(stderr.contains("calibration data cannot be used") && stderr.lines().count() == 1, "{stderr}");
 }
+
+/// Every scaled format works with the clipping search (never worse than its own round to
+/// nearest) and with kept weights (which lower the error); codebooks with kept weights too.
+#[test]
+fn formats_work_with_clipping_and_kept_weights() {
+    use bitloupe::formats::Format;
+    let (w, calib) = case();
+    let mse = |r: &Recipe| analyze(&w, r).unwrap().totals.mse;
+    for format in [Format::Nf4, Format::E2m1, Format::E3m2, Format::E4m3, Format::Mxfp4, Format::Mxint8] {
+        let base = Recipe::for_format(format);
+        let rtn = mse(&base);
+        let clip = mse(&Recipe { method: Method::Clip, ..base });
+        let kept = mse(&Recipe { keep_frac: 0.02, ..base });
+        assert!(clip <= rtn, "{format:?}: clip {clip} vs rtn {rtn}");
+        assert!(kept < rtn, "{format:?}: kept {kept} vs rtn {rtn}");
+        let gptq = analyze_with(&w, &Recipe { method: Method::Gptq, ..base }, Some(&calib), &mut |_, _| {}).unwrap();
+        assert!(gptq.output.unwrap().rel_err.is_finite(), "{format:?} with GPTQ");
+    }
+    let book = Recipe::for_format(Format::Codebook);
+    assert!(mse(&Recipe { keep_frac: 0.02, ..book }) < mse(&book));
+    assert!(analyze(&w, &Recipe { method: Method::Clip, ..book }).unwrap_err().to_string().contains("codebook"));
+}

@@ -98,7 +98,16 @@ function buildControls(defaults) {
     granularity.add(new Option(`groups of ${g}`, `${g}`));
   }
   setRecipe(defaults.recipe);
-  const controls = ['bits', 'granularity', 'symmetric', 'scale-dtype', 'method', 'damp', 'act-order', 'awq-clip', 'keep', 'keep-cols', 'keep-frac', 'smooth-on', 'smooth-alpha'];
+  $('format').addEventListener('change', async () => {
+    // A new format brings its usual block size, scale type and grid; the method and outlier
+    // choices stay.
+    const defaults = await bridge.request('recipeForFormat', { format: $('format').value });
+    const current = readRecipe();
+    setRecipe({ ...current, format: defaults.format, bits: defaults.bits, granularity: defaults.granularity, symmetric: defaults.symmetric, scale_dtype: defaults.scale_dtype, double_quant: false });
+    showDependentControls();
+    analyze();
+  });
+  const controls = ['double-quant', 'bits', 'granularity', 'symmetric', 'scale-dtype', 'method', 'damp', 'act-order', 'awq-clip', 'keep', 'keep-cols', 'keep-frac', 'smooth-on', 'smooth-alpha'];
   for (const id of controls) {
     $(id).addEventListener('change', () => {
       showDependentControls();
@@ -112,9 +121,19 @@ function buildControls(defaults) {
   showDependentControls();
 }
 
-/** Show only the controls that apply to the chosen method and outlier treatment. */
+/** Show only the controls that apply to the chosen format, method and outlier treatment. */
 function showDependentControls() {
-  const shown = new Set([$('method').value, $('keep').value === 'cols' ? 'keep-cols' : '', $('keep').value === 'frac' ? 'keep-frac' : '']);
+  const format = $('format').value;
+  const mx = format.startsWith('mx');
+  const shown = new Set([
+    $('method').value,
+    format,
+    $('keep').value === 'cols' ? 'keep-cols' : '',
+    $('keep').value === 'frac' ? 'keep-frac' : '',
+    format === 'int' || format === 'codebook' ? 'bits' : '',
+    mx ? '' : 'granularity',
+    mx || format === 'codebook' ? '' : 'scale',
+  ]);
   for (const el of document.querySelectorAll('[data-show]')) el.hidden = !shown.has(el.dataset.show);
   $('smooth-alpha').disabled = !$('smooth-on').checked && !state.calib;
 }
@@ -123,6 +142,8 @@ function readRecipe() {
   const g = $('granularity').value;
   const keep = $('keep').value;
   return {
+    format: $('format').value,
+    double_quant: $('double-quant').checked,
     bits: Number($('bits').value),
     granularity: g === 'tensor' || g === 'row' ? g : { group: Number(g) },
     symmetric: $('symmetric').value === 'true',
@@ -138,6 +159,8 @@ function readRecipe() {
 }
 
 function setRecipe(recipe) {
+  $('format').value = recipe.format;
+  $('double-quant').checked = recipe.double_quant;
   $('bits').value = String(recipe.bits);
   $('granularity').value = typeof recipe.granularity === 'string' ? recipe.granularity : String(recipe.granularity.group);
   $('symmetric').value = String(recipe.symmetric);
@@ -530,7 +553,10 @@ function showResults(result, { fresh }) {
   $('status').textContent = state.statusText;
 
   $('fig-bpw').textContent = s.bits_per_weight.toFixed(4);
-  $('fig-bpw-sub').textContent = `${s.recipe.bits}-bit codes + scales${s.recipe.symmetric ? '' : ' + zero points'}`;
+  const elementBits = Math.round(s.cost.payload_bits / s.cost.elements);
+  $('fig-bpw-sub').textContent = s.recipe.format === 'codebook'
+    ? `${elementBits}-bit codes + codebook levels`
+    : `${elementBits}-bit codes + scales${s.cost.zero_point_bits ? ' + zero points' : ''}`;
   $('fig-size').textContent = fmt.bytes(s.bytes);
   $('fig-size-sub').textContent = `${s.cost.ratio_to_source.toFixed(2)}× smaller than ${s.tensor.dtype} · ${s.cost.ratio_to_16bit.toFixed(2)}× smaller than 16-bit`;
   $('fig-sqnr').textContent = s.exact ? 'exact' : `${s.sqnr_db.toFixed(2)} dB`;
@@ -705,7 +731,7 @@ function showOutlierList(summary) {
 function drawBudget(cost) {
   const parts = [
     ['codes (payload)', cost.payload_bits, '--part1'],
-    ['scales', cost.scale_bits, '--part2'],
+    [state.result?.summary.recipe.format === 'codebook' ? 'codebook levels' : 'scales', cost.scale_bits, '--part2'],
     ['zero points', cost.zero_point_bits, '--part3'],
     [`kept in 16-bit (${fmt.count(cost.kept_values)} values and their indices)`, cost.kept_bits, '--accent'],
     ['per-column factors (free when folded into the previous layer)', cost.column_factor_bits, '--series2'],

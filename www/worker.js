@@ -89,6 +89,9 @@ const handlers = {
     core = wasm_bindgen;
     return { value: { defaults: core.recipeDefaults() } };
   },
+  recipeForFormat({ format }) {
+    return { value: core.recipeForFormat(format) };
+  },
   list({ file, bf16 }) {
     return { value: core.listFile(file, bf16) };
   },

@@ -55,3 +55,14 @@ fn awq_4096x4096_512_tokens_int4_g128(bencher: divan::Bencher) {
     let recipe = Recipe { method: bitloupe::recipe::Method::Awq, ..Recipe::default() };
     bencher.bench(|| bitloupe::analyze_with(&tensor, &recipe, Some(&calib), &mut |_, _| {}).unwrap());
 }
+
+/// Every format on the 4096 × 4096 tensor with its default recipe (compare with
+/// `analyze_4096x4096_int4_g128`); the codebook fits 16 levels to each of the 4096 rows.
+#[divan::bench(sample_count = 5, args = ["nf4", "e2m1", "e2m3", "e3m2", "e4m3", "e5m2", "mxfp4", "mxfp6e2m3", "mxfp6e3m2", "mxfp8e4m3", "mxfp8e5m2", "mxint8", "codebook"])]
+fn format_4096x4096(bencher: divan::Bencher, format: &str) {
+    let tensor = gaussian(4096, 4096);
+    let recipe = Recipe::for_format(format.parse().unwrap());
+    bencher
+        .counter(ItemsCount::new(tensor.values.len()))
+        .bench(|| analyze(divan::black_box(&tensor), &recipe).unwrap());
+}

@@ -119,7 +119,7 @@ pub fn min_max(x: &[f32]) -> (f32, f32) {
 /// changes nothing after the caller's clamp to at most ±256 and keeps the trick exact; it avoids
 /// a library call on targets without a rounding instruction.
 #[inline(always)]
-fn round_half_even_small(y: f32) -> f32 {
+pub(crate) fn round_half_even_small(y: f32) -> f32 {
     const MAGIC: f32 = 12_582_912.0; // 1.5 · 2^23
     const LIMIT: f32 = 1_048_576.0; // 2^20
     (y.clamp(-LIMIT, LIMIT) + MAGIC) - MAGIC

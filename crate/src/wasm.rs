@@ -64,6 +64,13 @@ pub fn recipe_defaults() -> Result<JsValue, JsError> {
     })
 }
 
+/// The default recipe for a format (see `Recipe::for_format`).
+#[wasm_bindgen(js_name = recipeForFormat)]
+pub fn recipe_for_format(name: &str) -> Result<JsValue, JsError> {
+    let format: crate::formats::Format = name.parse().map_err(js_error)?;
+    to_js(&Recipe::for_format(format))
+}
+
 /// A browser `Blob` (or `File`) read synchronously range by range; only Workers have
 /// `FileReaderSync`, which is where the core runs.
 struct BlobSource {

@@ -311,3 +311,29 @@ test('calibration dropped on its box offers the tensors of a several-tensor file
   assert.match(await page.textContent('#calib-message'), /5 columns but the weight has 4096/);
   await context.close();
 });
+
+test('the format selector shows each format with its own controls and code points', async () => {
+  const { page, context } = await withDemo();
+  const pick = async (format, label) => {
+    const before = await page.textContent('#status');
+    await page.selectOption('#format', format);
+    await page.waitForFunction(([b, l]) => { const s = document.getElementById('status').textContent; return s !== b && s.includes(l); }, [before, label], { timeout: 60_000 });
+  };
+  await pick('nf4', 'nf4 g64 f16');
+  assert.equal(await page.textContent('#fig-bpw'), '4.2500', '4 + 16/64');
+  assert.equal(await page.isVisible('#double-quant'), true);
+  assert.equal(await page.isVisible('#symmetric'), false);
+  await page.waitForFunction(() => /16 grid levels/.test(document.getElementById('hist-caption').textContent));
+  await shot(page, '15-nf4');
+  await page.check('#double-quant');
+  await page.waitForFunction(() => document.getElementById('status').textContent.includes('nf4 g64 f16 dq'));
+  assert.equal(await page.textContent('#fig-bpw'), '4.1270', 'QLoRA: 4 + 8/64 + 32/(64·256)');
+  await pick('mxfp4', 'mxfp4');
+  assert.equal(await page.textContent('#fig-bpw'), '4.2500', 'OCP MX: 4 + 8/32');
+  assert.equal(await page.isVisible('#granularity'), false);
+  await pick('e4m3', 'e4m3 g32');
+  await pick('codebook', 'codebook4 per-row');
+  await page.waitForFunction(() => /16 grid levels/.test(document.getElementById('hist-caption').textContent));
+  await shot(page, '16-codebook');
+  await context.close();
+});

@@ -10,6 +10,7 @@
 //! every value maps to its nearest stored level.
 
 use half::f16;
+pub use super::{midpoints, nearest_level};
 use std::ops::RangeInclusive;
 
 /// Codebook sizes offered, in bits (2 to 256 levels).
@@ -83,12 +84,6 @@ pub fn fit(values: &[f32], count: usize) -> Codebook {
     let mut stored: Vec<f32> = levels.iter().map(|&l| f16::from_f32(l as f32).to_f32()).collect();
     stored.dedup();
     Codebook { levels: stored, iterations, mse }
-}
-
-/// The level nearest to `v` (levels ascending).
-#[inline]
-pub fn nearest(levels: &[f32], v: f32) -> f32 {
-    super::nearest_level(levels, v)
 }
 
 #[cfg(test)]

@@ -54,6 +54,22 @@ impl MiniFloat {
         (rounded.min(f64::from(self.max)) as f32).copysign(x)
     }
 
+    /// [`MiniFloat::round`] with f32 bit arithmetic instead of a logarithm: the binade's
+    /// spacing 2^(E − m) comes from the exponent field, the rounding from the magic-number trick
+    /// (exact while |x|/spacing < 2²², which holds since it is below 2^(m+1)). Tested equal to
+    /// `round` on every representable value, every tie and random inputs.
+    #[inline(always)]
+    pub fn round_fast(&self, x: f32) -> f32 {
+        const MAGIC: f32 = 12_582_912.0; // 1.5 · 2^23
+        let a = x.abs();
+        let exponent = (((a.to_bits() >> 23) & 0xff) as i32 - 127).max(self.min_exponent);
+        let shift = exponent - self.mantissa_bits;
+        let quantum = f32::from_bits(((shift + 127) as u32) << 23);
+        let inverse = f32::from_bits(((127 - shift) as u32) << 23);
+        let rounded = ((a * inverse + MAGIC) - MAGIC) * quantum;
+        rounded.min(self.max).copysign(x)
+    }
+
     /// Every non-negative representable value, ascending.
     pub fn positive_values(&self) -> Vec<f32> {
         let mut values = vec![0.0];
@@ -100,5 +116,20 @@ mod tests {
         assert_eq!(E2M1.round(0.75), 1.0);
         assert_eq!(E2M1.round(-5.0), -4.0);
         assert!(E4M3.round(-0.0).is_sign_negative());
+    }
+
+    #[test]
+    fn the_fast_rounding_equals_the_reference() {
+        let mut rng = crate::demo::Rng::new(5);
+        for f in [E2M1, E2M3, E3M2, E4M3, E5M2] {
+            let values = f.positive_values();
+            let mut probes: Vec<f32> = values.iter().flat_map(|&v| [v, -v]).collect();
+            probes.extend(values.windows(2).map(|w| (w[0] + w[1]) / 2.0));
+            probes.extend((0..20_000).map(|_| (rng.normal() * f64::from(f.max) / 2.0) as f32));
+            probes.extend([f.max * 3.0, 1e-30, -0.0, 0.0, f32::MAX]);
+            for x in probes {
+                assert_eq!(f.round_fast(x).to_bits(), f.round(x).to_bits(), "{} of {x:e}", f.name);
+            }
+        }
     }
 }

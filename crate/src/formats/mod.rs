@@ -17,7 +17,7 @@ pub mod codebook;
 pub mod minifloat;
 
 use crate::error::{Error, Result};
-use crate::grid::{min_max, GroupParams, IntGrid, ScaleOverflow};
+use crate::grid::{min_max, round_half_even_small, GroupParams, IntGrid, ScaleOverflow};
 use crate::recipe::{Granularity, Recipe, ScaleDType};
 use minifloat::{MiniFloat, E2M1, E2M3, E3M2, E4M3, E5M2};
 use serde::{Deserialize, Serialize};
@@ -228,20 +228,39 @@ impl Grid {
     /// Quantize and dequantize one value.
     #[inline]
     pub fn dequantize_one(&self, p: GroupParams, v: f32) -> f32 {
-        match *self {
-            Grid::Int(g) => g.dequantize_one(p, v),
-            Grid::Scaled { format: Format::Nf4, .. } => nearest_level(&NF4_LEVELS, v / p.scale) * p.scale,
-            Grid::Scaled { format, .. } | Grid::Mx(format) => element_round(format, v / p.scale) * p.scale,
-        }
+        let mut out = [0f32];
+        self.quantize_into(p, &[v], &mut out);
+        out[0]
     }
 
-    /// Quantize and dequantize a group.
+    /// Quantize and dequantize a group (the format is matched once, outside the loop).
     pub fn quantize_into(&self, p: GroupParams, x: &[f32], out: &mut [f32]) {
-        match self {
+        let s = p.scale;
+        let pairs = out.iter_mut().zip(x);
+        match *self {
             Grid::Int(g) => g.quantize_into(p, x, out),
-            _ => {
-                for (o, &v) in out.iter_mut().zip(x) {
-                    *o = self.dequantize_one(p, v);
+            Grid::Scaled { format: Format::Nf4, .. } => {
+                let mids = midpoints(&NF4_LEVELS);
+                for (o, &v) in pairs {
+                    // A branch-free binary search over the 15 midpoints: the index of the
+                    // nearest level (ties go down).
+                    let u = v / s;
+                    let mut index = 0;
+                    for step in [8, 4, 2, 1] {
+                        index += step * usize::from(u > mids[index + step - 1]);
+                    }
+                    *o = NF4_LEVELS[index] * s;
+                }
+            }
+            Grid::Mx(Format::Mxint8) => {
+                for (o, &v) in pairs {
+                    *o = round_half_even_small(v / s * 64.0).clamp(-128.0, 127.0) / 64.0 * s;
+                }
+            }
+            Grid::Scaled { format, .. } | Grid::Mx(format) => {
+                let element = format.element().expect("a small float");
+                for (o, &v) in pairs {
+                    *o = element.round_fast(v / s) * s;
                 }
             }
         }
@@ -280,25 +299,15 @@ pub fn double_quantize(params: &mut [GroupParams]) {
     }
 }
 
-/// Round a unit value to the MX or small-float element type (MXINT8: 8-bit integer × 2⁻⁶).
-#[inline]
-fn element_round(format: Format, u: f32) -> f32 {
-    match format {
-        Format::Mxint8 => ((u * 64.0).round_ties_even().clamp(-128.0, 127.0)) / 64.0,
-        f => f.element().expect("a small float").round(u),
-    }
+/// Midpoints between neighbouring levels (levels ascending).
+pub fn midpoints(levels: &[f32]) -> Vec<f32> {
+    levels.windows(2).map(|w| (w[0] + w[1]) / 2.0).collect()
 }
 
-/// The nearest level (levels ascending; a tie goes to the lower level).
+/// The nearest level: the one whose cell between midpoints holds `u` (ties go down).
 #[inline]
-fn nearest_level(levels: &[f32], u: f32) -> f32 {
-    let i = levels.partition_point(|&l| l < u);
-    match (i.checked_sub(1).map(|j| levels[j]), levels.get(i)) {
-        (Some(below), Some(&above)) => if u - below <= above - u { below } else { above },
-        (Some(below), None) => below,
-        (None, Some(&above)) => above,
-        (None, None) => 0.0,
-    }
+pub fn nearest_level(levels: &[f32], mids: &[f32], u: f32) -> f32 {
+    levels[mids.partition_point(|&m| m < u)]
 }
 
 /// The E8M0 shared scale of an MX block whose largest magnitude is `absmax`:
@@ -358,5 +367,12 @@ mod tests {
         assert_eq!(nf4.dequantize_one(p, 2.0), 2.0);
         assert_eq!(nf4.points(p).len(), 16);
         assert_eq!(Grid::Mx(Format::Mxfp8e4m3).points(GroupParams { scale: 1.0, zero: 0.0 }).len(), 2 * 127 - 1);
+        // The fast NF4 search agrees with the nearest-level rule everywhere, ties included.
+        let unit = GroupParams { scale: 1.0, zero: 0.0 };
+        let mids = midpoints(&NF4_LEVELS);
+        let probes: Vec<f32> = (-1100..=1100).map(|i| i as f32 / 1000.0).chain(mids.iter().copied()).collect();
+        for u in probes {
+            assert_eq!(nf4.dequantize_one(unit, u), nearest_level(&NF4_LEVELS, &mids, u), "{u}");
+        }
     }
 }

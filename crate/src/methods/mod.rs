@@ -156,8 +156,9 @@ pub fn codebooks(w: ArrayView2<f32>, recipe: &Recipe, kept: &keep::Kept) -> Resu
     let mut out = Array2::<f32>::zeros((rows, cols));
     let mut books = Vec::new();
     let fill = |values: &[f32], dst: &mut [f32], book: &[f32]| {
+        let mids = codebook::midpoints(book);
         for (o, &v) in dst.iter_mut().zip(values) {
-            *o = codebook::nearest(book, v);
+            *o = codebook::nearest_level(book, &mids, v);
         }
     };
     let all = source.as_slice().expect("standard layout");
