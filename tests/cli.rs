@@ -137,3 +137,46 @@ fn bad_inputs_fail_with_one_clear_line_and_write_nothing() {
         assert!(leftovers.is_empty(), "{args:?} left a partial file");
     }
 }
+
+/// `sweep` writes one row per sensible recipe with the listed columns; each row's figures equal
+/// a single `quantize` of the same recipe (no shortcut changes a figure); the front is marked.
+#[test]
+fn sweep_rows_equal_single_analyses_and_mark_the_front() {
+    let dir = tempfile::tempdir().unwrap();
+    let csv = dir.path().join("sweep.csv");
+    let json = dir.path().join("sweep.json");
+    let w = fixture("method_weight.npy");
+    let x = fixture("method_acts.npy");
+    let out = bitloupe(&[
+        "sweep", path_str(&w), "--calib", path_str(&x), "--bits", "3,4", "--group", "32,64,row", "--format", "int,nf4,mxfp4",
+        "--method", "rtn,clip,gptq", "--csv", path_str(&csv), "--json", path_str(&json),
+    ]);
+    assert!(out.status.success(), "{}", text(&out.stderr));
+    let table = std::fs::read_to_string(&csv).unwrap();
+    let mut lines = table.lines();
+    assert_eq!(lines.next().unwrap(), "format,bits,group,method,scale_dtype,label,bits_per_weight,sqnr_db,mse,output_rel_err,pareto");
+    let rows: Vec<Vec<&str>> = lines.map(|l| l.split(',').collect()).collect();
+    assert!(rows.iter().any(|r| r[10] == "true") && rows.iter().any(|r| r[10] == "false"));
+    assert!(rows.iter().all(|r| !r[9].is_empty()), "output error filled in with calibration");
+    let doc: Value = serde_json::from_str(&std::fs::read_to_string(&json).unwrap()).unwrap();
+    assert_eq!(doc["pareto_by"], "output");
+    assert!(doc["skipped"].as_u64().unwrap() > 0, "mxfp4 with groups other than 32 is skipped");
+    // Every sweep row against its own single analysis.
+    for row in &rows {
+        let report = dir.path().join("one.json");
+        let mut args = vec!["quantize", path_str(&w), "--calib", path_str(&x), "--format", row[0], "--group", row[2], "--method", row[3], "--report", path_str(&report)];
+        if row[0] == "int" {
+            args.extend(["--bits", row[1]]);
+        }
+        let single = bitloupe(&args);
+        assert!(single.status.success(), "{row:?}: {}", text(&single.stderr));
+        let one: Value = serde_json::from_str(&std::fs::read_to_string(&report).unwrap()).unwrap();
+        assert_eq!(one["bits_per_weight"].as_f64().unwrap().to_string(), row[6], "{row:?}");
+        // Matrix products may sum in another order when their buffers sit at other addresses
+        // (faer picks kernels by alignment), so GPTQ's figures agree to rounding noise.
+        for (key, column) in [("mse", 8), ("output_rel_err", 9)] {
+            let (a, b) = (one[key].as_f64().unwrap(), row[column].parse::<f64>().unwrap());
+            assert!((a - b).abs() <= 1e-9 * b.abs(), "{row:?} {key}: {a} vs {b}");
+        }
+    }
+}

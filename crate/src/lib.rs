@@ -20,6 +20,7 @@ pub mod methods;
 pub mod metrics;
 pub mod recipe;
 pub mod report;
+pub mod sweep;
 pub mod tensor;
 
 #[cfg(target_arch = "wasm32")]

@@ -17,6 +17,7 @@ mod cli {
     use bitloupe::methods::smooth::{self, ActQuant, DEFAULT_SMOOTHING};
     use bitloupe::formats::Format;
     use bitloupe::recipe::Method;
+    use bitloupe::sweep::{self, ParetoBy, SweepSpec};
     use bitloupe::{analyze_with, Granularity, ReadOptions, Recipe, ScaleDType, Tensor};
     use clap::{Args, Parser, Subcommand};
     use std::path::{Path, PathBuf};
@@ -59,6 +60,51 @@ mod cli {
             /// Write the full JSON report here instead of printing a summary.
             #[arg(long, value_name = "REPORT.json")]
             report: Option<PathBuf>,
+        },
+        /// Run every combination of the listed choices and mark the Pareto front of bits per
+        /// weight against error.
+        Sweep {
+            /// A .npy or .safetensors file, or a .txt/.csv/.tsv matrix.
+            file: PathBuf,
+            /// Which tensor of a file holding several.
+            #[arg(long)]
+            tensor: Option<String>,
+            #[command(flatten)]
+            read: ReadArgs,
+            /// Formats, comma-separated.
+            #[arg(long, value_name = "LIST", default_value = "int")]
+            format: String,
+            /// Bits, comma-separated (integer grids and codebooks).
+            #[arg(long, value_name = "LIST", default_value = "2,3,4,8")]
+            bits: String,
+            /// Groups, comma-separated sizes or 'row' / 'tensor'.
+            #[arg(long, value_name = "LIST", default_value = "32,64,128,row")]
+            group: String,
+            /// Methods, comma-separated.
+            #[arg(long, value_name = "LIST", default_value = "rtn")]
+            method: String,
+            /// Scale types, comma-separated.
+            #[arg(long, value_name = "LIST", default_value = "f16")]
+            scale_dtype: String,
+            /// The error the front is drawn against: sqnr, mse or output (the default with
+            /// calibration, else mse).
+            #[arg(long, value_name = "sqnr|mse|output")]
+            pareto_by: Option<String>,
+            /// Calibration data (an activation sample or per-column statistics).
+            #[arg(long, value_name = "FILE")]
+            calib: Option<PathBuf>,
+            /// Which tensor of the calibration file.
+            #[arg(long, value_name = "NAME", requires = "calib")]
+            calib_tensor: Option<String>,
+            /// What the calibration tensor holds.
+            #[arg(long, value_name = "sample|maxabs|meanabs", default_value = "sample", requires = "calib")]
+            calib_kind: String,
+            /// Write one CSV row per recipe.
+            #[arg(long, value_name = "OUT.csv")]
+            csv: Option<PathBuf>,
+            /// Write the rows as JSON.
+            #[arg(long, value_name = "OUT.json")]
+            json: Option<PathBuf>,
         },
         /// Write the built-in demo weight (seeded, invented) as a .npy file, and optionally its
         /// matching activation sample.
@@ -236,6 +282,47 @@ mod cli {
                 }
                 write_all_or_nothing(&outputs)
             }
+            Command::Sweep { file, tensor, read, format, bits, group, method, scale_dtype, pareto_by, calib, calib_tensor, calib_kind, csv, json } => {
+                let spec = SweepSpec {
+                    formats: list(&format)?,
+                    bits: bits.split(',').map(|b| b.trim().parse::<u8>().map_err(|_| Failure(format!("--bits: '{b}' is not a number")))).collect::<Result<_, _>>()?,
+                    groups: list(&group)?,
+                    methods: list(&method)?,
+                    scale_dtypes: list(&scale_dtype)?,
+                };
+                let tensor = load(&file, tensor.as_deref(), read.options())?;
+                let calibration = match &calib {
+                    Some(path) => {
+                        let data = load(path, calib_tensor.as_deref(), read.options())?;
+                        Some(Calibration::from_tensor(&data, calib_kind.parse()?, tensor.cols()).map_err(Failure::at(path))?)
+                    }
+                    None => None,
+                };
+                let by = match pareto_by {
+                    Some(by) => by.parse::<ParetoBy>()?,
+                    None if calibration.is_some() => ParetoBy::Output,
+                    None => ParetoBy::Mse,
+                };
+                let (recipes, skipped) = sweep::recipes(&spec);
+                let (rows, failed) = sweep::run(&tensor, calibration.as_ref(), &recipes, by, &mut |done, total| {
+                    eprint!("\rbitloupe: {done}/{total} recipes");
+                })
+                .map_err(Failure::at(&file))?;
+                eprintln!();
+                let mut outputs = Vec::new();
+                if let Some(path) = csv {
+                    outputs.push((path, sweep::to_csv(&rows).into_bytes()));
+                }
+                if let Some(path) = json {
+                    let doc = serde_json::json!({ "schema": "bitloupe.sweep/1", "pareto_by": by, "skipped": skipped + failed, "rows": rows });
+                    outputs.push((path, serde_json::to_string_pretty(&doc).expect("plain data").into_bytes()));
+                }
+                if outputs.is_empty() {
+                    print!("{}", sweep::to_csv(&rows));
+                }
+                eprintln!("bitloupe: {} recipes run, {} on the Pareto front, {} combinations skipped as meaningless", rows.len(), rows.iter().filter(|r| r.pareto).count(), skipped + failed);
+                write_all_or_nothing(&outputs)
+            }
             Command::Demo { out, activations } => {
                 let as_npy = |t: &Tensor| npy::write_f32(t.values.as_slice().expect("row-major"), &t.shape);
                 let mut outputs = vec![(out, as_npy(&bitloupe::demo::weight()))];
@@ -251,6 +338,11 @@ mod cli {
         fn options(&self) -> ReadOptions {
             ReadOptions { raw16_as_bf16: self.bf16 }
         }
+    }
+
+    /// A comma-separated list of values that parse with the core's own names.
+    fn list<T: std::str::FromStr<Err = bitloupe::Error>>(text: &str) -> Result<Vec<T>, Failure> {
+        text.split(',').map(|item| item.parse::<T>().map_err(Failure::from)).collect()
     }
 
     fn is_text(path: &Path) -> bool {

@@ -1,0 +1,242 @@
+//! Sweeps: every combination of a few recipe choices run on one tensor, and the Pareto front of
+//! bits per weight against error.
+//!
+//! Each combination starts from its format's usual recipe (`Recipe::for_format`), then takes
+//! the swept bits (integer grids and codebooks only: the other formats fix their width), group
+//! (MX formats accept only their block of 32), method and scale type (MX formats always use
+//! E8M0, codebooks store f16 levels). Combinations that make no sense fail the recipe check and
+//! are skipped and counted; duplicates are run once. Every row comes from the same `analyze_with`
+//! as a single analysis, so its figures are identical.
+//!
+//! A point is on the Pareto front when no other point has both fewer bits per weight and a lower
+//! error, one of them strictly (both axes minimised; SQNR is negated).
+
+use crate::analysis::analyze_with;
+use crate::calib::Calibration;
+use crate::error::{Error, Result};
+use crate::formats::Format;
+use crate::recipe::{Granularity, Method, Recipe, ScaleDType};
+use crate::tensor::Tensor;
+use serde::{Deserialize, Serialize};
+use std::str::FromStr;
+
+/// The choices to combine.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct SweepSpec {
+    /// Formats.
+    pub formats: Vec<Format>,
+    /// Bits (for integer grids and codebooks).
+    pub bits: Vec<u8>,
+    /// Granularities.
+    pub groups: Vec<Granularity>,
+    /// Methods.
+    pub methods: Vec<Method>,
+    /// Scale types.
+    pub scale_dtypes: Vec<ScaleDType>,
+}
+
+/// The error the Pareto front is drawn against.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(rename_all = "lowercase")]
+pub enum ParetoBy {
+    /// SQNR (higher is better).
+    Sqnr,
+    /// Weight MSE.
+    Mse,
+    /// Output error on the calibration data.
+    Output,
+}
+
+impl FromStr for ParetoBy {
+    type Err = Error;
+    fn from_str(s: &str) -> Result<Self> {
+        match s.trim().to_ascii_lowercase().as_str() {
+            "sqnr" => Ok(ParetoBy::Sqnr),
+            "mse" => Ok(ParetoBy::Mse),
+            "output" => Ok(ParetoBy::Output),
+            _ => Err(Error::BadRecipe { detail: format!("'{s}' is not one of sqnr, mse, output") }),
+        }
+    }
+}
+
+/// One finished recipe of a sweep.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct SweepRow {
+    /// The recipe.
+    pub recipe: Recipe,
+    /// Its short label.
+    pub label: String,
+    /// Bits per weight, all parts counted.
+    pub bits_per_weight: f64,
+    /// SQNR in dB (`None` when exact).
+    pub sqnr_db: Option<f64>,
+    /// Weight MSE.
+    pub mse: f64,
+    /// Output error, with calibration.
+    pub output_rel_err: Option<f64>,
+    /// Whether it is on the Pareto front.
+    pub pareto: bool,
+}
+
+/// The recipes of a spec, and how many combinations were skipped as meaningless.
+pub fn recipes(spec: &SweepSpec) -> (Vec<Recipe>, usize) {
+    let mut out: Vec<Recipe> = Vec::new();
+    let mut skipped = 0;
+    for &format in &spec.formats {
+        let base = Recipe::for_format(format);
+        let bits: Vec<u8> = if matches!(format, Format::Int | Format::Codebook) { spec.bits.clone() } else { vec![base.bits] };
+        let scales: Vec<ScaleDType> = if format.is_mx() || format == Format::Codebook { vec![base.scale_dtype] } else { spec.scale_dtypes.clone() };
+        for &b in &bits {
+            for &granularity in &spec.groups {
+                for &method in &spec.methods {
+                    for &scale_dtype in &scales {
+                        let recipe = Recipe { bits: b, granularity, method, scale_dtype, ..base };
+                        if recipe.validate().is_err() {
+                            skipped += 1;
+                        } else if !out.contains(&recipe) {
+                            out.push(recipe);
+                        }
+                    }
+                }
+            }
+        }
+    }
+    (out, skipped)
+}
+
+/// Run every recipe; `progress(done, total)` after each. Recipes that fail on this tensor (a
+/// method that needs calibration, say) are skipped and counted too.
+pub fn run(
+    tensor: &Tensor,
+    calib: Option<&Calibration>,
+    recipes: &[Recipe],
+    by: ParetoBy,
+    progress: &mut dyn FnMut(usize, usize),
+) -> Result<(Vec<SweepRow>, usize)> {
+    if by == ParetoBy::Output && calib.is_none() {
+        return Err(Error::BadRecipe { detail: "a front by output error needs calibration data".into() });
+    }
+    let mut rows = Vec::with_capacity(recipes.len());
+    let mut failed = 0;
+    for (i, recipe) in recipes.iter().enumerate() {
+        match analyze_with(tensor, recipe, calib, &mut |_, _| {}) {
+            Ok(a) => rows.push(SweepRow {
+                recipe: *recipe,
+                label: recipe.label(),
+                bits_per_weight: a.cost.bits_per_weight,
+                sqnr_db: a.totals.sqnr_db,
+                mse: a.totals.mse,
+                output_rel_err: a.output.map(|o| o.rel_err),
+                pareto: false,
+            }),
+            // A non-finite tensor fails every recipe: that is the user's error, not a skip.
+            Err(e @ Error::NonFinite { .. }) => return Err(e),
+            Err(_) => failed += 1,
+        }
+        progress(i + 1, recipes.len());
+    }
+    let points: Vec<(f64, f64)> = rows.iter().map(|r| (r.bits_per_weight, error_of(r, by))).collect();
+    for (row, on) in rows.iter_mut().zip(pareto_front(&points)) {
+        row.pareto = on;
+    }
+    Ok((rows, failed))
+}
+
+/// The error of a row on the chosen axis, smaller is better.
+pub fn error_of(row: &SweepRow, by: ParetoBy) -> f64 {
+    match by {
+        ParetoBy::Sqnr => row.sqnr_db.map_or(f64::NEG_INFINITY, |db| -db),
+        ParetoBy::Mse => row.mse,
+        ParetoBy::Output => row.output_rel_err.unwrap_or(f64::INFINITY),
+    }
+}
+
+/// Which points (cost, error) no other point dominates, both axes minimised. Sorting by cost
+/// and keeping the running minimum of the error makes it O(n log n).
+pub fn pareto_front(points: &[(f64, f64)]) -> Vec<bool> {
+    let mut order: Vec<usize> = (0..points.len()).collect();
+    order.sort_by(|&a, &b| points[a].0.total_cmp(&points[b].0).then(points[a].1.total_cmp(&points[b].1)));
+    let mut front = vec![false; points.len()];
+    let mut best = f64::INFINITY;
+    let mut i = 0;
+    while i < order.len() {
+        // Points of equal cost: only those with the lowest error there can be on the front.
+        let cost = points[order[i]].0;
+        let lowest = points[order[i]].1;
+        let mut j = i;
+        while j < order.len() && points[order[j]].0 == cost {
+            if points[order[j]].1 == lowest && lowest < best {
+                front[order[j]] = true;
+            }
+            j += 1;
+        }
+        best = best.min(lowest);
+        i = j;
+    }
+    front
+}
+
+/// The sweep as CSV, one row per recipe.
+pub fn to_csv(rows: &[SweepRow]) -> String {
+    let mut out = String::from("format,bits,group,method,scale_dtype,label,bits_per_weight,sqnr_db,mse,output_rel_err,pareto\n");
+    let opt = |v: Option<f64>| v.map_or(String::new(), |x| format!("{x}"));
+    for r in rows {
+        let q = &r.recipe;
+        out.push_str(&format!(
+            "{},{},{},{},{},{},{},{},{},{},{}\n",
+            q.format.name(),
+            q.format.element_bits(q.bits),
+            q.granularity,
+            q.method.name(),
+            q.scale_dtype.name(),
+            r.label,
+            r.bits_per_weight,
+            opt(r.sqnr_db),
+            r.mse,
+            opt(r.output_rel_err),
+            r.pareto
+        ));
+    }
+    out
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::demo::Rng;
+
+    fn brute_force(points: &[(f64, f64)]) -> Vec<bool> {
+        points
+            .iter()
+            .map(|&(c, e)| !points.iter().any(|&(c2, e2)| c2 <= c && e2 <= e && (c2 < c || e2 < e)))
+            .collect()
+    }
+
+    /// Property test: on random point sets (with ties on either axis) the front equals the
+    /// brute-force definition.
+    #[test]
+    fn pareto_front_matches_brute_force() {
+        let mut rng = Rng::new(6);
+        for trial in 0..500 {
+            let n = rng.below(40);
+            let points: Vec<(f64, f64)> = (0..n).map(|_| (rng.below(8) as f64 + 2.0, (rng.below(10) as f64) * 0.1)).collect();
+            assert_eq!(pareto_front(&points), brute_force(&points), "trial {trial}: {points:?}");
+        }
+    }
+
+    #[test]
+    fn meaningless_combinations_are_skipped_and_counted() {
+        let spec = SweepSpec {
+            formats: vec![Format::Int, Format::Mxfp4, Format::Nf4],
+            bits: vec![2, 4],
+            groups: vec![Granularity::Group(32), Granularity::Row],
+            methods: vec![Method::Rtn, Method::Hqq],
+            scale_dtypes: vec![ScaleDType::F16],
+        };
+        let (recipes, skipped) = recipes(&spec);
+        // int: 2 bits × 2 groups × 2 methods = 8; mxfp4: group 32 only, rtn only = 1;
+        // nf4: 2 groups, rtn only = 2. Skipped: mxfp4 row (2) + mxfp4 hqq (1) + nf4 hqq (2).
+        assert_eq!(recipes.len(), 11);
+        assert_eq!(skipped, 5);
+    }
+}
