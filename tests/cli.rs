@@ -180,3 +180,28 @@ fn sweep_rows_equal_single_analyses_and_mark_the_front() {
         }
     }
 }
+
+/// `quantize --packed` then `unpack` gives back exactly the `--out` tensor (byte for byte in the
+/// .npy), and a damaged packed file is refused with one line.
+#[test]
+fn packed_export_unpacks_to_the_dequantized_tensor() {
+    let dir = tempfile::tempdir().unwrap();
+    let w = fixture("quant_weight.npy");
+    for flags in [vec!["--bits", "3", "--group", "64"], vec!["--format", "nf4", "--double-quant"], vec!["--format", "mxfp4", "--keep-frac", "0.01"]] {
+        let (deq, packed, back) = (dir.path().join("deq.npy"), dir.path().join("p.safetensors"), dir.path().join("back.npy"));
+        let mut args = vec!["quantize", path_str(&w), "--out", path_str(&deq), "--packed", path_str(&packed), "--report", "/dev/null"];
+        args.extend(flags.iter());
+        let out = bitloupe(&args);
+        assert!(out.status.success(), "{flags:?}: {}", text(&out.stderr));
+        let out = bitloupe(&["unpack", path_str(&packed), "--out", path_str(&back)]);
+        assert!(out.status.success(), "{}", text(&out.stderr));
+        assert!(std::fs::read(&back).unwrap() == std::fs::read(&deq).unwrap(), "{flags:?}: the unpacked .npy differs from --out");
+    }
+    let packed = std::fs::read(dir.path().join("p.safetensors")).unwrap();
+    let cut = dir.path().join("cut.safetensors");
+    std::fs::write(&cut, &packed[..packed.len() - 9]).unwrap();
+    let out = bitloupe(&["unpack", path_str(&cut), "--out", path_str(&dir.path().join("never.npy"))]);
+    assert_eq!(out.status.code(), Some(1));
+    assert_eq!(text(&out.stderr).lines().count(), 1);
+    assert!(!dir.path().join("never.npy").exists());
+}

@@ -167,7 +167,7 @@ fn command_line_runs_methods_with_calibration() {
     assert_eq!(json["method"]["act_order"], true);
     assert!(json["output_rel_err"].as_f64().unwrap() > 0.0);
     assert!(json["smoothing"]["error_with"].as_f64().unwrap() < json["smoothing"]["error_without"].as_f64().unwrap());
-    assert_eq!(json["cost"]["column_factor_bits"], 192 * 16);
+    assert_eq!(json["cost"]["column_factor_bits"], 192 * 32);
     let bad = Command::new(env!("CARGO_BIN_EXE_bitloupe"))
         .args(["quantize", w.to_str().unwrap(), "--calib", fixture("quant_weight.npy").to_str().unwrap()])
         .output()

@@ -6,7 +6,8 @@
 use crate::calib::{output_error, Calibration, OutputError};
 use crate::cost::BitCost;
 use crate::error::{Error, Result};
-use crate::formats::{Format, Grid};
+use crate::formats::{DoubleQuantized, Format, Grid};
+use crate::methods::keep::Kept;
 use crate::grid::GroupParams;
 use crate::methods::{self, group_width, MethodFigures};
 use crate::metrics::{ColumnFigures, ColumnSums, ErrorFigures, ErrorSums, GroupFigures};
@@ -41,6 +42,10 @@ pub struct Analysis {
     pub column_factors: Option<Vec<f32>>,
     /// The fitted levels of each group, for codebooks (empty otherwise).
     pub codebooks: Vec<Vec<f32>>,
+    /// The double-quantized NF4 block constants, when asked for.
+    pub double_quant: Option<DoubleQuantized>,
+    /// The values kept in 16-bit.
+    pub kept: Kept,
 }
 
 /// Run `recipe` on `tensor` without calibration data.
@@ -139,22 +144,22 @@ fn run(tensor: &Tensor, recipe: &Recipe, calib: Option<&Calibration>, progress: 
         && recipe.smooth.is_none()
         && recipe.keep_cols == 0
         && recipe.keep_frac == 0.0;
-    let (dequantized, params, method, measured, column_factors, codebooks) = if plain {
+    let q = if plain {
         // The hot path: each row is measured while it is still in cache.
-        let q = methods::rtn_rows(tensor.values.view(), recipe, |r, x, out| {
+        methods::rtn_rows(tensor.values.view(), recipe, |r, x, out| {
             measure.row(r, x, out);
             if (r + 1) % PROGRESS_EVERY == 0 {
                 progress(r + 1, rows);
             }
-        })?;
-        (q.dequantized, q.params, q.figures, None, None, q.codebooks)
+        })?
     } else {
         let q = methods::run(tensor.values.view(), recipe, calib, reference.as_deref(), progress)?;
         for (r, (x, out)) in tensor.values.rows().into_iter().zip(q.dequantized.rows()).enumerate() {
             measure.row(r, x.as_slice().expect("row-major"), out.as_slice().expect("row-major"));
         }
-        (q.dequantized, q.params, q.figures, q.output, q.column_factors, q.codebooks)
+        q
     };
+    let methods::Quantized { dequantized, params, figures: method, output: measured, column_factors, codebooks, double_quant, kept } = q;
     let output = match measured {
         Some(known) => Some(known),
         None => calib.map(|c| output_error(c, tensor.values.view(), dequantized.view(), reference.as_deref())),
@@ -172,6 +177,8 @@ fn run(tensor: &Tensor, recipe: &Recipe, calib: Option<&Calibration>, progress: 
         output,
         column_factors,
         codebooks,
+        double_quant,
+        kept,
     })
 }
 

@@ -15,8 +15,8 @@
 //! * HQQ's zero points are real numbers, stored in the scale's type instead of b bits;
 //! * kept values cost 16 bits each plus their index: one u32 per kept column, or one u32
 //!   row-major flat index per kept weight (the dense codes still cover every position);
-//! * per-column factors of smoothing or AWQ cost one scale-type value per input column unless
-//!   they are folded into the previous layer (we count them; folding makes them free).
+//! * per-column factors of smoothing or AWQ cost one f32 per input column unless they are
+//!   folded into the previous layer (we count them; folding makes them free).
 
 use crate::formats::{codebook, Format};
 use crate::methods::keep::kept_count;
@@ -30,6 +30,8 @@ use serde::Serialize;
 const KEPT_VALUE_BITS: u64 = 16;
 /// Bits of one stored index (u32).
 const INDEX_BITS: u64 = 32;
+/// Bits of one per-column factor (f32, so that the packed file reproduces Ŵ exactly).
+const COLUMN_FACTOR_BITS: u64 = 32;
 
 /// Where the bits go.
 #[derive(Debug, Clone, Copy, PartialEq, Serialize)]
@@ -93,7 +95,7 @@ impl BitCost {
             (k, k * INDEX_BITS)
         };
         let kept_bits = kept_values * KEPT_VALUE_BITS + index_bits;
-        let column_factor_bits = if recipe.scales_columns() { cols as u64 * scale_type_bits } else { 0 };
+        let column_factor_bits = if recipe.scales_columns() { cols as u64 * COLUMN_FACTOR_BITS } else { 0 };
         let total_bits = payload_bits + scale_bits + zero_point_bits + kept_bits + column_factor_bits;
         let source_bits = elements * u64::from(source_bits_per_element);
         let ratio = |bits: u64| if total_bits == 0 { 0.0 } else { bits as f64 / total_bits as f64 };
@@ -163,7 +165,7 @@ mod tests {
         let hqq = BitCost::of(&Recipe { method: Method::Hqq, ..Recipe::default() }, 64, 256, 16);
         assert_eq!(hqq.zero_point_bits, hqq.groups * 16);
         let awq = BitCost::of(&Recipe { method: Method::Awq, ..Recipe::default() }, 64, 256, 16);
-        assert_eq!(awq.column_factor_bits, 256 * 16);
+        assert_eq!(awq.column_factor_bits, 256 * 32);
     }
 
     /// Source: QLoRA (Dettmers et al., NeurIPS 2023), section 3: NF4 with double quantization

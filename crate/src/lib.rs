@@ -18,6 +18,7 @@ pub mod grid;
 pub mod linalg;
 pub mod methods;
 pub mod metrics;
+pub mod packed;
 pub mod recipe;
 pub mod report;
 pub mod sweep;

@@ -60,6 +60,18 @@ mod cli {
             /// Write the full JSON report here instead of printing a summary.
             #[arg(long, value_name = "REPORT.json")]
             report: Option<PathBuf>,
+            /// Write the quantized form (packed codes, scales, zero points, kept values) as
+            /// .safetensors in bitloupe's packed layout (README).
+            #[arg(long, value_name = "OUT.safetensors")]
+            packed: Option<PathBuf>,
+        },
+        /// Read a packed .safetensors file back and write the dequantized tensor as .npy.
+        Unpack {
+            /// A file written by `quantize --packed`.
+            file: PathBuf,
+            /// Where to write the dequantized tensor (float32 .npy, source shape).
+            #[arg(long, value_name = "DEQ.npy")]
+            out: PathBuf,
         },
         /// Run every combination of the listed choices and mark the Pareto front of bits per
         /// weight against error.
@@ -247,7 +259,7 @@ mod cli {
                 print!("{}", describe(&listing));
                 Ok(())
             }
-            Command::Quantize { file, tensor, read, recipe, calib, out, report } => {
+            Command::Quantize { file, tensor, read, recipe, calib, out, report, packed } => {
                 let recipe = recipe.recipe()?;
                 let w8a8 = calib.w8a8.as_deref().map(str::parse::<ActQuant>).transpose()?;
                 let tensor = load(&file, tensor.as_deref(), read.options())?;
@@ -276,11 +288,20 @@ mod cli {
                     let values = analysis.dequantized.as_slice().expect("row-major");
                     outputs.push((path, npy::write_f32(values, &tensor.shape)));
                 }
+                if let Some(path) = packed {
+                    let bytes = bitloupe::packed::pack(&analysis, &tensor.shape).map_err(Failure::at(&path))?;
+                    outputs.push((path, bytes));
+                }
                 match report {
                     Some(path) => outputs.push((path, report_doc.to_json().into_bytes())),
                     None => println!("{}", report_doc.summary()),
                 }
                 write_all_or_nothing(&outputs)
+            }
+            Command::Unpack { file, out } => {
+                let source = std::fs::File::open(&file).map_err(|e| Failure(format!("{}: cannot open: {e}", file.display())))?;
+                let (shape, values) = bitloupe::packed::unpack(&source).map_err(Failure::at(&file))?;
+                write_all_or_nothing(&[(out, npy::write_f32(values.as_slice().expect("row-major"), &shape))])
             }
             Command::Sweep { file, tensor, read, format, bits, group, method, scale_dtype, pareto_by, calib, calib_tensor, calib_kind, csv, json } => {
                 let spec = SweepSpec {

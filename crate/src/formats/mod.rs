@@ -281,21 +281,38 @@ impl Grid {
     }
 }
 
-/// QLoRA's double quantization of NF4 block constants (all positive): subtract their mean,
-/// then quantize blocks of 256 to 8-bit symmetric integers with one f32 absmax scale each.
-pub fn double_quantize(params: &mut [GroupParams]) {
-    if params.is_empty() {
-        return;
-    }
-    let mean = (params.iter().map(|p| f64::from(p.scale)).sum::<f64>() / params.len() as f64) as f32;
-    for block in params.chunks_mut(crate::cost::DOUBLE_QUANT_BLOCK as usize) {
-        let absmax = block.iter().fold(0f32, |m, p| m.max((p.scale - mean).abs()));
-        let step = if absmax == 0.0 { 1.0 } else { absmax / 127.0 };
-        for p in block {
-            let code = ((p.scale - mean) / step).round_ties_even().clamp(-127.0, 127.0);
-            // A constant that would come back as zero or below keeps the smallest positive step.
-            p.scale = (code * step + mean).max(f32::MIN_POSITIVE);
+/// NF4 block constants after QLoRA's double quantization: their mean, then blocks of 256 as
+/// 8-bit symmetric integers with one f32 absmax step each.
+#[derive(Debug, Clone, PartialEq)]
+pub struct DoubleQuantized {
+    /// Mean of the constants (they are all positive).
+    pub mean: f32,
+    /// One step per block of 256 constants.
+    pub steps: Vec<f32>,
+    /// One 8-bit code per constant.
+    pub codes: Vec<i8>,
+}
+
+impl DoubleQuantized {
+    /// Quantize the scales of `params`.
+    pub fn of(params: &[GroupParams]) -> Self {
+        let mean = if params.is_empty() { 0.0 } else { (params.iter().map(|p| f64::from(p.scale)).sum::<f64>() / params.len() as f64) as f32 };
+        let mut steps = Vec::new();
+        let mut codes = Vec::with_capacity(params.len());
+        for block in params.chunks(crate::cost::DOUBLE_QUANT_BLOCK as usize) {
+            let absmax = block.iter().fold(0f32, |m, p| m.max((p.scale - mean).abs()));
+            let step = if absmax == 0.0 { 1.0 } else { absmax / 127.0 };
+            steps.push(step);
+            codes.extend(block.iter().map(|p| ((p.scale - mean) / step).round_ties_even().clamp(-127.0, 127.0) as i8));
         }
+        DoubleQuantized { mean, steps, codes }
+    }
+
+    /// The constants they stand for (a constant that would come back as zero or below keeps
+    /// the smallest positive f32).
+    pub fn scales(&self) -> Vec<f32> {
+        let block = crate::cost::DOUBLE_QUANT_BLOCK as usize;
+        self.codes.iter().enumerate().map(|(i, &c)| (f32::from(c) * self.steps[i / block] + self.mean).max(f32::MIN_POSITIVE)).collect()
     }
 }
 

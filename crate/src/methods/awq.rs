@@ -88,7 +88,7 @@ pub fn run(
             |_, _, _| {},
         )?;
         kept.restore(w, &mut dequantized);
-        Ok((Quantized { dequantized, params, figures: MethodFigures::Rtn, output: None, column_factors: None, codebooks: Vec::new() }, s))
+        Ok((Quantized::plain(dequantized, params), s))
     };
     let mut curve = Vec::with_capacity(ALPHA_STEPS);
     let mut best: Option<(f64, f32, Quantized, Vec<f32>)> = None;
@@ -116,5 +116,6 @@ pub fn run(
     }
     q.figures = MethodFigures::Awq(AwqFigures { alpha, curve, clip: recipe.awq_clip, estimated: calib.sample.is_none() });
     q.column_factors = Some(s);
+    q.kept = kept.clone();
     Ok(q)
 }

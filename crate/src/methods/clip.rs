@@ -58,12 +58,8 @@ pub fn run(w: ArrayView2<f32>, recipe: &Recipe, calib: Option<&Calibration>, kep
         |_, _, _| {},
     )?;
     Ok(Quantized {
-        dequantized,
-        params,
-        output: None,
-        column_factors: None,
-        codebooks: Vec::new(),
         figures: MethodFigures::Clip { mean_ratio: (ratio_sum / groups.max(1) as f64) as f32, output_weighted: calib.is_some() },
+        ..Quantized::plain(dequantized, params)
     })
 }
 

@@ -73,7 +73,7 @@ pub fn run(
     let sample = calib.sample.as_ref().expect("checked by the caller");
     let h = hessian(sample.view(), column_factors);
     let (q, figures, params) = quantize(w, h, recipe, kept, progress)?;
-    Ok(Quantized { dequantized: q, params, figures: MethodFigures::Gptq(figures), output: None, column_factors: None, codebooks: Vec::new() })
+    Ok(Quantized { figures: MethodFigures::Gptq(figures), ..Quantized::plain(q, params) })
 }
 
 /// GPTQ with a given Hessian (before dampening); returns Ŵ, the figures and the group params.

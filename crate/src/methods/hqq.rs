@@ -119,17 +119,13 @@ pub fn run(w: ArrayView2<f32>, recipe: &Recipe, kept: &Kept) -> Result<Quantized
         |_, _, _| {},
     )?;
     Ok(Quantized {
-        dequantized,
-        params,
-        output: None,
-        column_factors: None,
-        codebooks: Vec::new(),
         figures: MethodFigures::Hqq(HqqFigures {
             p: P,
             mean_iterations: iterations as f32 / groups.max(1) as f32,
             lp_before: before,
             lp_after: after,
         }),
+        ..Quantized::plain(dequantized, params)
     })
 }
 

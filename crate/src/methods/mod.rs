@@ -14,7 +14,7 @@ pub mod smooth;
 
 use crate::calib::Calibration;
 use crate::error::{Error, Result};
-use crate::formats::{codebook, double_quantize, Format, Grid};
+use crate::formats::{codebook, DoubleQuantized, Format, Grid};
 use crate::grid::{GroupParams, ScaleOverflow};
 use crate::recipe::{Granularity, Method, Recipe};
 use ndarray::{Array2, ArrayView2};
@@ -56,6 +56,26 @@ pub struct Quantized {
     pub column_factors: Option<Vec<f32>>,
     /// The fitted levels of each group, for codebooks (empty otherwise).
     pub codebooks: Vec<Vec<f32>>,
+    /// The double-quantized NF4 block constants, when asked for.
+    pub double_quant: Option<DoubleQuantized>,
+    /// The values kept in 16-bit.
+    pub kept: keep::Kept,
+}
+
+impl Quantized {
+    /// A round-to-nearest result with nothing else attached.
+    pub fn plain(dequantized: Array2<f32>, params: Vec<GroupParams>) -> Self {
+        Quantized {
+            dequantized,
+            params,
+            figures: MethodFigures::Rtn,
+            output: None,
+            column_factors: None,
+            codebooks: Vec::new(),
+            double_quant: None,
+            kept: keep::Kept::default(),
+        }
+    }
 }
 
 /// Run the recipe's method (with its smoothing and kept values) on weight `w`.
@@ -105,6 +125,7 @@ pub fn run(
         kept.restore(w, &mut q.dequantized);
     }
     q.column_factors = column_factors;
+    q.kept = kept;
     Ok(q)
 }
 
@@ -131,16 +152,18 @@ fn round_to_nearest(
 ) -> Result<Quantized> {
     let grid = Grid::new(recipe);
     let quantize = |p: GroupParams, x: &[f32], out: &mut [f32], _| grid.quantize_into(p, x, out);
+    let mut double = None;
     let (dequantized, params) = if recipe.double_quant {
         // Fit every block first, quantize the block constants, then quantize with them.
-        let (_, mut fitted) = quantize_groups(w, recipe, kept, |x, _| grid.fit(x), |_, _, _, _| {}, |_, _, _| {})?;
-        double_quantize(&mut fitted);
-        let mut next = fitted.into_iter();
-        quantize_groups(w, recipe, kept, |_, _| Ok(next.next().expect("same groups")), quantize, each_row)?
+        let (_, fitted) = quantize_groups(w, recipe, kept, |x, _| grid.fit(x), |_, _, _, _| {}, |_, _, _| {})?;
+        let dq = DoubleQuantized::of(&fitted);
+        let mut scales = dq.scales().into_iter();
+        double = Some(dq);
+        quantize_groups(w, recipe, kept, |_, _| Ok(GroupParams { scale: scales.next().expect("same groups"), zero: 0.0 }), quantize, each_row)?
     } else {
         quantize_groups(w, recipe, kept, |x, _| grid.fit(x), quantize, each_row)?
     };
-    Ok(Quantized { dequantized, params, figures: MethodFigures::Rtn, output: None, column_factors: None, codebooks: Vec::new() })
+    Ok(Quantized { double_quant: double, ..Quantized::plain(dequantized, params) })
 }
 
 /// A codebook per tensor or per row, fitted by Lloyd–Max; kept values stay out of the fit.
@@ -175,7 +198,7 @@ pub fn codebooks(w: ArrayView2<f32>, recipe: &Recipe, kept: &keep::Kept) -> Resu
         }
     }
     let params = vec![GroupParams { scale: 1.0, zero: 0.0 }; books.len()];
-    Ok(Quantized { dequantized: out, params, figures: MethodFigures::Rtn, output: None, column_factors: None, codebooks: books })
+    Ok(Quantized { codebooks: books, ..Quantized::plain(out, params) })
 }
 
 /// Width of the groups of a row (the whole row for per-row and per-tensor recipes).

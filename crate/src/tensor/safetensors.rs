@@ -109,6 +109,64 @@ fn entry(name: &str, info: &Value, data_start: u64, data_len: u64) -> Result<Ten
     })
 }
 
+/// The `__metadata__` map of a `.safetensors` file (empty when it has none).
+pub fn read_metadata<S: ByteSource + ?Sized>(src: &S) -> Result<std::collections::BTreeMap<String, String>> {
+    let size_field = read_range(src, 0, 8, "header size")?;
+    let header_len = u64::from_le_bytes(size_field.try_into().expect("eight bytes"));
+    if header_len > MAX_HEADER_BYTES {
+        return Err(bad(format!("the header claims {header_len} bytes, more than the {MAX_HEADER_BYTES} allowed")));
+    }
+    let header = read_range(src, 8, header_len, "header")?;
+    let json: Value = serde_json::from_slice(&header).map_err(|e| bad(format!("the header is not valid JSON ({e})")))?;
+    let mut out = std::collections::BTreeMap::new();
+    if let Some(Value::Object(meta)) = json.get("__metadata__") {
+        for (k, v) in meta {
+            out.insert(k.clone(), v.as_str().ok_or_else(|| bad(format!("metadata '{k}' is not a string")))?.to_string());
+        }
+    }
+    Ok(out)
+}
+
+/// One tensor to write: name, dtype name (as the format spells it), shape, little-endian bytes.
+pub struct Outgoing<'a> {
+    /// Tensor name.
+    pub name: &'a str,
+    /// dtype name, for example "U8" or "F16".
+    pub dtype: &'static str,
+    /// Shape.
+    pub shape: Vec<usize>,
+    /// The data.
+    pub data: Vec<u8>,
+}
+
+/// Serialise tensors and string metadata as a `.safetensors` file (header padded with spaces to
+/// a multiple of 8 bytes, as the format's reference writer does).
+pub fn write(tensors: &[Outgoing], metadata: &std::collections::BTreeMap<String, String>) -> Vec<u8> {
+    let mut header = serde_json::Map::new();
+    if !metadata.is_empty() {
+        header.insert("__metadata__".into(), serde_json::to_value(metadata).expect("strings"));
+    }
+    let mut offset = 0usize;
+    for t in tensors {
+        header.insert(
+            t.name.to_string(),
+            serde_json::json!({ "dtype": t.dtype, "shape": t.shape, "data_offsets": [offset, offset + t.data.len()] }),
+        );
+        offset += t.data.len();
+    }
+    let mut text = Value::Object(header).to_string();
+    while text.len() % 8 != 0 {
+        text.push(' ');
+    }
+    let mut out = Vec::with_capacity(8 + text.len() + offset);
+    out.extend_from_slice(&(text.len() as u64).to_le_bytes());
+    out.extend_from_slice(text.as_bytes());
+    for t in tensors {
+        out.extend_from_slice(&t.data);
+    }
+    out
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
