@@ -45,8 +45,9 @@ bridge.onRestart = (reason) => {
 let busyTimer = null;
 let running = 0;
 
-/** Run one request with the progress bar and cancel button; returns null when cancelled. */
-async function task(label, type, payload, remember) {
+/** Run one request with the progress bar and cancel button; returns null when cancelled.
+ * `onItem` receives partial results that arrive with the progress. */
+async function task(label, type, payload, remember, onItem = null) {
   running += 1;
   $('status').textContent = `${label}…`;
   const progress = $('progress');
@@ -57,7 +58,11 @@ async function task(label, type, payload, remember) {
   try {
     const result = await bridge.request(type, payload, {
       remember,
-      onProgress: (done, total) => { progress.max = total; progress.value = done; },
+      onProgress: (done, total, item) => {
+        progress.max = total;
+        progress.value = done;
+        if (onItem) onItem(item, done, total, performance.now() - started);
+      },
     });
     result.elapsedMs = performance.now() - started;
     return result;
@@ -758,6 +763,116 @@ function drawBudget(cost) {
   total.textContent = `total: ${fmt.count(cost.total_bits)} bits = ${fmt.bytes(cost.bytes)} for ${fmt.plural(cost.elements, 'weight')} in ${fmt.plural(cost.groups, 'group')}`;
   legend.append(total);
 }
+
+// ------------------------------------------------------------------ sweep
+
+const sweep = { rows: [], by: 'sqnr', sortKey: 'bits_per_weight', ascending: true, shown: [] };
+const sweepChart = new SeriesChart($('sweep-chart'), { xLabel: 'bits per weight', yLabel: 'error', onSelect: (i) => loadSweepRow(sweep.shown[i]) });
+const SWEEP_FORMATS = ['int', 'nf4', 'e2m1', 'e4m3', 'mxfp4', 'mxint8', 'codebook'];
+const SWEEP_COLOURS = ['--series1', '--part2', '--part3', '--series2', '--accent', '--muted', '--part1'];
+
+const ticked = (name) => [...document.querySelectorAll(`input[name=${name}]:checked`)].map((el) => el.value);
+
+function sweepError(row) {
+  if (sweep.by === 'sqnr') return row.sqnr_db;
+  if (sweep.by === 'output') return row.output_rel_err;
+  return row.mse;
+}
+
+function drawSweep() {
+  const rows = [...sweep.rows].sort((a, b) => a.bits_per_weight - b.bits_per_weight);
+  sweep.shown = rows;
+  const x = Float64Array.from(rows, (r) => r.bits_per_weight);
+  const series = SWEEP_FORMATS.filter((f) => rows.some((r) => r.recipe.format === f)).map((f) => ({
+    label: f,
+    values: rows.map((r) => (r.recipe.format === f ? sweepError(r) : null)),
+    colour: SWEEP_COLOURS[SWEEP_FORMATS.indexOf(f)],
+    points: true,
+  }));
+  series.push({ label: 'front', values: rows.map((r) => (r.pareto ? sweepError(r) : null)), colour: '--text', spanGaps: true });
+  sweepChart.yLabel = { sqnr: 'SQNR (dB)', mse: 'weight MSE', output: 'output error' }[sweep.by];
+  sweepChart.logY = sweep.by !== 'sqnr';
+  sweepChart.shape = '';
+  if (rows.length) sweepChart.setData(x, series);
+  drawSweepTable();
+}
+
+function drawSweepTable() {
+  const front = sweep.rows.filter((r) => r.pareto);
+  const key = sweep.sortKey;
+  const value = (r) => (key === 'label' ? r.label : r[key] ?? Infinity);
+  front.sort((a, b) => (value(a) < value(b) ? -1 : value(a) > value(b) ? 1 : 0) * (sweep.ascending ? 1 : -1));
+  const body = $('sweep-rows');
+  body.replaceChildren();
+  for (const r of front) {
+    const tr = document.createElement('tr');
+    tr.tabIndex = 0;
+    for (const cell of [r.label, r.bits_per_weight.toFixed(4), r.sqnr_db === null ? 'exact' : r.sqnr_db.toFixed(2), fmt.sci(r.mse), r.output_rel_err === null ? '–' : fmt.percent(r.output_rel_err)]) {
+      const td = document.createElement('td');
+      td.textContent = cell;
+      tr.append(td);
+    }
+    tr.addEventListener('click', () => loadSweepRow(r));
+    tr.addEventListener('keydown', (e) => { if (e.key === 'Enter') loadSweepRow(r); });
+    body.append(tr);
+  }
+  $('sweep-table-wrap').hidden = front.length === 0;
+}
+
+function loadSweepRow(row) {
+  if (!row) return;
+  setRecipe({ ...readRecipe(), ...row.recipe });
+  showDependentControls();
+  analyze();
+}
+
+for (const button of document.querySelectorAll('th button[data-sort]')) {
+  button.addEventListener('click', () => {
+    sweep.ascending = sweep.sortKey === button.dataset.sort ? !sweep.ascending : true;
+    sweep.sortKey = button.dataset.sort;
+    drawSweepTable();
+  });
+}
+
+$('sweep-by').addEventListener('change', () => {
+  sweep.by = $('sweep-by').value;
+  if (sweep.rows.length) $('sweep-run').click();
+});
+
+$('sweep-run').addEventListener('click', async () => {
+  const spec = {
+    formats: ticked('sweep-format'),
+    bits: ticked('sweep-bits').map(Number),
+    groups: ticked('sweep-group').map((g) => (g === 'row' ? 'row' : { group: Number(g) })),
+    methods: ticked('sweep-method'),
+    scale_dtypes: ticked('sweep-scale'),
+  };
+  sweep.by = $('sweep-by').value;
+  if (sweep.by === 'output' && !state.calib) {
+    $('sweep-status').textContent = 'The output error needs calibration data; choose SQNR or MSE, or add calibration.';
+    return;
+  }
+  sweep.rows = [];
+  try {
+    const result = await task('Running the sweep', 'sweep', { spec, by: sweep.by }, null, (row, done, total, elapsed) => {
+      if (row) sweep.rows.push(row);
+      const left = (elapsed / done) * (total - done) / 1000;
+      $('sweep-status').textContent = `${done} of ${total} recipes done; about ${Math.ceil(left)} s left.`;
+      if (done % 4 === 0 || done === total) drawSweep();
+    });
+    if (!result) {
+      $('sweep-status').textContent = `Cancelled after ${sweep.rows.length} recipes.`;
+      return;
+    }
+    sweep.rows = result.rows;
+    drawSweep();
+    $('sweep-status').textContent = `${fmt.plural(result.rows.length, 'recipe')} run, ${result.rows.filter((r) => r.pareto).length} on the front, ${result.skipped} combinations skipped as meaningless.`;
+    restoreStatus();
+  } catch (err) {
+    $('sweep-status').textContent = `The sweep could not run: ${err.message}`;
+    restoreStatus();
+  }
+});
 
 // ------------------------------------------------------------------ exports
 

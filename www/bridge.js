@@ -37,7 +37,7 @@ export class CoreBridge {
     const entry = this.pending.get(message.id);
     if (!entry) return;
     if (message.progress) {
-      entry.onProgress?.(message.progress[0], message.progress[1]);
+      entry.onProgress?.(message.progress[0], message.progress[1], message.item);
       return;
     }
     this.pending.delete(message.id);

@@ -51,7 +51,7 @@ export class SeriesChart {
 
   setData(x, series) {
     const data = [x, ...series.map((s) => s.values)];
-    const shape = `${x.length}:${series.map((s) => s.label).join('|')}`;
+    const shape = `${x.length}:${this.yLabel}:${this.logY}:${series.map((s) => s.label).join('|')}`;
     if (this.chart && shape === this.shape) {
       this.chart.setData(data);
       return;
@@ -62,7 +62,7 @@ export class SeriesChart {
     const scales = { x: { time: false }, y: { distr }, right: { distr } };
     const uSeries = [{ label: this.xLabel }, ...series.map((s) => {
       const colour = themed(s.colour, '#3b6ea5');
-      const base = { label: s.label, stroke: colour, width: s.points ? 0 : 1.25, scale: s.scale || 'y' };
+      const base = { label: s.label, stroke: colour, width: s.points ? 0 : 1.25, scale: s.scale || 'y', spanGaps: Boolean(s.spanGaps) };
       return s.points ? { ...base, fill: colour, paths: () => null, points: { show: true, size: 7, stroke: colour, fill: colour } } : base;
     })];
     const axes = [axis({ label: this.xLabel }), axis({ label: this.yLabel, size: 64 })];

@@ -128,6 +128,23 @@ const handlers = {
     analysis = replace(analysis, next);
     return analysisResult(next);
   },
+  sweep({ spec, by }, progress) {
+    if (!tensor) throw new Error('open a tensor first');
+    const plan = core.sweepRecipes(spec);
+    const rows = [];
+    let failed = 0;
+    plan.recipes.forEach((recipe, i) => {
+      try {
+        const row = calib ? tensor.sweepRowWith(recipe, calib) : tensor.sweepRow(recipe);
+        rows.push(row);
+        progress(i + 1, plan.recipes.length, row);
+      } catch (err) {
+        failed += 1;
+        progress(i + 1, plan.recipes.length, null);
+      }
+    });
+    return { value: { rows: core.markParetoFront(rows, by), skipped: plan.skipped + failed } };
+  },
   histogram({ index, bins }) {
     if (!tensor || !analysis) throw new Error('no analysis yet');
     return { value: tensor.groupHistogram(analysis, index, bins) };
@@ -152,7 +169,7 @@ self.onmessage = (event) => {
 
 async function handle(event) {
   const { id, type, ...args } = event.data;
-  const progress = (done, total) => self.postMessage({ id, progress: [done, total] });
+  const progress = (done, total, item) => self.postMessage({ id, progress: [done, total], item });
   try {
     const handler = handlers[type];
     if (!handler) throw new Error(`unknown request ${type}`);

@@ -60,7 +60,7 @@ impl FromStr for ParetoBy {
 }
 
 /// One finished recipe of a sweep.
-#[derive(Debug, Clone, PartialEq, Serialize)]
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub struct SweepRow {
     /// The recipe.
     pub recipe: Recipe,
@@ -135,11 +135,16 @@ pub fn run(
         }
         progress(i + 1, recipes.len());
     }
+    mark_front(&mut rows, by);
+    Ok((rows, failed))
+}
+
+/// Set `pareto` on every row: bits per weight against the chosen error.
+pub fn mark_front(rows: &mut [SweepRow], by: ParetoBy) {
     let points: Vec<(f64, f64)> = rows.iter().map(|r| (r.bits_per_weight, error_of(r, by))).collect();
     for (row, on) in rows.iter_mut().zip(pareto_front(&points)) {
         row.pareto = on;
     }
-    Ok((rows, failed))
 }
 
 /// The error of a row on the chosen axis, smaller is better.

@@ -64,6 +64,30 @@ pub fn recipe_defaults() -> Result<JsValue, JsError> {
     })
 }
 
+/// The recipes of a sweep spec `{formats, bits, groups, methods, scale_dtypes}`:
+/// `{recipes, skipped}`.
+#[wasm_bindgen(js_name = sweepRecipes)]
+pub fn sweep_recipes(spec: JsValue) -> Result<JsValue, JsError> {
+    let text = js_sys::JSON::stringify(&spec).ok().and_then(|s| s.as_string()).unwrap_or_default();
+    let spec: crate::sweep::SweepSpec = serde_json::from_str(&text).map_err(|e| JsError::new(&format!("invalid sweep: {e}")))?;
+    let (recipes, skipped) = crate::sweep::recipes(&spec);
+    #[derive(Serialize)]
+    struct Plan {
+        recipes: Vec<Recipe>,
+        skipped: usize,
+    }
+    to_js(&Plan { recipes, skipped })
+}
+
+/// The sweep rows with `pareto` set against the error `by` ("sqnr", "mse" or "output").
+#[wasm_bindgen(js_name = markParetoFront)]
+pub fn mark_pareto_front(rows: JsValue, by: &str) -> Result<JsValue, JsError> {
+    let text = js_sys::JSON::stringify(&rows).ok().and_then(|s| s.as_string()).unwrap_or_default();
+    let mut rows: Vec<crate::sweep::SweepRow> = serde_json::from_str(&text).map_err(|e| JsError::new(&format!("invalid sweep rows: {e}")))?;
+    crate::sweep::mark_front(&mut rows, by.parse().map_err(js_error)?);
+    to_js(&rows)
+}
+
 /// The default recipe for a format (see `Recipe::for_format`).
 #[wasm_bindgen(js_name = recipeForFormat)]
 pub fn recipe_for_format(name: &str) -> Result<JsValue, JsError> {
@@ -328,6 +352,33 @@ impl TensorHandle {
         let summary = to_js(&Report::new(&self.tensor, &analysis).without_group_lists())?;
         let report_json = Report::new(&self.tensor, &analysis).to_json();
         Ok(AnalysisHandle { analysis, summary, report_json, shape: self.tensor.shape.clone() })
+    }
+
+    /// One sweep row: the recipe's headline figures, or an error for a recipe that does not
+    /// apply to this tensor.
+    #[wasm_bindgen(js_name = sweepRow)]
+    pub fn sweep_row(&self, recipe: JsValue) -> Result<JsValue, JsError> {
+        self.sweep_row_ref(recipe, None)
+    }
+
+    /// `sweepRow` with calibration.
+    #[wasm_bindgen(js_name = sweepRowWith)]
+    pub fn sweep_row_with(&self, recipe: JsValue, calibration: &CalibrationHandle) -> Result<JsValue, JsError> {
+        self.sweep_row_ref(recipe, Some(calibration))
+    }
+
+    fn sweep_row_ref(&self, recipe: JsValue, calibration: Option<&CalibrationHandle>) -> Result<JsValue, JsError> {
+        let analysis = self.analyze_ref(recipe, None, calibration)?;
+        let a = &analysis.analysis;
+        to_js(&crate::sweep::SweepRow {
+            recipe: a.recipe,
+            label: a.recipe.label(),
+            bits_per_weight: a.cost.bits_per_weight,
+            sqnr_db: a.totals.sqnr_db,
+            mse: a.totals.mse,
+            output_rel_err: a.output.as_ref().map(|o| o.rel_err),
+            pareto: false,
+        })
     }
 
     /// Histogram of the values of group `index` of `analysis`, with the grid points of that

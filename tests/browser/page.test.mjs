@@ -337,3 +337,27 @@ test('the format selector shows each format with its own controls and code point
   await shot(page, '16-codebook');
   await context.close();
 });
+
+test('a sweep fills the chart, marks the front, and a row loads its recipe', async () => {
+  const { page, context } = await withDemo();
+  for (const box of await page.locator('input[name=sweep-bits]').all()) await box.uncheck();
+  await page.check('input[name=sweep-bits][value="3"]');
+  await page.check('input[name=sweep-bits][value="4"]');
+  await page.uncheck('input[name=sweep-group][value="32"]');
+  await page.uncheck('input[name=sweep-group][value="128"]');
+  await page.click('#sweep-run');
+  await page.waitForFunction(() => /recipes? run, \d+ on the front, \d+ combinations skipped/.test(document.getElementById('sweep-status').textContent), null, { timeout: 120_000 });
+  const status = await page.textContent('#sweep-status');
+  const [, run, front] = status.match(/(\d+) recipes? run, (\d+) on the front/).map(Number);
+  // int 3,4 bits × 64,row = 4; NF4 × 64,row = 2; MXFP4 (blocks of 32 only) = 0.
+  assert.equal(run, 6);
+  assert.ok(front >= 2 && front <= run);
+  assert.equal(await page.locator('#sweep-rows tr').count(), front);
+  await shot(page, '17-sweep');
+  const label = await page.textContent('#sweep-rows tr:first-child td:first-child');
+  const before = await page.textContent('#status');
+  await page.click('#sweep-rows tr:first-child');
+  await waitForAnalysis(page, before);
+  assert.match(await page.textContent('#status'), new RegExp(`^${label.replace(/[.*+?^${}()|[\]\\]/g, '\\$&')} on demo`));
+  await context.close();
+});
