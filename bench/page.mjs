@@ -109,6 +109,16 @@ for (let i = 0; i < rounds; i++) {
 const recipeRuns = (await timings()).filter((t) => t.what === 'recipe-to-drawn').filter((_, i) => i % 2 === 1).map((t) => t.ms);
 const openRun = (await timings()).find((t) => t.what === 'open-to-drawn').ms;
 
+// A 48-recipe round-to-nearest sweep (4 bits × 4 groups × 3 scale types) on the same tensor.
+await page.uncheck('input[name=sweep-format][value=nf4]');
+await page.uncheck('input[name=sweep-format][value=mxfp4]');
+await page.check('input[name=sweep-scale][value=bf16]');
+await page.check('input[name=sweep-scale][value=f32]');
+const sweepStart = Date.now();
+await page.click('#sweep-run');
+await page.waitForFunction(() => /48 recipes run/.test(document.getElementById('sweep-status').textContent), null, { timeout: 300_000 });
+const sweepMs = Date.now() - sweepStart;
+
 // GPTQ and AWQ with calibration, in the page.
 const actsFile = path.join(dir, 'acts-512x4096.npy');
 activationsNpy(512, 4096, actsFile);
@@ -149,6 +159,7 @@ console.log('| --- | --- | --- |');
 console.log(`| 4096×4096 f32, recipe change to int4 asym g128 f16 → drawn | ${median(recipeRuns).toFixed(0)} ms | ${recipeRuns.map((x) => x.toFixed(0)).join(', ')} |`);
 console.log(`| 4096×4096 f32, open file → first drawn result | ${openRun.toFixed(0)} ms | 1 |`);
 console.log(`| 2 GiB .safetensors (128 tensors), choose file → list drawn | ${median(listRuns).toFixed(0)} ms | ${listRuns.map((x) => x.toFixed(0)).join(', ')} |`);
+console.log(`| 4096×4096 f32, 48-recipe round-to-nearest sweep (click → last row drawn) | ${(sweepMs / 1000).toFixed(2)} s | 1 |`);
 for (const method of ['gptq', 'awq']) {
   const t = methodTimes[method];
   const ratio = native[method] ? `; native command ${(native[method] / 1000).toFixed(2)} s (reading the files included); wasm/native ${(t.compute / native[method]).toFixed(2)}×` : '';

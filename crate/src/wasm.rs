@@ -128,6 +128,17 @@ impl ByteSource for BlobSource {
     }
 }
 
+/// A recipe from a plain object (any of its fields; the rest take defaults). Through JSON text
+/// rather than serde-wasm-bindgen, which skips unknown keys: a misspelt field must be an error,
+/// not a silent default.
+fn parse_recipe(recipe: JsValue) -> Result<Recipe, JsError> {
+    if recipe.is_undefined() || recipe.is_null() {
+        return Ok(Recipe::default());
+    }
+    let text = js_sys::JSON::stringify(&recipe).ok().and_then(|s| s.as_string()).unwrap_or_default();
+    serde_json::from_str(&text).map_err(|e| JsError::new(&format!("invalid recipe: {e}")))
+}
+
 /// A progress callback that forwards to a JS function, when one is given.
 fn reporter(progress: Option<js_sys::Function>) -> impl FnMut(usize, usize) {
     move |done: usize, total: usize| {
@@ -338,14 +349,7 @@ impl TensorHandle {
         progress: Option<js_sys::Function>,
         calibration: Option<&CalibrationHandle>,
     ) -> Result<AnalysisHandle, JsError> {
-        // Through JSON text rather than serde-wasm-bindgen, which skips unknown keys: a
-        // misspelt field must be an error, not a silent default.
-        let recipe: Recipe = if recipe.is_undefined() || recipe.is_null() {
-            Recipe::default()
-        } else {
-            let text = js_sys::JSON::stringify(&recipe).ok().and_then(|s| s.as_string()).unwrap_or_default();
-            serde_json::from_str(&text).map_err(|e| JsError::new(&format!("invalid recipe: {e}")))?
-        };
+        let recipe = parse_recipe(recipe)?;
         let mut report = reporter(progress);
         let calib = calibration.map(|c| &c.calib);
         let analysis = analyze_with(&self.tensor, &recipe, calib, &mut report).map_err(js_error)?;
@@ -368,8 +372,9 @@ impl TensorHandle {
     }
 
     fn sweep_row_ref(&self, recipe: JsValue, calibration: Option<&CalibrationHandle>) -> Result<JsValue, JsError> {
-        let analysis = self.analyze_ref(recipe, None, calibration)?;
-        let a = &analysis.analysis;
+        // The core analysis alone: a sweep row needs none of the page's summaries and reports.
+        let recipe = parse_recipe(recipe)?;
+        let a = &analyze_with(&self.tensor, &recipe, calibration.map(|c| &c.calib), &mut |_, _| {}).map_err(js_error)?;
         to_js(&crate::sweep::SweepRow {
             recipe: a.recipe,
             label: a.recipe.label(),
