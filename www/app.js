@@ -555,6 +555,7 @@ function showResults(result, { fresh }) {
   $('report').hidden = false;
   showMessage('recipe-message', '');
   state.statusText = `${s.label} on ${s.tensor.name || 'the tensor'} · analysed in ${Math.round(result.elapsedMs)} ms`;
+  writeLink();
   $('status').textContent = state.statusText;
 
   $('fig-bpw').textContent = s.bits_per_weight.toFixed(4);
@@ -896,9 +897,54 @@ $('download-report').addEventListener('click', async () => {
   const json = await bridge.request('reportJson');
   download(`${baseName()}.report.json`, json, 'application/json');
 });
-$('download-npy').addEventListener('click', async () => {
-  const bytes = await bridge.request('dequantizedNpy');
-  download(`${baseName()}.dequantized.npy`, bytes, 'application/octet-stream');
+const EXPORTS = {
+  'download-npy': ['dequantizedNpy', '.dequantized.npy', 'application/octet-stream'],
+  'download-markdown': ['markdown', '.summary.md', 'text/markdown'],
+  'download-groups': ['groupsCsv', '.groups.csv', 'text/csv'],
+  'download-packed': ['packed', '.packed.safetensors', 'application/octet-stream'],
+};
+for (const [id, [type, suffix, mime]] of Object.entries(EXPORTS)) {
+  $(id).addEventListener('click', async () => {
+    try {
+      download(`${baseName()}${suffix}`, await bridge.request(type), mime);
+      $('export-message').textContent = '';
+    } catch (err) {
+      $('export-message').textContent = `Nothing was saved: ${err.message}`;
+    }
+  });
+}
+
+// ------------------------------------------------------------------ links
+
+/** The recipe and the view in the URL fragment (never the data), so a colleague with the same
+ * file gets the same screen. */
+function writeLink() {
+  const params = new URLSearchParams({ recipe: JSON.stringify(readRecipe()), map: $('map-metric').value });
+  history.replaceState(null, '', `#${params}`);
+}
+
+function readLink() {
+  const params = new URLSearchParams(location.hash.slice(1));
+  const recipe = params.get('recipe');
+  if (!recipe) return;
+  try {
+    setRecipe({ ...state.defaults.recipe, ...JSON.parse(recipe) });
+    showDependentControls();
+  } catch {
+    showMessage('recipe-message', 'The link holds a recipe this page cannot read; the defaults are shown.');
+  }
+  const map = params.get('map');
+  if (map && METRICS[map]) $('map-metric').value = map;
+}
+
+$('copy-link').addEventListener('click', async () => {
+  writeLink();
+  try {
+    await navigator.clipboard.writeText(location.href);
+    $('export-message').textContent = 'Link copied. It holds the recipe and the view, not your data.';
+  } catch {
+    $('export-message').textContent = `Link: ${location.href}`;
+  }
 });
 
 // ------------------------------------------------------------------ start
@@ -908,6 +954,7 @@ async function start() {
     const { defaults } = await bridge.start();
     state.defaults = defaults;
     buildControls(defaults);
+    readLink();
     document.body.dataset.ready = 'true';
   } catch (err) {
     $('status').textContent = `The page could not start its compute worker: ${err.message}`;

@@ -153,6 +153,19 @@ const handlers = {
     if (!analysis) throw new Error('no analysis yet');
     return { value: analysis.reportJson() };
   },
+  markdown() {
+    if (!analysis) throw new Error('no analysis yet');
+    return { value: analysis.markdown() };
+  },
+  groupsCsv() {
+    if (!analysis) throw new Error('no analysis yet');
+    return { value: analysis.groupsCsv() };
+  },
+  packed() {
+    if (!analysis) throw new Error('no analysis yet');
+    const bytes = analysis.packed();
+    return { value: bytes, transfer: [bytes.buffer] };
+  },
   dequantizedNpy() {
     if (!analysis) throw new Error('no analysis yet');
     const bytes = analysis.dequantizedNpy();

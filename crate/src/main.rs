@@ -60,6 +60,12 @@ mod cli {
             /// Write the full JSON report here instead of printing a summary.
             #[arg(long, value_name = "REPORT.json")]
             report: Option<PathBuf>,
+            /// Write a Markdown summary (recipe, figures, bit budget, caution).
+            #[arg(long, value_name = "SUMMARY.md")]
+            markdown: Option<PathBuf>,
+            /// Write the per-group figures as CSV.
+            #[arg(long, value_name = "GROUPS.csv")]
+            groups_csv: Option<PathBuf>,
             /// Write the quantized form (packed codes, scales, zero points, kept values) as
             /// .safetensors in bitloupe's packed layout (README).
             #[arg(long, value_name = "OUT.safetensors")]
@@ -259,7 +265,7 @@ mod cli {
                 print!("{}", describe(&listing));
                 Ok(())
             }
-            Command::Quantize { file, tensor, read, recipe, calib, out, report, packed } => {
+            Command::Quantize { file, tensor, read, recipe, calib, out, report, markdown, groups_csv, packed } => {
                 let recipe = recipe.recipe()?;
                 let w8a8 = calib.w8a8.as_deref().map(str::parse::<ActQuant>).transpose()?;
                 let tensor = load(&file, tensor.as_deref(), read.options())?;
@@ -287,6 +293,12 @@ mod cli {
                 if let Some(path) = out {
                     let values = analysis.dequantized.as_slice().expect("row-major");
                     outputs.push((path, npy::write_f32(values, &tensor.shape)));
+                }
+                if let Some(path) = markdown {
+                    outputs.push((path, report_doc.to_markdown().into_bytes()));
+                }
+                if let Some(path) = groups_csv {
+                    outputs.push((path, report_doc.groups_csv().into_bytes()));
                 }
                 if let Some(path) = packed {
                     let bytes = bitloupe::packed::pack(&analysis, &tensor.shape).map_err(Failure::at(&path))?;

@@ -9,7 +9,7 @@ use crate::methods::smooth::SmoothingStudy;
 use crate::methods::MethodFigures;
 use crate::metrics::ErrorFigures;
 use crate::recipe::Recipe;
-use crate::tensor::Tensor;
+use crate::tensor::{view_2d, DType, Tensor};
 use serde::Serialize;
 
 /// Identifies the JSON report's layout; bumped on any incompatible change.
@@ -106,6 +106,11 @@ pub struct Report<'a> {
 impl<'a> Report<'a> {
     /// The report of `analysis` run on `tensor`.
     pub fn new(tensor: &'a Tensor, analysis: &'a Analysis) -> Self {
+        Self::of(&tensor.name, tensor.dtype, &tensor.shape, analysis)
+    }
+
+    /// The report of `analysis` run on a tensor known by its name, source type and shape.
+    pub fn of(name: &'a str, dtype: DType, shape: &'a [usize], analysis: &'a Analysis) -> Self {
         let columns = &analysis.columns;
         let outliers = columns.outliers();
         let outlier_column_count = outliers.len();
@@ -121,7 +126,7 @@ impl<'a> Report<'a> {
             .collect();
         Report {
             schema: SCHEMA,
-            tensor: TensorSummary { name: &tensor.name, dtype: tensor.dtype.name(), shape: &tensor.shape },
+            tensor: TensorSummary { name, dtype: dtype.name(), shape },
             recipe: analysis.recipe,
             label: analysis.recipe.label(),
             bits_per_weight: analysis.cost.bits_per_weight,
@@ -223,6 +228,55 @@ impl<'a> Report<'a> {
             crate::metrics::OUTLIER_SCORE,
             self.caution,
         )
+    }
+}
+
+impl Report<'_> {
+    /// A Markdown summary to paste into a design document: recipe, figures, bit budget and the
+    /// caution line.
+    pub fn to_markdown(&self) -> String {
+        let c = &self.cost;
+        let sqnr = self.totals.sqnr_db.map_or("exact (no error)".to_string(), |db| format!("{db:.2} dB"));
+        let name = if self.tensor.name.is_empty() { "(unnamed)" } else { self.tensor.name };
+        let mut out = format!("### Quantizing `{name}` ({} {:?}) with {}\n\n", self.tensor.dtype, self.tensor.shape, self.label);
+        out.push_str("| figure | value |\n| --- | --- |\n");
+        out.push_str(&format!("| bits per weight | {:.4} |\n", c.bits_per_weight));
+        out.push_str(&format!(
+            "| size | {} bytes ({:.2}× smaller than {}, {:.2}× smaller than 16-bit) |\n",
+            c.bytes, c.ratio_to_source, self.tensor.dtype, c.ratio_to_16bit
+        ));
+        out.push_str(&format!("| SQNR | {sqnr} |\n| relative error ‖W − Ŵ‖/‖W‖ | {:.4e} |\n", self.totals.rel_fro_err));
+        out.push_str(&format!("| MSE | {:.4e} |\n| max error | {:.4e} |\n", self.totals.mse, self.totals.max_abs_err));
+        if let Some(e) = self.output_rel_err {
+            let how = if self.output_estimated == Some(true) { "estimated from per-column statistics" } else { "on the calibration sample" };
+            out.push_str(&format!("| output error ‖XŴᵀ − XWᵀ‖/‖XWᵀ‖ | {e:.4e} ({how}) |\n"));
+        }
+        out.push_str(&format!("| outlier input columns | {} |\n\n", self.outlier_column_count));
+        out.push_str("Bit budget:\n\n| part | bits | bits per weight |\n| --- | --- | --- |\n");
+        let n = c.elements.max(1) as f64;
+        for (part, bits) in [("codes", c.payload_bits), ("scales or levels", c.scale_bits), ("zero points", c.zero_point_bits), ("kept values and indices", c.kept_bits), ("per-column factors", c.column_factor_bits)] {
+            if bits > 0 || part == "codes" {
+                out.push_str(&format!("| {part} | {bits} | {:.4} |\n", bits as f64 / n));
+            }
+        }
+        out.push_str(&format!("| total | {} | {:.4} |\n\n", c.total_bits, c.bits_per_weight));
+        out.push_str(&format!("Recipe (JSON): `{}`\n\n> {}\n", serde_json::to_string(&self.recipe).expect("plain data"), self.caution));
+        out
+    }
+
+    /// Per-group figures as CSV: row, first and last column, MSE, max error.
+    pub fn groups_csv(&self) -> String {
+        let g = &self.groups;
+        let mut out = String::from("row,group,first_column,last_column,mse,max_abs_err\n");
+        let cols = view_2d(self.tensor.shape).map_or(0, |(_, cols)| cols);
+        let width = g.group_size.unwrap_or(cols);
+        for (i, (mse, max)) in g.mse.iter().zip(g.max_abs_err).enumerate() {
+            let (r, k) = (i / g.per_row.max(1), i % g.per_row.max(1));
+            let first = k * width;
+            let last = ((k + 1) * width).min(cols).saturating_sub(1);
+            out.push_str(&format!("{r},{k},{first},{last},{mse},{max}\n"));
+        }
+        out
     }
 }
 

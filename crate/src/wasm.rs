@@ -354,8 +354,8 @@ impl TensorHandle {
         let calib = calibration.map(|c| &c.calib);
         let analysis = analyze_with(&self.tensor, &recipe, calib, &mut report).map_err(js_error)?;
         let summary = to_js(&Report::new(&self.tensor, &analysis).without_group_lists())?;
-        let report_json = Report::new(&self.tensor, &analysis).to_json();
-        Ok(AnalysisHandle { analysis, summary, report_json, shape: self.tensor.shape.clone() })
+        let t = &self.tensor;
+        Ok(AnalysisHandle { analysis, summary, name: t.name.clone(), dtype: t.dtype, shape: t.shape.clone() })
     }
 
     /// One sweep row: the recipe's headline figures, or an error for a recipe that does not
@@ -423,7 +423,8 @@ impl TensorHandle {
 pub struct AnalysisHandle {
     analysis: Analysis,
     summary: JsValue,
-    report_json: String,
+    name: String,
+    dtype: crate::tensor::DType,
     shape: Vec<usize>,
 }
 
@@ -434,10 +435,30 @@ impl AnalysisHandle {
         self.summary.clone()
     }
 
+    fn report(&self) -> Report<'_> {
+        Report::of(&self.name, self.dtype, &self.shape, &self.analysis)
+    }
+
     /// The complete JSON report.
     #[wasm_bindgen(js_name = reportJson)]
     pub fn report_json(&self) -> String {
-        self.report_json.clone()
+        self.report().to_json()
+    }
+
+    /// The Markdown summary.
+    pub fn markdown(&self) -> String {
+        self.report().to_markdown()
+    }
+
+    /// Per-group figures as CSV.
+    #[wasm_bindgen(js_name = groupsCsv)]
+    pub fn groups_csv(&self) -> String {
+        self.report().groups_csv()
+    }
+
+    /// The packed `.safetensors` file of this result.
+    pub fn packed(&self) -> Result<Vec<u8>, JsError> {
+        crate::packed::pack(&self.analysis, &self.shape).map_err(js_error)
     }
 
     /// MSE of every group, row-major over [groups.rows × groups.per_row].

@@ -361,3 +361,45 @@ test('a sweep fills the chart, marks the front, and a row loads its recipe', asy
   assert.match(await page.textContent('#status'), new RegExp(`^${label.replace(/[.*+?^${}()|[\]\\]/g, '\\$&')} on demo`));
   await context.close();
 });
+
+test('exports land and parse, and a link restores the recipe in a fresh page', async () => {
+  const { page, context } = await withDemo();
+  await page.selectOption('#format', 'nf4');
+  await page.waitForFunction(() => document.getElementById('status').textContent.includes('nf4 g64'));
+  const grab = async (id) => {
+    const [download] = await Promise.all([page.waitForEvent('download'), page.click(id)]);
+    const stream = await download.createReadStream();
+    const chunks = [];
+    for await (const c of stream) chunks.push(c);
+    return { name: download.suggestedFilename(), bytes: Buffer.concat(chunks) };
+  };
+  const report = await grab('#download-report');
+  const json = JSON.parse(report.bytes.toString());
+  assert.equal(json.schema, 'bitloupe.report/1');
+  assert.equal(json.recipe.format, 'nf4');
+  const md = await grab('#download-markdown');
+  assert.match(md.bytes.toString(), /^### Quantizing `demo\.block3\.ffn\.up\.weight`[\s\S]*\| bits per weight \| 4\.2500 \|[\s\S]*proxy/);
+  const csv = await grab('#download-groups');
+  assert.equal(csv.bytes.toString().trim().split('\n').length, 1 + 1024 * 64);
+  const npy = await grab('#download-npy');
+  assert.equal(npy.bytes.subarray(0, 6).toString('latin1'), '\x93NUMPY');
+  assert.equal(npy.bytes.length, 128 + 4 * 1024 * 4096);
+  const packed = await grab('#download-packed');
+  const headerLength = Number(packed.bytes.readBigUInt64LE(0));
+  const header = JSON.parse(packed.bytes.subarray(8, 8 + headerLength).toString());
+  assert.equal(header.__metadata__['bitloupe.packed'], '1');
+  assert.ok(header.codes && header.scales);
+  // The link carries the recipe, not the data.
+  const link = page.url();
+  assert.match(link, /#recipe=/);
+  assert.ok(link.length < 1000);
+  const fresh = await context.newPage();
+  await fresh.goto(link);
+  await fresh.waitForSelector('body[data-ready=true]');
+  assert.equal(await fresh.inputValue('#format'), 'nf4');
+  assert.equal(await fresh.inputValue('#granularity'), '64');
+  await fresh.click('#load-demo-big');
+  await waitForAnalysis(fresh);
+  assert.match(await fresh.textContent('#status'), /nf4 g64 f16 on demo/);
+  await context.close();
+});
