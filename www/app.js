@@ -875,6 +875,45 @@ $('sweep-run').addEventListener('click', async () => {
   }
 });
 
+// ------------------------------------------------------------------ model size
+
+let shardFiles = [];
+$('size-files').addEventListener('change', (e) => {
+  shardFiles = [...e.target.files];
+  e.target.value = '';
+  computeModelSize();
+});
+$('size-run').addEventListener('click', () => computeModelSize());
+
+async function computeModelSize() {
+  const gb = (bytes) => `${(bytes / 1e9).toFixed(2)} GB`;
+  try {
+    const size = await bridge.request('modelSize', {
+      files: shardFiles,
+      pattern: $('size-pattern').value || '*',
+      only2d: $('size-2d').checked,
+      params: Number($('size-params').value) * 1e9,
+      recipe: readRecipe(),
+    });
+    const budget = Number($('size-budget').value) * 1e9;
+    const scale = Math.max(budget, size.total_bytes) || 1;
+    const bar = $('size-bar');
+    bar.replaceChildren();
+    for (const [bytes, colour, title] of [[size.quantized_bytes, '--part1', 'quantized'], [size.other_bytes, '--part2', 'kept as stored']]) {
+      const seg = document.createElement('div');
+      seg.style.width = `${(100 * bytes) / scale}%`;
+      seg.style.background = `var(${colour})`;
+      seg.title = `${title}: ${gb(bytes)}`;
+      bar.append(seg);
+    }
+    const source = shardFiles.length ? `${fmt.plural(shardFiles.length, 'shard')}` : `${$('size-params').value} billion parameters (as 4096-wide bf16 rows)`;
+    const fits = size.total_bytes <= budget ? `fits in ${gb(budget)} with ${gb(budget - size.total_bytes)} to spare` : `exceeds ${gb(budget)} by ${gb(size.total_bytes - budget)}`;
+    $('size-figures').textContent = `${source}: ${fmt.plural(size.quantized_tensors, 'tensor')} quantized (${fmt.count(size.quantized_params)} weights, ${gb(size.quantized_source_bytes)} → ${gb(size.quantized_bytes)}), ${fmt.plural(size.other_tensors, 'tensor')} kept as stored (${gb(size.other_bytes)}); total ${gb(size.total_bytes)}, which ${fits}.`;
+  } catch (err) {
+    $('size-figures').textContent = `No size: ${err.message}`;
+  }
+}
+
 // ------------------------------------------------------------------ exports
 
 function download(name, data, type) {

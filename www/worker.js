@@ -89,6 +89,9 @@ const handlers = {
     core = wasm_bindgen;
     return { value: { defaults: core.recipeDefaults() } };
   },
+  modelSize({ files, pattern, only2d, params, recipe }) {
+    return { value: core.modelSize(files, pattern, only2d, params, recipe) };
+  },
   recipeForFormat({ format }) {
     return { value: core.recipeForFormat(format) };
   },

@@ -20,7 +20,7 @@
 
 use crate::formats::{codebook, Format};
 use crate::methods::keep::kept_count;
-use crate::recipe::{Method, Recipe};
+use crate::recipe::{Granularity, Method, Recipe};
 
 /// Block constants per f32 constant in NF4's double quantization (QLoRA).
 pub const DOUBLE_QUANT_BLOCK: u64 = 256;
@@ -69,8 +69,17 @@ pub struct BitCost {
 impl BitCost {
     /// The cost of `recipe` on a [rows, cols] tensor stored in `source_bits_per_element`.
     pub fn of(recipe: &Recipe, rows: usize, cols: usize, source_bits_per_element: u32) -> Self {
-        let elements = (rows as u64) * (cols as u64);
-        let groups = recipe.granularity.group_count(rows, cols) as u64;
+        Self::of_shape(recipe, rows as u64, cols as u64, source_bits_per_element)
+    }
+
+    /// [`BitCost::of`] in 64-bit arithmetic, for whole-model sizes beyond one tensor in memory.
+    pub fn of_shape(recipe: &Recipe, rows: u64, cols: u64, source_bits_per_element: u32) -> Self {
+        let elements = rows * cols;
+        let groups = match recipe.granularity {
+            Granularity::Tensor => u64::from(elements > 0),
+            Granularity::Row => rows,
+            Granularity::Group(g) => rows * cols.div_ceil(g as u64),
+        };
         let bits = u64::from(recipe.format.element_bits(recipe.bits));
         let payload_bits = elements * bits;
         let scale_type_bits = u64::from(recipe.scale_dtype.bits());
@@ -88,14 +97,14 @@ impl BitCost {
             _ => 0,
         };
         let (kept_values, index_bits) = if recipe.keep_cols > 0 {
-            let k = recipe.keep_cols.min(cols) as u64;
-            (k * rows as u64, k * INDEX_BITS)
+            let k = (recipe.keep_cols as u64).min(cols);
+            (k * rows, k * INDEX_BITS)
         } else {
-            let k = kept_count(recipe.keep_frac, rows * cols) as u64;
+            let k = kept_count(recipe.keep_frac, elements);
             (k, k * INDEX_BITS)
         };
         let kept_bits = kept_values * KEPT_VALUE_BITS + index_bits;
-        let column_factor_bits = if recipe.scales_columns() { cols as u64 * COLUMN_FACTOR_BITS } else { 0 };
+        let column_factor_bits = if recipe.scales_columns() { cols * COLUMN_FACTOR_BITS } else { 0 };
         let total_bits = payload_bits + scale_bits + zero_point_bits + kept_bits + column_factor_bits;
         let source_bits = elements * u64::from(source_bits_per_element);
         let ratio = |bits: u64| if total_bits == 0 { 0.0 } else { bits as f64 / total_bits as f64 };
@@ -121,7 +130,7 @@ impl BitCost {
 #[cfg(test)]
 mod tests {
     use super::*;
-    use crate::recipe::{Granularity, ScaleDType};
+    use crate::recipe::ScaleDType;
 
     #[test]
     fn int4_g128_f16_costs_4_15625_bits() {

@@ -88,6 +88,25 @@ pub fn mark_pareto_front(rows: JsValue, by: &str) -> Result<JsValue, JsError> {
     to_js(&rows)
 }
 
+/// The size of a model under `recipe`: from the headers of the `.safetensors` shards in `files`
+/// (tensors whose names match `pattern`, and 2-D when `only_2d`), or, with no files, from
+/// `params` weights costed as 4096-column rows of 16-bit sources.
+#[wasm_bindgen(js_name = modelSize)]
+pub fn model_size(files: js_sys::Array, pattern: &str, only_2d: bool, params: f64, recipe: JsValue) -> Result<JsValue, JsError> {
+    let recipe = parse_recipe(recipe)?;
+    recipe.validate().map_err(js_error)?;
+    let mut entries = Vec::new();
+    for file in files.iter() {
+        let blob: web_sys::Blob = file.dyn_into().map_err(|_| JsError::new("not a file"))?;
+        let src = BlobSource::new(blob)?;
+        entries.extend(tensor::list(&src, ReadOptions::default()).map_err(js_error)?.entries);
+    }
+    if entries.is_empty() {
+        return to_js(&crate::sizing::model_size_from_count(params.max(0.0) as u64, &recipe));
+    }
+    to_js(&crate::sizing::model_size(&entries, pattern, only_2d, &recipe))
+}
+
 /// The default recipe for a format (see `Recipe::for_format`).
 #[wasm_bindgen(js_name = recipeForFormat)]
 pub fn recipe_for_format(name: &str) -> Result<JsValue, JsError> {

@@ -403,3 +403,19 @@ test('exports land and parse, and a link restores the recipe in a fresh page', a
   assert.match(await fresh.textContent('#status'), /nf4 g64 f16 on demo/);
   await context.close();
 });
+
+test('the model size sums the chosen tensors of the dropped shards under the recipe', async () => {
+  const { page, context } = await withDemo();
+  await page.click('#size-run');
+  await page.waitForFunction(() => /billion parameters/.test(document.getElementById('size-figures').textContent));
+  // 7e9 weights at 4 + 20/128 bits per weight: 3.64 GB.
+  assert.match(await page.textContent('#size-figures'), /total 3\.64 GB, which fits in 8\.00 GB/);
+  await page.setInputFiles('#size-files', [{ name: 'multi.safetensors', mimeType: 'application/octet-stream', buffer: fixture('multi.safetensors') }]);
+  await page.waitForFunction(() => /1 shard:/.test(document.getElementById('size-figures').textContent));
+  // Six 2-D tensors of eight; the 1-D and 3-D ones stay as stored.
+  assert.match(await page.textContent('#size-figures'), /6 tensors quantized .* 2 tensors kept as stored/);
+  await page.fill('#size-pattern', 'block.0.*');
+  await page.click('#size-run');
+  await page.waitForFunction(() => /3 tensors quantized/.test(document.getElementById('size-figures').textContent));
+  await context.close();
+});

@@ -22,8 +22,8 @@ pub struct Kept {
 }
 
 /// How many single weights a fraction keeps out of `n`.
-pub fn kept_count(fraction: f32, n: usize) -> usize {
-    ((f64::from(fraction) * n as f64).round() as usize).min(n)
+pub fn kept_count(fraction: f32, n: u64) -> u64 {
+    ((f64::from(fraction) * n as f64).round() as u64).min(n)
 }
 
 impl Kept {
@@ -41,7 +41,7 @@ impl Kept {
             columns.sort_unstable();
             return Kept { columns, elements: Vec::new() };
         }
-        let count = kept_count(recipe.keep_frac, rows * cols);
+        let count = kept_count(recipe.keep_frac, (rows * cols) as u64) as usize;
         if count == 0 {
             return Kept::default();
         }
