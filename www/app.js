@@ -734,7 +734,7 @@ function showOutlierList(summary) {
   }
 }
 
-function drawBudget(cost) {
+function drawBudget(cost, bar = $('budget'), legend = $('budget-legend')) {
   const parts = [
     ['codes (payload)', cost.payload_bits, '--part1'],
     [state.result?.summary.recipe.format === 'codebook' ? 'codebook levels' : 'scales', cost.scale_bits, '--part2'],
@@ -742,10 +742,8 @@ function drawBudget(cost) {
     [`kept in 16-bit (${fmt.count(cost.kept_values)} values and their indices)`, cost.kept_bits, '--accent'],
     ['per-column factors (free when folded into the previous layer)', cost.column_factor_bits, '--series2'],
   ].filter(([, bits], i) => i < 3 || bits > 0);
-  const bar = $('budget');
-  const legend = $('budget-legend');
   bar.replaceChildren();
-  legend.replaceChildren();
+  legend?.replaceChildren();
   for (const [name, bits, colour] of parts) {
     const share = cost.total_bits ? bits / cost.total_bits : 0;
     const seg = document.createElement('div');
@@ -753,6 +751,7 @@ function drawBudget(cost) {
     seg.style.background = `var(${colour})`;
     seg.title = `${name}: ${fmt.count(bits)} bits`;
     bar.append(seg);
+    if (!legend) continue;
     const li = document.createElement('li');
     const swatch = document.createElement('span');
     swatch.className = 'swatch';
@@ -760,6 +759,7 @@ function drawBudget(cost) {
     li.append(swatch, `${name}: ${fmt.count(bits)} bits = ${(bits / cost.elements).toFixed(4)} bits per weight (${(100 * share).toFixed(1)} %)`);
     legend.append(li);
   }
+  if (!legend) return;
   const total = document.createElement('li');
   total.textContent = `total: ${fmt.count(cost.total_bits)} bits = ${fmt.bytes(cost.bytes)} for ${fmt.plural(cost.elements, 'weight')} in ${fmt.plural(cost.groups, 'group')}`;
   legend.append(total);
@@ -794,6 +794,7 @@ function drawSweep() {
   sweepChart.yLabel = { sqnr: 'SQNR (dB)', mse: 'weight MSE', output: 'output error' }[sweep.by];
   sweepChart.logY = sweep.by !== 'sqnr';
   sweepChart.shape = '';
+  $('sweep-chart').hidden = rows.length === 0;
   if (rows.length) sweepChart.setData(x, series);
   drawSweepTable();
 }
@@ -875,6 +876,76 @@ $('sweep-run').addEventListener('click', async () => {
   }
 });
 
+// ------------------------------------------------------------------ compare
+
+const pins = { a: null, b: null };
+const mapA = new ErrorMap($('map-a'));
+const mapB = new ErrorMap($('map-b'));
+const mapDiff = new ErrorMap($('map-diff'));
+
+function pin(which) {
+  if (!state.result) return;
+  const s = state.result.summary;
+  pins[which] = { summary: s, values: Float32Array.from(state.result.groupRelErr), tensor: `${s.tensor.name}:${s.tensor.shape.join('x')}` };
+  showCompare();
+}
+$('pin-a').addEventListener('click', () => pin('a'));
+$('pin-b').addEventListener('click', () => pin('b'));
+
+function showCompare() {
+  const { a, b } = pins;
+  $('compare-hint').textContent = !a ? 'Pin the current result as A, change the recipe, then pin the new result as B.'
+    : !b ? `A is ${a.summary.label}. Change the recipe, then pin the new result as B.`
+      : a.tensor !== b.tensor ? 'A and B were pinned on different tensors; pin both on one tensor to compare them.' : '';
+  const ready = Boolean(a && b && a.tensor === b.tensor);
+  $('compare-body').hidden = !ready;
+  if (!ready) return;
+  $('label-a').textContent = a.summary.label;
+  $('label-b').textContent = b.summary.label;
+  const figures = [
+    ['bits per weight', (s) => s.bits_per_weight, (v) => v.toFixed(4)],
+    ['size', (s) => s.bytes, (v) => fmt.bytes(Math.abs(v)), true],
+    ['SQNR (dB)', (s) => s.sqnr_db, (v) => v.toFixed(2)],
+    ['relative error', (s) => s.rel_fro_err, (v) => fmt.percent(v)],
+    ['max error', (s) => s.max_abs_err, (v) => fmt.sci(v)],
+    ['output error', (s) => s.output_rel_err, (v) => fmt.percent(v)],
+  ];
+  const body = $('compare-rows');
+  body.replaceChildren();
+  for (const [name, get, show, unsigned] of figures) {
+    const [va, vb] = [get(a.summary), get(b.summary)];
+    if (va === null || vb === null || va === undefined || vb === undefined) continue;
+    const diff = vb - va;
+    const tr = document.createElement('tr');
+    const sign = diff > 0 ? '+' : diff < 0 ? '−' : '';
+    for (const text of [name, show(va), show(vb), `${sign}${unsigned ? show(diff) : show(Math.abs(diff))}`]) {
+      const td = document.createElement('td');
+      td.textContent = text;
+      tr.append(td);
+    }
+    body.append(tr);
+  }
+  // Both maps on one colour scale; the difference only where the groups line up.
+  const grid = (p) => p.summary.groups;
+  let max = 0;
+  let floor = Infinity;
+  for (const v of [...a.values, ...b.values]) {
+    if (v > max) max = v;
+    if (v > 0 && v < floor) floor = v;
+  }
+  const range = { max, floor: Math.max(floor, max * 1e-6) };
+  const cols = state.info.cols;
+  const data = (p, values, extra = {}) => ({ rows: grid(p).rows, perRow: grid(p).per_row, cols, groupSize: grid(p).group_size, values, log: true, range, ...extra });
+  mapA.setData(data(a, a.values));
+  mapB.setData(data(b, b.values));
+  const aligned = grid(a).rows === grid(b).rows && grid(a).per_row === grid(b).per_row;
+  $('diff-figure').hidden = !aligned;
+  if (aligned) mapDiff.setData(data(b, b.values.map((v, i) => v - a.values[i]), { diverging: true, range: null, log: false }));
+  $('compare-maps-note').textContent = `Colour scale ${fmt.sci(range.floor)} … ${fmt.sci(range.max)} (log) for both.${aligned ? '' : ' The two recipes group the weights differently, so there is no cell-by-cell difference.'}`;
+  drawBudget(a.summary.cost, $('budget-a'), null);
+  drawBudget(b.summary.cost, $('budget-b'), null);
+}
+
 // ------------------------------------------------------------------ model size
 
 let shardFiles = [];
@@ -898,6 +969,7 @@ async function computeModelSize() {
     const budget = Number($('size-budget').value) * 1e9;
     const scale = Math.max(budget, size.total_bytes) || 1;
     const bar = $('size-bar');
+    bar.hidden = false;
     bar.replaceChildren();
     for (const [bytes, colour, title] of [[size.quantized_bytes, '--part1', 'quantized'], [size.other_bytes, '--part2', 'kept as stored']]) {
       const seg = document.createElement('div');

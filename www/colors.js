@@ -21,3 +21,15 @@ export function css(t) {
 
 /** CSS gradient of the whole scale, for legends. */
 export const GRADIENT = `linear-gradient(to right, ${STOPS.map((c) => `rgb(${c.join(' ')})`).join(', ')})`;
+
+/** A diverging scale for differences: blue (lower) through a light grey (no change) to red
+ * (higher), for the A/B difference map. */
+export const DIVERGING = Array.from({ length: 256 }, (_, i) => {
+  const t = i / 255;
+  const mid = [236, 236, 236];
+  const end = t < 0.5 ? [49, 104, 176] : [200, 60, 45];
+  const f = Math.abs(t - 0.5) * 2;
+  return mid.map((c, j) => Math.round(c + f * (end[j] - c)));
+});
+
+export const DIVERGING_GRADIENT = 'linear-gradient(to right, rgb(49 104 176), rgb(236 236 236), rgb(200 60 45))';

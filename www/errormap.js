@@ -2,12 +2,12 @@
 // Drawn on a canvas at the display's resolution: when several groups share a pixel the pixel
 // shows the largest error among them, so a hot group never disappears when zoomed out.
 
-import { TABLE } from './colors.js';
+import { DIVERGING, TABLE } from './colors.js';
 
 const MIN_SPAN = 4;
 
 export class ErrorMap {
-  constructor(canvas, { onHover, onSelect }) {
+  constructor(canvas, { onHover = () => {}, onSelect = () => {} } = {}) {
     this.canvas = canvas;
     this.ctx = canvas.getContext('2d');
     this.onHover = onHover;
@@ -29,11 +29,14 @@ export class ErrorMap {
     let max = 0;
     let minPositive = Infinity;
     for (const v of data.values) {
-      if (v > max) max = v;
-      if (v > 0 && v < minPositive) minPositive = v;
+      const a = Math.abs(v);
+      if (a > max) max = a;
+      if (a > 0 && a < minPositive) minPositive = a;
     }
-    this.max = max;
-    this.floor = data.log ? Math.max(minPositive, max * 1e-6) : 0;
+    // A shared range (for maps shown side by side) overrides the map's own.
+    this.max = data.range ? data.range.max : max;
+    this.floor = data.range ? data.range.floor : data.log ? Math.max(minPositive, max * 1e-6) : 0;
+    this.table = data.diverging ? DIVERGING : TABLE;
     if (!(keepView && sameGrid)) this.reset(false);
     this.draw();
   }
@@ -59,8 +62,9 @@ export class ErrorMap {
     this.draw();
   }
 
-  /** Colour position in [0, 1] of one value. */
+  /** Colour position in [0, 1] of one value (diverging maps put 0 at ½). */
   position(v) {
+    if (this.data.diverging) return this.max > 0 ? Math.min(1, Math.max(0, 0.5 + v / (2 * this.max))) : 0.5;
     if (!(v > 0) || this.max <= 0) return 0;
     if (!this.data.log) return v / this.max;
     const lo = Math.log10(this.floor);
@@ -103,18 +107,19 @@ export class ErrorMap {
     const colMax = new Float32Array(data.perRow);
     for (let py = 0; py < height; py++) {
       colMax.fill(0, xs.start[0], xs.end[width - 1]);
+      // The largest magnitude wins a shared pixel (keeping its sign for diverging maps).
       for (let r = ys.start[py]; r < ys.end[py]; r++) {
         const base = r * data.perRow;
         for (let c = xs.start[0]; c < xs.end[width - 1]; c++) {
           const v = data.values[base + c];
-          if (v > colMax[c]) colMax[c] = v;
+          if (Math.abs(v) > Math.abs(colMax[c])) colMax[c] = v;
         }
       }
       let offset = py * width * 4;
       for (let px = 0; px < width; px++) {
         let v = 0;
-        for (let c = xs.start[px]; c < xs.end[px]; c++) if (colMax[c] > v) v = colMax[c];
-        const [r, g, b] = TABLE[Math.round(this.position(v) * 255)];
+        for (let c = xs.start[px]; c < xs.end[px]; c++) if (Math.abs(colMax[c]) > Math.abs(v)) v = colMax[c];
+        const [r, g, b] = this.table[Math.round(this.position(v) * 255)];
         pixels[offset] = r;
         pixels[offset + 1] = g;
         pixels[offset + 2] = b;

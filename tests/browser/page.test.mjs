@@ -419,3 +419,21 @@ test('the model size sums the chosen tensors of the dropped shards under the rec
   await page.waitForFunction(() => /3 tensors quantized/.test(document.getElementById('size-figures').textContent));
   await context.close();
 });
+
+test('two pinned recipes compare side by side with their difference', async () => {
+  const { page, context } = await withDemo();
+  await page.click('#pin-a');
+  const before = await page.textContent('#status');
+  await page.selectOption('#bits', '3');
+  await waitForAnalysis(page, before);
+  await page.click('#pin-b');
+  await page.waitForSelector('#compare-body:not([hidden])');
+  assert.equal(await page.textContent('#label-a'), 'int4 asym g128 f16');
+  assert.equal(await page.textContent('#label-b'), 'int3 asym g128 f16');
+  // int3 asym g128 f16 costs 3 + (16 + 3)/128 = 3.1484 bits per weight.
+  const rows = await page.locator('#compare-rows tr').allTextContents();
+  assert.ok(rows.some((r) => r.startsWith('bits per weight4.15633.1484−1.0078')), rows.join(' | '));
+  assert.equal(await page.isVisible('#diff-figure'), true);
+  await shot(page, '18-compare');
+  await context.close();
+});
