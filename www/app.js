@@ -6,6 +6,7 @@ import { ErrorMap } from './errormap.js';
 import { SeriesChart, GroupHistogram } from './charts.js';
 import { GRADIENT } from './colors.js';
 import * as fmt from './format.js';
+import { pictureSvg, seriesSvg } from './svg.js';
 
 const $ = (id) => document.getElementById(id);
 const TEXT_FILE = /\.(txt|csv|tsv)$/i;
@@ -1024,6 +1025,55 @@ for (const [id, [type, suffix, mime]] of Object.entries(EXPORTS)) {
     }
   });
 }
+
+// ------------------------------------------------------------------ chart files
+
+/** PNG and SVG buttons under each chart. */
+function chartExports() {
+  const charts = [
+    ['error-map', 'error map', () => $('error-map'), () => pictureSvg($('map-caption').textContent, $('error-map'))],
+    ['column-profile', 'column profile', () => profile.chart?.ctx.canvas, () => seriesSvg('Input columns', profile.last.x, profile.last.series, { xLabel: 'input column', yLabel: 'max |w| and error RMS', logY: true })],
+    ['histogram', 'group histogram', () => histogram.chart?.ctx.canvas, () => {
+      const { histogram: h, grid } = histogram.last;
+      const width = (h.hi - h.lo) / h.counts.length || 1;
+      const x = Float64Array.from(h.counts, (_, i) => h.lo + (i + 0.5) * width);
+      return seriesSvg($('hist-caption').textContent, x, [{ label: 'count', values: Float64Array.from(h.counts), colour: '--series1', points: true }], { xLabel: 'weight value', yLabel: `count (${grid.length} grid levels)` });
+    }],
+    ['sweep-chart', 'sweep', () => sweepChart.chart?.ctx.canvas, () => seriesSvg('Sweep: bits per weight against error', sweepChart.last.x, sweepChart.last.series, { xLabel: 'bits per weight', yLabel: sweepChart.yLabel, logY: sweepChart.logY })],
+    ['method-curve', 'method curve', () => methodCurve.chart?.ctx.canvas, () => seriesSvg('Output error across α', methodCurve.last.x, methodCurve.last.series, { xLabel: 'α', yLabel: 'output error' })],
+    ['smooth-curve', 'W8A8 curve', () => smoothCurve.chart?.ctx.canvas, () => seriesSvg('W8A8 output error across α', smoothCurve.last.x, smoothCurve.last.series, { xLabel: 'α', yLabel: 'output error', logY: true })],
+    ['smooth-columns', 'smoothing ranges', () => smoothColumns.chart?.ctx.canvas, () => seriesSvg('Column ranges before and after smoothing', smoothColumns.last.x, smoothColumns.last.series, { xLabel: 'input column', yLabel: 'max |value|', logY: true })],
+    ['map-a', 'A error map', () => $('map-a'), () => pictureSvg(`A: ${$('label-a').textContent}`, $('map-a'))],
+    ['map-b', 'B error map', () => $('map-b'), () => pictureSvg(`B: ${$('label-b').textContent}`, $('map-b'))],
+    ['map-diff', 'difference map', () => $('map-diff'), () => pictureSvg('B − A', $('map-diff'))],
+  ];
+  for (const [id, name, canvas, svg] of charts) {
+    const row = document.createElement('div');
+    row.className = 'chart-files';
+    for (const kind of ['PNG', 'SVG']) {
+      const button = document.createElement('button');
+      button.type = 'button';
+      button.textContent = kind;
+      button.dataset.chart = id;
+      button.setAttribute('aria-label', `download the ${name} as ${kind}`);
+      button.addEventListener('click', () => {
+        const file = `${baseName()}.${id}.${kind.toLowerCase()}`;
+        try {
+          if (kind === 'SVG') {
+            download(file, svg(), 'image/svg+xml');
+          } else {
+            canvas()?.toBlob((blob) => blob && download(file, blob, 'image/png'));
+          }
+        } catch (err) {
+          $('export-message').textContent = `No ${kind} yet: ${err.message}`;
+        }
+      });
+      row.append(button);
+    }
+    $(id).after(row);
+  }
+}
+chartExports();
 
 // ------------------------------------------------------------------ links
 

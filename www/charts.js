@@ -50,6 +50,7 @@ export class SeriesChart {
   }
 
   setData(x, series) {
+    this.last = { x, series };
     const data = [x, ...series.map((s) => s.values)];
     const shape = `${x.length}:${this.yLabel}:${this.logY}:${series.map((s) => s.label).join('|')}`;
     if (this.chart && shape === this.shape) {
@@ -101,6 +102,7 @@ export class GroupHistogram {
   }
 
   setData({ histogram, grid }) {
+    this.last = { histogram, grid };
     const { lo, hi, counts } = histogram;
     const bins = counts.length;
     const width = (hi - lo) / bins || 1;

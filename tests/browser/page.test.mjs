@@ -354,6 +354,11 @@ test('a sweep fills the chart, marks the front, and a row loads its recipe', asy
   assert.ok(front >= 2 && front <= run);
   assert.equal(await page.locator('#sweep-rows tr').count(), front);
   await shot(page, '17-sweep');
+  // A click on the scatter loads the recipe under the cursor.
+  const plot = await page.locator('#sweep-chart .u-over').boundingBox();
+  const beforeClick = await page.textContent('#status');
+  await page.mouse.click(plot.x + plot.width * 0.95, plot.y + plot.height / 2);
+  await waitForAnalysis(page, beforeClick);
   const label = await page.textContent('#sweep-rows tr:first-child td:first-child');
   const before = await page.textContent('#status');
   await page.click('#sweep-rows tr:first-child');
@@ -435,5 +440,23 @@ test('two pinned recipes compare side by side with their difference', async () =
   assert.ok(rows.some((r) => r.startsWith('bits per weight4.15633.1484−1.0078')), rows.join(' | '));
   assert.equal(await page.isVisible('#diff-figure'), true);
   await shot(page, '18-compare');
+  await context.close();
+});
+
+test('every chart downloads as PNG and as SVG', async () => {
+  const { page, context } = await withDemo();
+  await page.waitForFunction(() => /grid levels/.test(document.getElementById('hist-caption').textContent));
+  const grab = async (selector) => {
+    const [download] = await Promise.all([page.waitForEvent('download'), page.click(selector)]);
+    const chunks = [];
+    for await (const c of await download.createReadStream()) chunks.push(c);
+    return Buffer.concat(chunks);
+  };
+  for (const chart of ['error-map', 'column-profile', 'histogram']) {
+    const png = await grab(`button[data-chart="${chart}"]:text("PNG")`);
+    assert.equal(png.subarray(1, 4).toString(), 'PNG', `${chart} PNG`);
+    const svg = (await grab(`button[data-chart="${chart}"]:text("SVG")`)).toString();
+    assert.match(svg, /^<\?xml[\s\S]*<svg xmlns="http:\/\/www\.w3\.org\/2000\/svg"[\s\S]*<\/svg>\s*$/, `${chart} SVG`);
+  }
   await context.close();
 });
