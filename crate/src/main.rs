@@ -54,6 +54,10 @@ mod cli {
             recipe: RecipeArgs,
             #[command(flatten)]
             calib: CalibArgs,
+            /// Also simulate W8A8 (int8 weights per row, int8 activations per tensor or per token)
+            /// with and without smoothing; needs an activation sample.
+            #[arg(long, value_name = "tensor|token", requires = "calib")]
+            w8a8: Option<String>,
             /// Write the dequantized tensor as float32 .npy in the source shape.
             #[arg(long, value_name = "DEQ.npy")]
             out: Option<PathBuf>,
@@ -108,15 +112,8 @@ mod cli {
             /// calibration, else mse).
             #[arg(long, value_name = "sqnr|mse|output")]
             pareto_by: Option<String>,
-            /// Calibration data (an activation sample or per-column statistics).
-            #[arg(long, value_name = "FILE")]
-            calib: Option<PathBuf>,
-            /// Which tensor of the calibration file.
-            #[arg(long, value_name = "NAME", requires = "calib")]
-            calib_tensor: Option<String>,
-            /// What the calibration tensor holds.
-            #[arg(long, value_name = "sample|maxabs|meanabs", default_value = "sample", requires = "calib")]
-            calib_kind: String,
+            #[command(flatten)]
+            calib: CalibArgs,
             /// Write one CSV row per recipe.
             #[arg(long, value_name = "OUT.csv")]
             csv: Option<PathBuf>,
@@ -226,10 +223,16 @@ mod cli {
         /// What the calibration tensor holds.
         #[arg(long, value_name = "sample|maxabs|meanabs", default_value = "sample", requires = "calib")]
         calib_kind: String,
-        /// Also simulate W8A8 (int8 weights per row, int8 activations per tensor or per token)
-        /// with and without smoothing; needs an activation sample.
-        #[arg(long, value_name = "tensor|token", requires = "calib")]
-        w8a8: Option<String>,
+    }
+
+    impl CalibArgs {
+        /// The calibration for a weight with `cols` input columns, when a file was given.
+        fn load(&self, cols: usize, options: ReadOptions) -> Result<Option<Calibration>, Failure> {
+            let Some(path) = &self.calib else { return Ok(None) };
+            let kind = self.calib_kind.parse::<CalibKind>()?;
+            let data = load(path, self.calib_tensor.as_deref(), options)?;
+            Ok(Some(Calibration::from_tensor(&data, kind, cols).map_err(Failure::at(path))?))
+        }
     }
 
     /// A failure with the context the user needs, printed as one line.
@@ -265,18 +268,11 @@ mod cli {
                 print!("{}", describe(&listing));
                 Ok(())
             }
-            Command::Quantize { file, tensor, read, recipe, calib, out, report, markdown, groups_csv, packed } => {
+            Command::Quantize { file, tensor, read, recipe, calib, w8a8, out, report, markdown, groups_csv, packed } => {
                 let recipe = recipe.recipe()?;
-                let w8a8 = calib.w8a8.as_deref().map(str::parse::<ActQuant>).transpose()?;
+                let w8a8 = w8a8.as_deref().map(str::parse::<ActQuant>).transpose()?;
                 let tensor = load(&file, tensor.as_deref(), read.options())?;
-                let calibration = match &calib.calib {
-                    Some(path) => {
-                        let kind = calib.calib_kind.parse::<CalibKind>()?;
-                        let data = load(path, calib.calib_tensor.as_deref(), read.options())?;
-                        Some(Calibration::from_tensor(&data, kind, tensor.cols()).map_err(Failure::at(path))?)
-                    }
-                    None => None,
-                };
+                let calibration = calib.load(tensor.cols(), read.options())?;
                 let analysis = analyze_with(&tensor, &recipe, calibration.as_ref(), &mut |_, _| {}).map_err(Failure::at(&file))?;
                 let study = match (w8a8, &calibration) {
                     (Some(act), Some(c)) => {
@@ -315,7 +311,7 @@ mod cli {
                 let (shape, values) = bitloupe::packed::unpack(&source).map_err(Failure::at(&file))?;
                 write_all_or_nothing(&[(out, npy::write_f32(values.as_slice().expect("row-major"), &shape))])
             }
-            Command::Sweep { file, tensor, read, format, bits, group, method, scale_dtype, pareto_by, calib, calib_tensor, calib_kind, csv, json } => {
+            Command::Sweep { file, tensor, read, format, bits, group, method, scale_dtype, pareto_by, calib, csv, json } => {
                 let spec = SweepSpec {
                     formats: list(&format)?,
                     bits: bits.split(',').map(|b| b.trim().parse::<u8>().map_err(|_| Failure(format!("--bits: '{b}' is not a number")))).collect::<Result<_, _>>()?,
@@ -324,13 +320,7 @@ mod cli {
                     scale_dtypes: list(&scale_dtype)?,
                 };
                 let tensor = load(&file, tensor.as_deref(), read.options())?;
-                let calibration = match &calib {
-                    Some(path) => {
-                        let data = load(path, calib_tensor.as_deref(), read.options())?;
-                        Some(Calibration::from_tensor(&data, calib_kind.parse()?, tensor.cols()).map_err(Failure::at(path))?)
-                    }
-                    None => None,
-                };
+                let calibration = calib.load(tensor.cols(), read.options())?;
                 let by = match pareto_by {
                     Some(by) => by.parse::<ParetoBy>()?,
                     None if calibration.is_some() => ParetoBy::Output,
