@@ -849,6 +849,8 @@ $('sweep-run').addEventListener('click', async () => {
     groups: ticked('sweep-group').map((g) => (g === 'row' ? 'row' : { group: Number(g) })),
     methods: ticked('sweep-method'),
     scale_dtypes: ticked('sweep-scale'),
+    smooth: ticked('sweep-smooth').map((a) => (a === 'none' ? null : Number(a))),
+    keep_fracs: ticked('sweep-keep').map(Number),
   };
   sweep.by = $('sweep-by').value;
   if (sweep.by === 'output' && !state.calib) {

@@ -108,6 +108,12 @@ mod cli {
             /// Scale types, comma-separated.
             #[arg(long, value_name = "LIST", default_value = "f16")]
             scale_dtype: String,
+            /// Smoothing strengths, comma-separated ('none' for no smoothing; needs --calib).
+            #[arg(long, value_name = "LIST", default_value = "none")]
+            smooth: String,
+            /// Fractions of weights kept in 16-bit, comma-separated.
+            #[arg(long, value_name = "LIST", default_value = "0")]
+            keep_frac: String,
             /// The error the front is drawn against: sqnr, mse or output (the default with
             /// calibration, else mse).
             #[arg(long, value_name = "sqnr|mse|output")]
@@ -311,13 +317,24 @@ mod cli {
                 let (shape, values) = bitloupe::packed::unpack(&source).map_err(Failure::at(&file))?;
                 write_all_or_nothing(&[(out, npy::write_f32(values.as_slice().expect("row-major"), &shape))])
             }
-            Command::Sweep { file, tensor, read, format, bits, group, method, scale_dtype, pareto_by, calib, csv, json } => {
+            Command::Sweep { file, tensor, read, format, bits, group, method, scale_dtype, smooth, keep_frac, pareto_by, calib, csv, json } => {
                 let spec = SweepSpec {
                     formats: list(&format)?,
                     bits: bits.split(',').map(|b| b.trim().parse::<u8>().map_err(|_| Failure(format!("--bits: '{b}' is not a number")))).collect::<Result<_, _>>()?,
                     groups: list(&group)?,
                     methods: list(&method)?,
                     scale_dtypes: list(&scale_dtype)?,
+                    smooth: smooth
+                        .split(',')
+                        .map(|a| match a.trim() {
+                            "none" => Ok(None),
+                            a => a.parse::<f32>().map(Some).map_err(|_| Failure(format!("--smooth: '{a}' is not a strength or 'none'"))),
+                        })
+                        .collect::<Result<_, _>>()?,
+                    keep_fracs: keep_frac
+                        .split(',')
+                        .map(|f| f.trim().parse::<f32>().map_err(|_| Failure(format!("--keep-frac: '{f}' is not a fraction"))))
+                        .collect::<Result<_, _>>()?,
                 };
                 let tensor = load(&file, tensor.as_deref(), read.options())?;
                 let calibration = calib.load(tensor.cols(), read.options())?;

@@ -3,8 +3,8 @@
 //!
 //! Each combination starts from its format's usual recipe (`Recipe::for_format`), then takes
 //! the swept bits (integer grids and codebooks only: the other formats fix their width), group
-//! (MX formats accept only their block of 32), method and scale type (MX formats always use
-//! E8M0, codebooks store f16 levels). Combinations that make no sense fail the recipe check and
+//! (MX formats accept only their block of 32), method, scale type (MX formats always use E8M0,
+//! codebooks store f16 levels), smoothing strength and kept fraction. Combinations that make no sense fail the recipe check and
 //! are skipped and counted; duplicates are run once. Every row comes from the same `analyze_with`
 //! as a single analysis, so its figures are identical.
 //!
@@ -33,6 +33,20 @@ pub struct SweepSpec {
     pub methods: Vec<Method>,
     /// Scale types.
     pub scale_dtypes: Vec<ScaleDType>,
+    /// Smoothing strengths (`None`: no smoothing).
+    #[serde(default = "no_smoothing")]
+    pub smooth: Vec<Option<f32>>,
+    /// Fractions of weights kept in 16-bit.
+    #[serde(default = "nothing_kept")]
+    pub keep_fracs: Vec<f32>,
+}
+
+fn no_smoothing() -> Vec<Option<f32>> {
+    vec![None]
+}
+
+fn nothing_kept() -> Vec<f32> {
+    vec![0.0]
 }
 
 /// The error the Pareto front is drawn against.
@@ -90,11 +104,15 @@ pub fn recipes(spec: &SweepSpec) -> (Vec<Recipe>, usize) {
             for &granularity in &spec.groups {
                 for &method in &spec.methods {
                     for &scale_dtype in &scales {
-                        let recipe = Recipe { bits: b, granularity, method, scale_dtype, ..base };
-                        if recipe.validate().is_err() {
-                            skipped += 1;
-                        } else if !out.contains(&recipe) {
-                            out.push(recipe);
+                        for &smooth in &spec.smooth {
+                            for &keep_frac in &spec.keep_fracs {
+                                let recipe = Recipe { bits: b, granularity, method, scale_dtype, smooth, keep_frac, ..base };
+                                if recipe.validate().is_err() {
+                                    skipped += 1;
+                                } else if !out.contains(&recipe) {
+                                    out.push(recipe);
+                                }
+                            }
                         }
                     }
                 }
@@ -237,6 +255,8 @@ mod tests {
             groups: vec![Granularity::Group(32), Granularity::Row],
             methods: vec![Method::Rtn, Method::Hqq],
             scale_dtypes: vec![ScaleDType::F16],
+            smooth: vec![None],
+            keep_fracs: vec![0.0],
         };
         let (recipes, skipped) = recipes(&spec);
         // int: 2 bits × 2 groups × 2 methods = 8; mxfp4: group 32 only, rtn only = 1;
