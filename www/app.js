@@ -794,7 +794,6 @@ function drawSweep() {
   series.push({ label: 'front', values: rows.map((r) => (r.pareto ? sweepError(r) : null)), colour: '--text', spanGaps: true });
   sweepChart.yLabel = { sqnr: 'SQNR (dB)', mse: 'weight MSE', output: 'output error' }[sweep.by];
   sweepChart.logY = sweep.by !== 'sqnr';
-  sweepChart.shape = '';
   $('sweep-chart').hidden = rows.length === 0;
   if (rows.length) sweepChart.setData(x, series);
   drawSweepTable();

@@ -64,6 +64,27 @@ pub fn analyze_with(
     calib: Option<&Calibration>,
     progress: &mut dyn FnMut(usize, usize),
 ) -> Result<Analysis> {
+    analyze_measured(tensor, recipe, calib, Detail::Full, progress)
+}
+
+/// How much an analysis measures.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Detail {
+    /// Everything, per group and per input column.
+    Full,
+    /// Whole-tensor, per-group and output figures only (the per-column figures are left empty),
+    /// for sweeps: the figures it does give are computed exactly as with `Full`.
+    NoColumns,
+}
+
+/// [`analyze_with`] at a chosen level of detail.
+pub fn analyze_measured(
+    tensor: &Tensor,
+    recipe: &Recipe,
+    calib: Option<&Calibration>,
+    detail: Detail,
+    progress: &mut dyn FnMut(usize, usize),
+) -> Result<Analysis> {
     recipe.validate()?;
     let (rows, cols) = (tensor.rows(), tensor.cols());
     if rows * cols == 0 {
@@ -82,7 +103,7 @@ pub fn analyze_with(
     // Finiteness is checked after the run rather than by a separate pass over the tensor: a NaN
     // makes the error sums NaN, an infinity makes its scale overflow, and either way the
     // precise count and location are then looked up.
-    let run = run(tensor, recipe, calib, progress);
+    let run = run(tensor, recipe, calib, detail, progress);
     let non_finite = match &run {
         Ok(analysis) => analysis.totals.mse.is_nan(),
         Err(_) => true,
@@ -99,19 +120,19 @@ pub fn analyze_with(
 /// Per-group and per-column sums, fed one row (and its reconstruction) at a time.
 struct Measure {
     sums: Vec<ErrorSums>,
-    columns: ColumnSums,
+    columns: Option<ColumnSums>,
     width: usize,
     per_row: usize,
     whole_tensor: bool,
 }
 
 impl Measure {
-    fn new(recipe: &Recipe, rows: usize, cols: usize) -> Self {
+    fn new(recipe: &Recipe, rows: usize, cols: usize, detail: Detail) -> Self {
         let whole_tensor = recipe.granularity == Granularity::Tensor;
         let (grid_rows, per_row) = if whole_tensor { (1, 1) } else { (rows, recipe.granularity.groups_per_row(cols)) };
         Measure {
             sums: vec![ErrorSums::default(); grid_rows * per_row],
-            columns: ColumnSums::new(cols),
+            columns: (detail == Detail::Full).then(|| ColumnSums::new(cols)),
             width: group_width(recipe.granularity, cols),
             per_row,
             whole_tensor,
@@ -123,7 +144,9 @@ impl Measure {
             let index = if self.whole_tensor { 0 } else { r * self.per_row + k };
             self.sums[index].add(xg, og);
         }
-        self.columns.add_row(x, out);
+        if let Some(columns) = &mut self.columns {
+            columns.add_row(x, out);
+        }
     }
 
     fn finish(self, recipe: &Recipe) -> (ErrorFigures, GroupFigures, ColumnFigures) {
@@ -131,13 +154,20 @@ impl Measure {
         self.sums.iter().for_each(|s| total.merge(s));
         let group_size = matches!(recipe.granularity, Granularity::Group(_)).then_some(self.width);
         let grid_rows = self.sums.len() / self.per_row;
-        (total.figures(), GroupFigures::from_sums(grid_rows, self.per_row, group_size, &self.sums), self.columns.figures())
+        let columns = self.columns.unwrap_or_else(|| ColumnSums::new(0)).figures();
+        (total.figures(), GroupFigures::from_sums(grid_rows, self.per_row, group_size, &self.sums), columns)
     }
 }
 
-fn run(tensor: &Tensor, recipe: &Recipe, calib: Option<&Calibration>, progress: &mut dyn FnMut(usize, usize)) -> Result<Analysis> {
+fn run(
+    tensor: &Tensor,
+    recipe: &Recipe,
+    calib: Option<&Calibration>,
+    detail: Detail,
+    progress: &mut dyn FnMut(usize, usize),
+) -> Result<Analysis> {
     let (rows, cols) = (tensor.rows(), tensor.cols());
-    let mut measure = Measure::new(recipe, rows, cols);
+    let mut measure = Measure::new(recipe, rows, cols, detail);
     let reference = calib.and_then(|c| c.reference_output(tensor.values.view()));
     let plain = recipe.method == Method::Rtn
         && recipe.format != Format::Codebook

@@ -11,7 +11,7 @@
 //! A point is on the Pareto front when no other point has both fewer bits per weight and a lower
 //! error, one of them strictly (both axes minimised; SQNR is negated).
 
-use crate::analysis::analyze_with;
+use crate::analysis::{analyze_measured, Detail};
 use crate::calib::Calibration;
 use crate::error::{Error, Result};
 use crate::formats::Format;
@@ -137,7 +137,7 @@ pub fn run(
     let mut rows = Vec::with_capacity(recipes.len());
     let mut failed = 0;
     for (i, recipe) in recipes.iter().enumerate() {
-        match analyze_with(tensor, recipe, calib, &mut |_, _| {}) {
+        match analyze_measured(tensor, recipe, calib, Detail::NoColumns, &mut |_, _| {}) {
             Ok(a) => rows.push(SweepRow {
                 recipe: *recipe,
                 label: recipe.label(),

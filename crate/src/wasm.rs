@@ -393,7 +393,9 @@ impl TensorHandle {
     fn sweep_row_ref(&self, recipe: JsValue, calibration: Option<&CalibrationHandle>) -> Result<JsValue, JsError> {
         // The core analysis alone: a sweep row needs none of the page's summaries and reports.
         let recipe = parse_recipe(recipe)?;
-        let a = &analyze_with(&self.tensor, &recipe, calibration.map(|c| &c.calib), &mut |_, _| {}).map_err(js_error)?;
+        let calib = calibration.map(|c| &c.calib);
+        let a = &crate::analysis::analyze_measured(&self.tensor, &recipe, calib, crate::analysis::Detail::NoColumns, &mut |_, _| {})
+            .map_err(js_error)?;
         to_js(&crate::sweep::SweepRow {
             recipe: a.recipe,
             label: a.recipe.label(),
