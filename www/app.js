@@ -1059,15 +1059,13 @@ function chartExports() {
       button.setAttribute('aria-label', `download the ${name} as ${kind}`);
       button.addEventListener('click', () => {
         const file = `${baseName()}.${id}.${kind.toLowerCase()}`;
-        try {
-          if (kind === 'SVG') {
-            download(file, svg(), 'image/svg+xml');
-          } else {
-            canvas()?.toBlob((blob) => blob && download(file, blob, 'image/png'));
-          }
-        } catch (err) {
-          $('export-message').textContent = `No ${kind} yet: ${err.message}`;
+        const source = canvas();
+        if (!source || source.closest('[hidden]')) {
+          $('export-message').textContent = `Nothing to save yet: the ${name} has not been drawn.`;
+          return;
         }
+        if (kind === 'SVG') download(file, svg(), 'image/svg+xml');
+        else source.toBlob((blob) => blob && download(file, blob, 'image/png'));
       });
       row.append(button);
     }
