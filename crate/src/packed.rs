@@ -48,6 +48,8 @@ struct Codec {
     values: Vec<f32>,
     /// For small floats: how many magnitudes the format has (the rest of each half is unused).
     magnitudes: usize,
+    /// For integer grids: the smallest code.
+    qmin: f32,
 }
 
 impl Codec {
@@ -64,17 +66,15 @@ impl Codec {
                 (0..2 * half).map(|c| if c < half { magnitudes.get(c).copied().unwrap_or(0.0) } else { -magnitudes.get(c - half).copied().unwrap_or(0.0) }).collect()
             }
         };
-        Codec { recipe: *recipe, bits, values, magnitudes }
+        let qmin = if recipe.format == Format::Int { IntGrid::new(recipe).qmin } else { 0.0 };
+        Codec { recipe: *recipe, bits, values, magnitudes, qmin }
     }
 
     /// The value of `code` in a group with parameters `p` (or levels `book`), computed exactly
     /// as the quantizers compute it.
     fn decode(&self, code: u32, p: GroupParams, book: &[f32]) -> f32 {
         match self.recipe.format {
-            Format::Int => {
-                let grid = IntGrid::new(&self.recipe);
-                (code as f32 + grid.qmin - p.zero) * p.scale
-            }
+            Format::Int => (code as f32 + self.qmin - p.zero) * p.scale,
             Format::Codebook => book[code as usize],
             _ => self.values[code as usize] * p.scale,
         }
@@ -83,10 +83,7 @@ impl Codec {
     /// The code nearest to the value `v` of a group, and its neighbours.
     fn candidates(&self, v: f32, p: GroupParams, book: &[f32]) -> [u32; 3] {
         let (index, offset) = match self.recipe.format {
-            Format::Int => {
-                let grid = IntGrid::new(&self.recipe);
-                (((v / p.scale + p.zero).round() - grid.qmin).max(0.0) as usize, 0)
-            }
+            Format::Int => (((v / p.scale + p.zero).round() - self.qmin).max(0.0) as usize, 0),
             Format::Codebook => (book.partition_point(|&l| l < v), 0),
             Format::Nf4 => (NF4_LEVELS.partition_point(|&l| l < v / p.scale), 0),
             Format::Mxint8 => (((v / p.scale * 64.0).round().clamp(-128.0, 127.0) as i8 as u8) as usize, 0),
@@ -159,6 +156,15 @@ fn params_at(params: &[GroupParams], recipe: &Recipe, per_row: usize, width: usi
     }
 }
 
+/// The codebook of row `r` (empty for formats without one).
+fn book_of<'a>(recipe: &Recipe, codebooks: &'a [Vec<f32>], r: usize) -> &'a [f32] {
+    match recipe.granularity {
+        _ if recipe.format != Format::Codebook => &[],
+        Granularity::Tensor => &codebooks[0],
+        _ => &codebooks[r],
+    }
+}
+
 /// Everything `decode_all` needs besides the codes.
 struct Parts<'a> {
     recipe: Recipe,
@@ -179,11 +185,7 @@ fn decode_all(parts: &Parts, codes: &[u8]) -> Result<Array2<f32>> {
     let mut out = Array2::<f32>::zeros((*rows, *cols));
     let mut at = 0;
     for r in 0..*rows {
-        let book: &[f32] = match recipe.granularity {
-            _ if recipe.format != Format::Codebook => &[],
-            Granularity::Tensor => &codebooks[0],
-            _ => &codebooks[r],
-        };
+        let book = book_of(recipe, codebooks, r);
         for c in 0..*cols {
             let code = read_bits(codes, &mut at, codec.bits)?;
             let p = if recipe.format == Format::Codebook { GroupParams { scale: 1.0, zero: 0.0 } } else { params_at(params, recipe, per_row, width, r, c) };
@@ -225,11 +227,7 @@ pub fn pack(analysis: &Analysis, shape: &[usize]) -> Result<Vec<u8>> {
     let mut codes = Vec::new();
     let mut used = 0;
     for r in 0..rows {
-        let book: &[f32] = match recipe.granularity {
-            _ if recipe.format != Format::Codebook => &[],
-            Granularity::Tensor => &analysis.codebooks[0],
-            _ => &analysis.codebooks[r],
-        };
+        let book = book_of(&recipe, &analysis.codebooks, r);
         for c in 0..cols {
             let code = if kept_set.contains(&(r, c)) {
                 0
