@@ -198,3 +198,39 @@ fn formats_work_with_clipping_and_kept_weights() {
     assert!(mse(&Recipe { keep_frac: 0.02, ..book }) < mse(&book));
     assert!(analyze(&w, &Recipe { method: Method::Clip, ..book }).unwrap_err().to_string().contains("codebook"));
 }
+
+/// Common practice for parallel numerics: the work is split into fixed blocks of rows whose
+/// partial results are combined in row order, so the thread count cannot change a single bit.
+#[test]
+fn every_method_gives_the_same_result_on_one_thread_as_on_several() {
+    use bitloupe::demo::Rng;
+    use bitloupe::formats::Format;
+    use ndarray::Array2;
+    let mut rng = Rng::new(21);
+    // 600 rows: nine full row blocks and a short one, and three GPTQ row chunks.
+    let w = Tensor::from_values("w", bitloupe::DType::F32, Array2::from_shape_fn((600, 200), |_| rng.normal() as f32 * 0.05));
+    let x = Array2::from_shape_fn((96, 200), |(_, c)| rng.normal() as f32 * if c == 7 { 20.0 } else { 1.0 });
+    let calib = Calibration::from_sample(x);
+    let mut recipes = vec![
+        Recipe::default(),
+        Recipe { granularity: Granularity::Tensor, ..Recipe::default() },
+        Recipe { granularity: Granularity::Row, symmetric: true, bits: 3, ..Recipe::default() },
+        recipe(Method::Clip, 3, 64),
+        recipe(Method::Hqq, 4, 64),
+        recipe(Method::Gptq, 4, 64),
+        Recipe { act_order: true, ..recipe(Method::Gptq, 3, 32) },
+        recipe(Method::Awq, 4, 64),
+        Recipe { smooth: Some(0.5), keep_cols: 2, ..recipe(Method::Rtn, 4, 64) },
+        Recipe { keep_frac: 0.01, ..recipe(Method::Rtn, 4, 64) },
+        Recipe { double_quant: true, ..Recipe::for_format(Format::Nf4) },
+    ];
+    recipes.extend(["e2m1", "mxfp4", "mxint8", "codebook"].map(|f| Recipe::for_format(f.parse().unwrap())));
+    let on = |threads: usize, r: &Recipe| {
+        let pool = rayon::ThreadPoolBuilder::new().num_threads(threads).build().unwrap();
+        pool.install(|| analyze_with(&w, r, Some(&calib), &mut |_, _| {}).unwrap())
+    };
+    for r in &recipes {
+        let (one, three) = (on(1, r), on(3, r));
+        assert!(one == three, "{} differs between one and three threads", r.label());
+    }
+}

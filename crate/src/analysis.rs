@@ -9,11 +9,12 @@ use crate::error::{Error, Result};
 use crate::formats::{DoubleQuantized, Format, Grid};
 use crate::methods::keep::Kept;
 use crate::grid::GroupParams;
-use crate::methods::{self, group_width, MethodFigures};
-use crate::metrics::{ColumnFigures, ColumnSums, ErrorFigures, ErrorSums, GroupFigures};
+use crate::methods::{self, group_width, MethodFigures, RowObserver};
+use crate::metrics::{ColumnBlock, ColumnFigures, ColumnSums, ErrorFigures, ErrorSums, GroupFigures};
+use crate::rows::{self, ROW_BLOCK};
 use crate::recipe::{Granularity, Method, Recipe};
 use crate::tensor::Tensor;
-use ndarray::Array2;
+use ndarray::{Array2, ArrayView2};
 use std::ops::Range;
 
 /// Everything one analysis produces.
@@ -52,9 +53,6 @@ pub struct Analysis {
 pub fn analyze(tensor: &Tensor, recipe: &Recipe) -> Result<Analysis> {
     analyze_with(tensor, recipe, None, &mut |_, _| {})
 }
-
-/// Rows between two progress reports of the plain round-to-nearest path.
-const PROGRESS_EVERY: usize = 64;
 
 /// Run `recipe` on `tensor` with optional calibration, calling `progress(done, total)` now and
 /// then (the unit depends on the method: rows, columns or search steps).
@@ -117,45 +115,87 @@ pub fn analyze_measured(
     run
 }
 
-/// Per-group and per-column sums, fed one row (and its reconstruction) at a time.
+/// What is measured of every row: per-group and per-column sums, taken over blocks of rows
+/// (see [`crate::rows`]) and combined in row order.
 struct Measure {
-    sums: Vec<ErrorSums>,
-    columns: Option<ColumnSums>,
+    cols: usize,
     width: usize,
     per_row: usize,
     whole_tensor: bool,
+    columns: bool,
+}
+
+/// The sums of one block of rows.
+struct BlockSums {
+    /// Per group of the block's rows, row-major (one for a per-tensor recipe).
+    groups: Vec<ErrorSums>,
+    columns: Option<ColumnBlock>,
 }
 
 impl Measure {
-    fn new(recipe: &Recipe, rows: usize, cols: usize, detail: Detail) -> Self {
+    fn new(recipe: &Recipe, cols: usize, detail: Detail) -> Self {
         let whole_tensor = recipe.granularity == Granularity::Tensor;
-        let (grid_rows, per_row) = if whole_tensor { (1, 1) } else { (rows, recipe.granularity.groups_per_row(cols)) };
         Measure {
-            sums: vec![ErrorSums::default(); grid_rows * per_row],
-            columns: (detail == Detail::Full).then(|| ColumnSums::new(cols)),
+            cols,
             width: group_width(recipe.granularity, cols),
-            per_row,
+            per_row: if whole_tensor { 1 } else { recipe.granularity.groups_per_row(cols) },
             whole_tensor,
+            columns: detail == Detail::Full,
         }
     }
 
-    fn row(&mut self, r: usize, x: &[f32], out: &[f32]) {
-        for (k, (xg, og)) in x.chunks(self.width).zip(out.chunks(self.width)).enumerate() {
-            let index = if self.whole_tensor { 0 } else { r * self.per_row + k };
-            self.sums[index].add(xg, og);
-        }
-        if let Some(columns) = &mut self.columns {
-            columns.add_row(x, out);
-        }
+    /// Measure rows already reconstructed (by a method other than the plain path).
+    fn blocks(&self, x: ArrayView2<f32>, x_hat: ArrayView2<f32>) -> Vec<BlockSums> {
+        let (x, x_hat) = (x.as_standard_layout(), x_hat.as_standard_layout());
+        let (x, x_hat) = (x.as_slice().expect("standard layout"), x_hat.as_slice().expect("standard layout"));
+        let cols = self.cols;
+        rows::map_blocks(x.len() / cols.max(1), |range| {
+            let mut block = self.start(range.start, range.len());
+            for r in range {
+                self.row(&mut block, r, &x[r * cols..(r + 1) * cols], &x_hat[r * cols..(r + 1) * cols]);
+            }
+            block
+        })
     }
 
-    fn finish(self, recipe: &Recipe) -> (ErrorFigures, GroupFigures, ColumnFigures) {
+    fn finish(&self, recipe: &Recipe, blocks: Vec<BlockSums>) -> (ErrorFigures, GroupFigures, ColumnFigures) {
+        let mut columns = ColumnSums::new(if self.columns { self.cols } else { 0 });
+        let mut sums = if self.whole_tensor { vec![ErrorSums::default()] } else { Vec::new() };
+        for block in blocks {
+            if let Some(c) = &block.columns {
+                columns.add_block(c);
+            }
+            if self.whole_tensor {
+                block.groups.iter().for_each(|g| sums[0].merge(g));
+            } else {
+                sums.extend(block.groups);
+            }
+        }
         let mut total = ErrorSums::default();
-        self.sums.iter().for_each(|s| total.merge(s));
+        sums.iter().for_each(|s| total.merge(s));
         let group_size = matches!(recipe.granularity, Granularity::Group(_)).then_some(self.width);
-        let grid_rows = self.sums.len() / self.per_row;
-        let columns = self.columns.unwrap_or_else(|| ColumnSums::new(0)).figures();
-        (total.figures(), GroupFigures::from_sums(grid_rows, self.per_row, group_size, &self.sums), columns)
+        let grid_rows = sums.len() / self.per_row;
+        (total.figures(), GroupFigures::from_sums(grid_rows, self.per_row, group_size, &sums), columns.figures())
+    }
+}
+
+impl RowObserver for Measure {
+    type Block = BlockSums;
+
+    fn start(&self, _: usize, rows: usize) -> BlockSums {
+        let groups = if self.whole_tensor { 1 } else { rows * self.per_row };
+        BlockSums { groups: vec![ErrorSums::default(); groups], columns: self.columns.then(|| ColumnBlock::new(self.cols)) }
+    }
+
+    fn row(&self, block: &mut BlockSums, r: usize, x: &[f32], x_hat: &[f32]) {
+        let first = if self.whole_tensor { 0 } else { (r % ROW_BLOCK) * self.per_row };
+        for (k, (xg, og)) in x.chunks(self.width).zip(x_hat.chunks(self.width)).enumerate() {
+            let index = if self.whole_tensor { 0 } else { first + k };
+            block.groups[index].add(xg, og);
+        }
+        if let Some(columns) = &mut block.columns {
+            columns.add_row(x, x_hat);
+        }
     }
 }
 
@@ -167,34 +207,27 @@ fn run(
     progress: &mut dyn FnMut(usize, usize),
 ) -> Result<Analysis> {
     let (rows, cols) = (tensor.rows(), tensor.cols());
-    let mut measure = Measure::new(recipe, rows, cols, detail);
+    let measure = Measure::new(recipe, cols, detail);
     let reference = calib.and_then(|c| c.reference_output(tensor.values.view()));
     let plain = recipe.method == Method::Rtn
         && recipe.format != Format::Codebook
         && recipe.smooth.is_none()
         && recipe.keep_cols == 0
         && recipe.keep_frac == 0.0;
-    let q = if plain {
+    let (q, blocks) = if plain {
         // The hot path: each row is measured while it is still in cache.
-        methods::rtn_rows(tensor.values.view(), recipe, |r, x, out| {
-            measure.row(r, x, out);
-            if (r + 1) % PROGRESS_EVERY == 0 {
-                progress(r + 1, rows);
-            }
-        })?
+        methods::rtn_rows(tensor.values.view(), recipe, &measure, progress)?
     } else {
         let q = methods::run(tensor.values.view(), recipe, calib, reference.as_deref(), progress)?;
-        for (r, (x, out)) in tensor.values.rows().into_iter().zip(q.dequantized.rows()).enumerate() {
-            measure.row(r, x.as_slice().expect("row-major"), out.as_slice().expect("row-major"));
-        }
-        q
+        let blocks = measure.blocks(tensor.values.view(), q.dequantized.view());
+        (q, blocks)
     };
     let methods::Quantized { dequantized, params, figures: method, output: measured, column_factors, codebooks, double_quant, kept } = q;
     let output = match measured {
         Some(known) => Some(known),
         None => calib.map(|c| output_error(c, tensor.values.view(), dequantized.view(), reference.as_deref())),
     };
-    let (totals, groups, columns) = measure.finish(recipe);
+    let (totals, groups, columns) = measure.finish(recipe, blocks);
     Ok(Analysis {
         recipe: *recipe,
         dequantized,
@@ -362,7 +395,8 @@ mod tests {
         assert!(points.windows(2).all(|w| w[0] < w[1]));
         let mut reported = Vec::new();
         analyze_with(&tensor(130, 8, 1), &Recipe::default(), None, &mut |done, all| reported.push((done, all))).unwrap();
-        assert_eq!(reported, vec![(64, 130), (128, 130)]);
+        assert_eq!(reported.last(), Some(&(130, 130)));
+        assert!(reported.windows(2).all(|w| w[0].0 < w[1].0));
     }
 
     #[test]

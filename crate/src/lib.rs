@@ -21,6 +21,7 @@ pub mod metrics;
 pub mod packed;
 pub mod recipe;
 pub mod report;
+pub mod rows;
 pub mod sizing;
 pub mod sweep;
 pub mod tensor;

@@ -19,9 +19,6 @@ pub const OUTLIER_SCORE: f32 = 4.0;
 /// Elements summed in f32 before their sums are added to the f64 totals.
 const SUM_BLOCK: usize = 256;
 
-/// Rows summed per column in f32 before those sums are added to the f64 totals.
-const COLUMN_BLOCK: usize = 64;
-
 /// max for values known not to be NaN; unlike `f32::max` it compiles to one vector instruction.
 #[inline(always)]
 fn larger(a: f32, b: f32) -> f32 {
@@ -168,33 +165,24 @@ impl GroupFigures {
     }
 }
 
-/// Running per-column sums over the rows of a tensor.
+/// Per-column sums over one block of rows (at most [`crate::rows::ROW_BLOCK`]), taken in f32.
 #[derive(Debug, Clone, PartialEq)]
-pub struct ColumnSums {
+pub struct ColumnBlock {
     rows: usize,
     max_abs: Vec<f32>,
-    sum_sq: Vec<f64>,
-    sum_sq_err: Vec<f64>,
-    block_sq: Vec<f32>,
-    block_err: Vec<f32>,
+    sum_sq: Vec<f32>,
+    sum_sq_err: Vec<f32>,
 }
 
-impl ColumnSums {
+impl ColumnBlock {
     /// Empty sums for `cols` columns.
     pub fn new(cols: usize) -> Self {
-        ColumnSums {
-            rows: 0,
-            max_abs: vec![0.0; cols],
-            sum_sq: vec![0.0; cols],
-            sum_sq_err: vec![0.0; cols],
-            block_sq: vec![0.0; cols],
-            block_err: vec![0.0; cols],
-        }
+        ColumnBlock { rows: 0, max_abs: vec![0.0; cols], sum_sq: vec![0.0; cols], sum_sq_err: vec![0.0; cols] }
     }
 
     /// Add one row and its reconstruction (finite values).
     pub fn add_row(&mut self, x: &[f32], x_hat: &[f32]) {
-        let columns = self.max_abs.iter_mut().zip(self.block_sq.iter_mut()).zip(self.block_err.iter_mut());
+        let columns = self.max_abs.iter_mut().zip(self.sum_sq.iter_mut()).zip(self.sum_sq_err.iter_mut());
         for (((max, sq), err), (&a, &b)) in columns.zip(x.iter().zip(x_hat)) {
             *max = larger(*max, a.abs());
             *sq += a * a;
@@ -202,24 +190,41 @@ impl ColumnSums {
             *err += e * e;
         }
         self.rows += 1;
-        if self.rows % COLUMN_BLOCK == 0 {
-            self.flush();
-        }
+    }
+}
+
+/// Per-column sums over the rows of a tensor: blocks of rows are summed in f32
+/// ([`ColumnBlock`]) and added here in f64, in row order.
+#[derive(Debug, Clone, PartialEq)]
+pub struct ColumnSums {
+    rows: usize,
+    max_abs: Vec<f32>,
+    sum_sq: Vec<f64>,
+    sum_sq_err: Vec<f64>,
+}
+
+impl ColumnSums {
+    /// Empty sums for `cols` columns.
+    pub fn new(cols: usize) -> Self {
+        ColumnSums { rows: 0, max_abs: vec![0.0; cols], sum_sq: vec![0.0; cols], sum_sq_err: vec![0.0; cols] }
     }
 
-    fn flush(&mut self) {
-        for (total, block) in self.sum_sq.iter_mut().zip(self.block_sq.iter_mut()) {
-            *total += f64::from(std::mem::take(block));
+    /// Add the next block of rows.
+    pub fn add_block(&mut self, block: &ColumnBlock) {
+        for (max, &m) in self.max_abs.iter_mut().zip(&block.max_abs) {
+            *max = larger(*max, m);
         }
-        for (total, block) in self.sum_sq_err.iter_mut().zip(self.block_err.iter_mut()) {
-            *total += f64::from(std::mem::take(block));
+        for (total, &b) in self.sum_sq.iter_mut().zip(&block.sum_sq) {
+            *total += f64::from(b);
         }
+        for (total, &b) in self.sum_sq_err.iter_mut().zip(&block.sum_sq_err) {
+            *total += f64::from(b);
+        }
+        self.rows += block.rows;
     }
 
     /// The finished figures.
     pub fn figures(&self) -> ColumnFigures {
-        let mut done = self.clone();
-        done.flush();
         let n = self.rows.max(1) as f64;
         let mut sorted = self.max_abs.clone();
         sorted.sort_by(f32::total_cmp);
@@ -228,8 +233,8 @@ impl ColumnSums {
         let typical = if median > 0.0 { median } else { sorted.last().copied().filter(|&m| m > 0.0).unwrap_or(1.0) };
         ColumnFigures {
             max_abs: self.max_abs.clone(),
-            rms: done.sum_sq.iter().map(|s| (s / n).sqrt() as f32).collect(),
-            err_rms: done.sum_sq_err.iter().map(|s| (s / n).sqrt() as f32).collect(),
+            rms: self.sum_sq.iter().map(|s| (s / n).sqrt() as f32).collect(),
+            err_rms: self.sum_sq_err.iter().map(|s| (s / n).sqrt() as f32).collect(),
             outlier_score: self.max_abs.iter().map(|m| m / typical).collect(),
         }
     }
@@ -327,9 +332,11 @@ mod tests {
 
     #[test]
     fn columns_score_outliers_against_the_median() {
+        let mut block = ColumnBlock::new(5);
+        block.add_row(&[1.0, 1.0, 10.0, -1.0, 1.0], &[1.0, 1.0, 9.0, -1.0, 1.0]);
+        block.add_row(&[-1.0, 0.5, 2.0, 1.0, 0.0], &[-1.0, 0.5, 2.0, 1.0, 0.0]);
         let mut c = ColumnSums::new(5);
-        c.add_row(&[1.0, 1.0, 10.0, -1.0, 1.0], &[1.0, 1.0, 9.0, -1.0, 1.0]);
-        c.add_row(&[-1.0, 0.5, 2.0, 1.0, 0.0], &[-1.0, 0.5, 2.0, 1.0, 0.0]);
+        c.add_block(&block);
         let f = c.figures();
         assert_eq!(f.max_abs, vec![1.0, 1.0, 10.0, 1.0, 1.0]);
         assert_eq!(f.outlier_score[2], 10.0);

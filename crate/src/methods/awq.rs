@@ -10,7 +10,7 @@
 //! is the diagonal estimate of `calib`.
 
 use super::keep::Kept;
-use super::{clip, quantize_groups, scale_columns, unscale_columns, MethodFigures, Quantized};
+use super::{clip, quantize_groups, scale_columns, unscale_columns, with_scratch, MethodFigures, Quantized};
 use crate::formats::Grid;
 use crate::calib::{output_error, Calibration};
 use crate::error::Result;
@@ -64,17 +64,18 @@ pub fn run(
     // Q(W·diag(s))·diag(s)⁻¹ group by group, scaling on the fly instead of copying W per α.
     let candidate = |alpha: f32| -> Result<(Quantized, Vec<f32>)> {
         let s = factors(&calib.mean_abs, alpha);
-        let mut scaled = Vec::new();
-        let (mut dequantized, params) = quantize_groups(
+        let grouped = quantize_groups(
             w,
             &plain,
             kept,
-            |x, col0| {
-                scaled.clear();
-                for (xs, fs) in aligned(x, &s, col0, cols) {
-                    scaled.extend(xs.iter().zip(fs).map(|(v, f)| v * f));
-                }
-                grid.fit(&scaled)
+            |x, _, col0| {
+                with_scratch(|scaled| {
+                    scaled.clear();
+                    for (xs, fs) in aligned(x, &s, col0, cols) {
+                        scaled.extend(xs.iter().zip(fs).map(|(v, f)| v * f));
+                    }
+                    grid.fit(scaled).map(|p| (p, ()))
+                })
             },
             |p, x, out, col0| {
                 let mut done = 0;
@@ -85,8 +86,10 @@ pub fn run(
                     done += xs.len();
                 }
             },
-            |_, _, _| {},
+            &(),
+            &mut |_, _| {},
         )?;
+        let (mut dequantized, params) = (grouped.out, grouped.params);
         kept.restore(w, &mut dequantized);
         Ok((Quantized::plain(dequantized, params), s))
     };

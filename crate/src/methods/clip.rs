@@ -4,7 +4,7 @@
 //! diagonal part of the group's contribution to ‖X·(Ŵ − W)ᵀ‖².
 
 use super::keep::Kept;
-use super::{quantize_groups, MethodFigures, Quantized};
+use super::{quantize_groups, with_scratch, MethodFigures, Quantized};
 use crate::calib::Calibration;
 use crate::error::Result;
 use crate::formats::Grid;
@@ -22,44 +22,46 @@ pub fn run(w: ArrayView2<f32>, recipe: &Recipe, calib: Option<&Calibration>, kep
     let grid = Grid::new(recipe);
     let cols = w.ncols();
     let weights = calib.map(|c| c.mean_sq.as_slice());
-    let mut ratio_sum = 0f64;
-    let mut groups = 0usize;
-    let mut scratch = Vec::new();
-    let (dequantized, params) = quantize_groups(
+    let grouped = quantize_groups(
         w,
         recipe,
         kept,
-        |x, col0| {
+        |x, _, col0| {
             let (lo, hi) = min_max(x);
-            let mut best = None;
-            for ratio in ratios() {
-                let p = grid.fit_range(lo * ratio, hi * ratio)?;
-                scratch.resize(x.len(), 0.0);
-                grid.quantize_into(p, x, &mut scratch);
-                let err: f64 = x
-                    .iter()
-                    .zip(&scratch)
-                    .enumerate()
-                    .map(|(j, (&a, &b))| {
-                        let d = f64::from(a - b);
-                        d * d * weights.map_or(1.0, |m| f64::from(m[(col0 + j) % cols]))
-                    })
-                    .sum();
-                if best.is_none_or(|(e, _, _)| err < e) {
-                    best = Some((err, p, ratio));
+            with_scratch(|scratch| {
+                let mut best = None;
+                for ratio in ratios() {
+                    let p = grid.fit_range(lo * ratio, hi * ratio)?;
+                    scratch.resize(x.len(), 0.0);
+                    grid.quantize_into(p, x, scratch);
+                    let err: f64 = x
+                        .iter()
+                        .zip(scratch.iter())
+                        .enumerate()
+                        .map(|(j, (&a, &b))| {
+                            let d = f64::from(a - b);
+                            d * d * weights.map_or(1.0, |m| f64::from(m[(col0 + j) % cols]))
+                        })
+                        .sum();
+                    if best.is_none_or(|(e, _, _)| err < e) {
+                        best = Some((err, p, ratio));
+                    }
                 }
-            }
-            let (_, p, ratio) = best.expect("at least one ratio");
-            ratio_sum += f64::from(ratio);
-            groups += 1;
-            Ok(p)
+                let (_, p, ratio) = best.expect("at least one ratio");
+                Ok((p, ratio))
+            })
         },
         |p, x, out, _| grid.quantize_into(p, x, out),
-        |_, _, _| {},
+        &(),
+        &mut |_, _| {},
     )?;
+    let ratio_sum: f64 = grouped.notes.iter().map(|&r| f64::from(r)).sum();
     Ok(Quantized {
-        figures: MethodFigures::Clip { mean_ratio: (ratio_sum / groups.max(1) as f64) as f32, output_weighted: calib.is_some() },
-        ..Quantized::plain(dequantized, params)
+        figures: MethodFigures::Clip {
+            mean_ratio: (ratio_sum / grouped.notes.len().max(1) as f64) as f32,
+            output_weighted: calib.is_some(),
+        },
+        ..Quantized::plain(grouped.out, grouped.params)
     })
 }
 

@@ -21,17 +21,21 @@
 use super::keep::Kept;
 use super::{group_width, MethodFigures, Quantized};
 use crate::calib::Calibration;
-use crate::error::Result;
+use crate::error::{Error, Result};
 use crate::formats::Grid;
 use crate::grid::{min_max, GroupParams, ScaleOverflow};
 use crate::linalg;
 use crate::recipe::{Granularity, Recipe};
+use crate::rows;
 use half::f16;
 use ndarray::{s, Array2, ArrayView2};
 use serde::Serialize;
 
 /// Columns per lazy-update block (the paper's choice).
 pub const BLOCK: usize = 128;
+
+/// Rows swept together: a whole number of row blocks, large enough for efficient matrix products.
+const CHUNK_ROWS: usize = 4 * rows::ROW_BLOCK;
 
 /// What GPTQ reports.
 #[derive(Debug, Clone, PartialEq, Serialize)]
@@ -156,51 +160,74 @@ pub fn quantize(
     };
 
     let mut out = Array2::<f32>::zeros((rows, cols));
-    let mut row_losses = vec![0f64; rows];
     let any_kept = !kept.is_empty();
-    let mut i1 = 0;
-    while i1 < cols {
-        let i2 = (i1 + block).min(cols);
-        let count = i2 - i1;
-        let mut w1 = work.slice(s![.., i1..i2]).to_owned();
-        let mut err1 = Array2::<f32>::zeros((rows, count));
-        let u_block = u.slice(s![i1..i2, i1..i2]);
-        // Inside a block each row evolves on its own (an update touches only its own row), so
-        // rows are swept one at a time while their 128 values stay in cache.
-        for (r, (mut w_row, mut e_row)) in w1.rows_mut().into_iter().zip(err1.rows_mut()).enumerate() {
-            let w_row = w_row.as_slice_mut().expect("row-major");
-            let e_row = e_row.as_slice_mut().expect("row-major");
-            let mut loss = 0f64;
-            for i in 0..count {
-                let orig = perm[i1 + i];
-                if dynamic_groups && orig % width == 0 {
-                    let end = (i + width).min(count);
-                    fit_values(&mut scratch, r, &mut (i..end).map(|j| (orig + j - i, w_row[j])));
-                    params[r * per_row + orig / width] = grid.fit(&scratch).map_err(overflow(r, orig))?;
+    let work = &work;
+    // Rows evolve independently once U is known, so chunks of rows are swept in parallel; each
+    // chunk is a fresh copy, so the matrix products see the same shapes and alignment however
+    // many threads there are, and the result is the same bit for bit.
+    let chunks = rows::map_chunks_mut(out.as_slice_mut().expect("fresh array"), cols, CHUNK_ROWS, progress, |first, out_chunk| {
+        let chunk_rows = out_chunk.len() / cols;
+        let mut work = work.slice(s![first..first + chunk_rows, ..]).to_owned();
+        let mut chunk_params = if dynamic_groups { vec![GroupParams { scale: 1.0, zero: 0.0 }; chunk_rows * per_row] } else { Vec::new() };
+        let mut row_losses = vec![0f64; chunk_rows];
+        let mut scratch = Vec::new();
+        let mut i1 = 0;
+        while i1 < cols {
+            let i2 = (i1 + block).min(cols);
+            let count = i2 - i1;
+            let mut w1 = work.slice(s![.., i1..i2]).to_owned();
+            let mut err1 = Array2::<f32>::zeros((chunk_rows, count));
+            let u_block = u.slice(s![i1..i2, i1..i2]);
+            // Inside a block each row evolves on its own (an update touches only its own row),
+            // so rows are swept one at a time while their 128 values stay in cache.
+            for (i_row, (mut w_row, mut e_row)) in w1.rows_mut().into_iter().zip(err1.rows_mut()).enumerate() {
+                let r = first + i_row;
+                let w_row = w_row.as_slice_mut().expect("row-major");
+                let e_row = e_row.as_slice_mut().expect("row-major");
+                let out_row = &mut out_chunk[i_row * cols..(i_row + 1) * cols];
+                let mut loss = 0f64;
+                for i in 0..count {
+                    let orig = perm[i1 + i];
+                    if dynamic_groups && orig % width == 0 {
+                        let end = (i + width).min(count);
+                        fit_values(&mut scratch, r, &mut (i..end).map(|j| (orig + j - i, w_row[j])));
+                        chunk_params[i_row * per_row + orig / width] = grid.fit(&scratch).map_err(overflow(r, orig))?;
+                    }
+                    let p = if dynamic_groups { chunk_params[i_row * per_row + orig / width] } else { params[param_index(r, orig)] };
+                    let value = w_row[i];
+                    let q = if any_kept && kept.contains(orig, r * cols + orig) {
+                        f16::from_f32(value).to_f32()
+                    } else {
+                        grid.dequantize_one(p, value)
+                    };
+                    out_row[orig] = q;
+                    let u_row = u_block.row(i);
+                    let u_row = u_row.as_slice().expect("row-major");
+                    let e = (value - q) / u_row[i];
+                    loss += f64::from(e) * f64::from(e);
+                    e_row[i] = e;
+                    for (target, &uv) in w_row[i + 1..].iter_mut().zip(&u_row[i + 1..]) {
+                        *target -= e * uv;
+                    }
                 }
-                let value = w_row[i];
-                let q = if any_kept && kept.contains(orig, r * cols + orig) {
-                    f16::from_f32(value).to_f32()
-                } else {
-                    grid.dequantize_one(params[param_index(r, orig)], value)
-                };
-                out[[r, orig]] = q;
-                let u_row = u_block.row(i);
-                let u_row = u_row.as_slice().expect("row-major");
-                let e = (value - q) / u_row[i];
-                loss += f64::from(e) * f64::from(e);
-                e_row[i] = e;
-                for (target, &uv) in w_row[i + 1..].iter_mut().zip(&u_row[i + 1..]) {
-                    *target -= e * uv;
-                }
+                row_losses[i_row] += loss;
             }
-            row_losses[r] += loss;
+            if i2 < cols {
+                linalg::subtract_product(work.slice_mut(s![.., i2..]), err1.view(), u.slice(s![i1..i2, i2..]));
+            }
+            i1 = i2;
         }
-        if i2 < cols {
-            linalg::subtract_product(work.slice_mut(s![.., i2..]), err1.view(), u.slice(s![i1..i2, i2..]));
-        }
-        progress(i2, cols);
-        i1 = i2;
+        Ok::<_, Error>((row_losses, chunk_params))
+    });
+    let mut row_losses = Vec::with_capacity(rows);
+    let mut dynamic_params = Vec::new();
+    for chunk in chunks {
+        let (losses, chunk_params) = chunk?;
+        row_losses.extend(losses);
+        dynamic_params.extend(chunk_params);
+    }
+    if dynamic_groups {
+        params = dynamic_params;
     }
     let figures = GptqFigures {
         damp: recipe.damp,

@@ -96,36 +96,33 @@ pub fn optimise(grid: &IntGrid, x: &[f32], start: GroupParams) -> (GroupParams, 
 /// HQQ on every group of `w` (asymmetric grids only; the recipe check enforces it).
 pub fn run(w: ArrayView2<f32>, recipe: &Recipe, kept: &Kept) -> Result<Quantized> {
     let grid = IntGrid::new(recipe);
-    let (mut before, mut after, mut iterations, mut groups) = (0f64, 0f64, 0usize, 0usize);
-    let (dequantized, params) = quantize_groups(
+    let grouped = quantize_groups(
         w,
         recipe,
         kept,
-        |x, _| {
+        |x, _, _| {
             let start = grid.fit(x)?;
-            let rtn = lp_error_rtn(&grid, x, start);
-            let (p, its) = optimise(&grid, x, start);
-            before += rtn;
-            after += lp_error(x, p, grid.qmax);
-            iterations += its;
-            groups += 1;
-            Ok(p)
+            let before = lp_error_rtn(&grid, x, start);
+            let (p, iterations) = optimise(&grid, x, start);
+            Ok((p, (before, lp_error(x, p, grid.qmax), iterations)))
         },
         |p, x, out, _| {
             for (o, &v) in out.iter_mut().zip(x) {
                 *o = dequantize(p, grid.qmax, v);
             }
         },
-        |_, _, _| {},
+        &(),
+        &mut |_, _| {},
     )?;
+    let notes = &grouped.notes;
     Ok(Quantized {
         figures: MethodFigures::Hqq(HqqFigures {
             p: P,
-            mean_iterations: iterations as f32 / groups.max(1) as f32,
-            lp_before: before,
-            lp_after: after,
+            mean_iterations: notes.iter().map(|n| n.2).sum::<usize>() as f32 / notes.len().max(1) as f32,
+            lp_before: notes.iter().map(|n| n.0).sum(),
+            lp_after: notes.iter().map(|n| n.1).sum(),
         }),
-        ..Quantized::plain(dequantized, params)
+        ..Quantized::plain(grouped.out, grouped.params)
     })
 }
 

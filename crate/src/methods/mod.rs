@@ -17,6 +17,7 @@ use crate::error::{Error, Result};
 use crate::formats::{codebook, DoubleQuantized, Format, Grid};
 use crate::grid::{GroupParams, ScaleOverflow};
 use crate::recipe::{Granularity, Method, Recipe};
+use crate::rows;
 use ndarray::{Array2, ArrayView2};
 use serde::Serialize;
 
@@ -134,36 +135,46 @@ pub fn rtn(w: ArrayView2<f32>, recipe: &Recipe, kept: &keep::Kept) -> Result<Qua
     if recipe.format == Format::Codebook {
         return codebooks(w, recipe, kept);
     }
-    round_to_nearest(w, recipe, kept, |_, _, _| {})
+    Ok(round_to_nearest(w, recipe, kept, &(), &mut |_, _| {})?.0)
 }
 
-/// Round to nearest over the rows of `w` in one pass, handing each row and its reconstruction to
-/// `each_row` while both are still in cache. This is the plain recipe's path, and the speed
-/// benchmark's subject.
-pub fn rtn_rows(w: ArrayView2<f32>, recipe: &Recipe, each_row: impl FnMut(usize, &[f32], &[f32])) -> Result<Quantized> {
-    round_to_nearest(w, recipe, &keep::Kept::default(), each_row)
+/// Round to nearest over the rows of `w` in one pass, showing each finished row and its
+/// reconstruction to `observer` while both are still in cache. This is the plain recipe's path,
+/// and the speed benchmark's subject.
+pub fn rtn_rows<O: RowObserver>(
+    w: ArrayView2<f32>,
+    recipe: &Recipe,
+    observer: &O,
+    progress: &mut dyn FnMut(usize, usize),
+) -> Result<(Quantized, Vec<O::Block>)> {
+    round_to_nearest(w, recipe, &keep::Kept::default(), observer, progress)
 }
 
-fn round_to_nearest(
+fn round_to_nearest<O: RowObserver>(
     w: ArrayView2<f32>,
     recipe: &Recipe,
     kept: &keep::Kept,
-    each_row: impl FnMut(usize, &[f32], &[f32]),
-) -> Result<Quantized> {
+    observer: &O,
+    progress: &mut dyn FnMut(usize, usize),
+) -> Result<(Quantized, Vec<O::Block>)> {
     let grid = Grid::new(recipe);
     let quantize = |p: GroupParams, x: &[f32], out: &mut [f32], _| grid.quantize_into(p, x, out);
+    let fit = |x: &[f32], _, _| grid.fit(x).map(|p| (p, ()));
     let mut double = None;
-    let (dequantized, params) = if recipe.double_quant {
+    let grouped = if recipe.double_quant {
         // Fit every block first, quantize the block constants, then quantize with them.
-        let (_, fitted) = quantize_groups(w, recipe, kept, |x, _| grid.fit(x), |_, _, _, _| {}, |_, _, _| {})?;
+        let fitted = quantize_groups(w, recipe, kept, fit, |_, _, _, _| {}, &(), &mut |_, _| {})?.params;
         let dq = DoubleQuantized::of(&fitted);
-        let mut scales = dq.scales().into_iter();
+        let scales = dq.scales();
         double = Some(dq);
-        quantize_groups(w, recipe, kept, |_, _| Ok(GroupParams { scale: scales.next().expect("same groups"), zero: 0.0 }), quantize, each_row)?
+        let (width, per_row) = (group_width(recipe.granularity, w.ncols()), recipe.granularity.groups_per_row(w.ncols()));
+        let stored = |_: &[f32], r: usize, col0: usize| Ok((GroupParams { scale: scales[r * per_row + col0 / width], zero: 0.0 }, ()));
+        quantize_groups(w, recipe, kept, stored, quantize, observer, progress)?
     } else {
-        quantize_groups(w, recipe, kept, |x, _| grid.fit(x), quantize, each_row)?
+        quantize_groups(w, recipe, kept, fit, quantize, observer, progress)?
     };
-    Ok(Quantized { double_quant: double, ..Quantized::plain(dequantized, params) })
+    let q = Quantized { double_quant: double, ..Quantized::plain(grouped.out, grouped.params) };
+    Ok((q, grouped.observed))
 }
 
 /// A codebook per tensor or per row, fitted by Lloyd–Max; kept values stay out of the fit.
@@ -209,19 +220,51 @@ pub fn group_width(granularity: Granularity, cols: usize) -> usize {
     }
 }
 
-/// Fit and quantize every group of `w`: `fit(values, first column)` chooses the parameters
-/// (kept values are zeroed first so they do not stretch the range), `quantize(params, values,
-/// out, first column)` writes the group's reconstruction, and `each_row(row, values,
-/// reconstruction)` sees every finished row. For a per-tensor recipe the one fit sees the whole
-/// tensor row-major, so its value j belongs to column j mod cols.
-pub fn quantize_groups(
+/// Sees every finished row of a block of rows (see [`crate::rows`]) and sums what it needs into
+/// one partial result per block; the caller combines the partials in row order.
+pub trait RowObserver: Sync {
+    /// The partial result of one block.
+    type Block: Send;
+    /// An empty partial result for the block of `rows` rows starting at `first_row`.
+    fn start(&self, first_row: usize, rows: usize) -> Self::Block;
+    /// Take in row `r` of the tensor (`x`) and its reconstruction (`x_hat`).
+    fn row(&self, block: &mut Self::Block, r: usize, x: &[f32], x_hat: &[f32]);
+}
+
+/// Observes nothing.
+impl RowObserver for () {
+    type Block = ();
+    fn start(&self, _: usize, _: usize) {}
+    fn row(&self, _: &mut (), _: usize, _: &[f32], _: &[f32]) {}
+}
+
+/// What [`quantize_groups`] produces.
+pub struct Grouped<T, B> {
+    /// The reconstruction.
+    pub out: Array2<f32>,
+    /// Every group's parameters, row-major (one for a per-tensor recipe).
+    pub params: Vec<GroupParams>,
+    /// What the fit said about each group, in the same order.
+    pub notes: Vec<T>,
+    /// The observer's partial result of each block of rows, in row order.
+    pub observed: Vec<B>,
+}
+
+/// Fit and quantize every group of `w`, blocks of rows in parallel (see [`crate::rows`]):
+/// `fit(values, row, first column)` chooses the parameters (kept values are zeroed first so they
+/// do not stretch the range) and a note about the group, `quantize(params, values, out, first
+/// column)` writes the group's reconstruction, and `observer` sees every finished row. For a
+/// per-tensor recipe the one fit sees the whole tensor row-major, so its value j belongs to
+/// column j mod cols.
+pub fn quantize_groups<T: Send, O: RowObserver>(
     w: ArrayView2<f32>,
     recipe: &Recipe,
     kept: &keep::Kept,
-    mut fit: impl FnMut(&[f32], usize) -> std::result::Result<GroupParams, ScaleOverflow>,
-    mut quantize: impl FnMut(GroupParams, &[f32], &mut [f32], usize),
-    mut each_row: impl FnMut(usize, &[f32], &[f32]),
-) -> Result<(Array2<f32>, Vec<GroupParams>)> {
+    fit: impl Fn(&[f32], usize, usize) -> std::result::Result<(GroupParams, T), ScaleOverflow> + Sync + Send,
+    quantize: impl Fn(GroupParams, &[f32], &mut [f32], usize) + Sync + Send,
+    observer: &O,
+    progress: &mut dyn FnMut(usize, usize),
+) -> Result<Grouped<T, O::Block>> {
     let masked = kept.masked(w);
     let source = match &masked {
         Some(m) => m.view(),
@@ -231,30 +274,58 @@ pub fn quantize_groups(
     let width = group_width(recipe.granularity, cols);
     let overflow = |row: usize, col: usize| move |e: ScaleOverflow| e.at(recipe.scale_dtype, row, col);
     let source = source.as_standard_layout();
-    let whole = match recipe.granularity {
-        Granularity::Tensor => Some(fit(source.as_slice().expect("standard layout"), 0).map_err(overflow(0, 0))?),
-        _ => None,
+    let all = source.as_slice().expect("standard layout");
+    let (whole, mut notes) = match recipe.granularity {
+        Granularity::Tensor => {
+            let (p, note) = fit(all, 0, 0).map_err(overflow(0, 0))?;
+            (Some(p), vec![note])
+        }
+        _ => (None, Vec::new()),
     };
     let mut out = Array2::<f32>::zeros((rows, cols));
+    let blocks = rows::map_blocks_mut(out.as_slice_mut().expect("fresh array"), cols, progress, |first, out_block| {
+        let block_rows = out_block.len() / cols;
+        let mut params = Vec::new();
+        let mut block_notes = Vec::new();
+        let mut seen = observer.start(first, block_rows);
+        for (i, out_row) in out_block.chunks_mut(cols).enumerate() {
+            let r = first + i;
+            let x_row = &all[r * cols..(r + 1) * cols];
+            for (k, (x, o)) in x_row.chunks(width).zip(out_row.chunks_mut(width)).enumerate() {
+                let p = match whole {
+                    Some(p) => p,
+                    None => {
+                        let (p, note) = fit(x, r, k * width).map_err(overflow(r, k * width))?;
+                        params.push(p);
+                        block_notes.push(note);
+                        p
+                    }
+                };
+                quantize(p, x, o, k * width);
+            }
+            observer.row(&mut seen, r, x_row, out_row);
+        }
+        Ok::<_, Error>((params, block_notes, seen))
+    });
     let mut params = Vec::with_capacity(recipe.granularity.group_count(rows, cols));
     params.extend(whole);
-    for (r, (x_row, mut out_row)) in source.rows().into_iter().zip(out.rows_mut()).enumerate() {
-        let x_row = x_row.to_slice().expect("standard layout");
-        let out_row = out_row.as_slice_mut().expect("row-major output");
-        for (k, (x, o)) in x_row.chunks(width).zip(out_row.chunks_mut(width)).enumerate() {
-            let p = match whole {
-                Some(p) => p,
-                None => {
-                    let p = fit(x, k * width).map_err(overflow(r, k * width))?;
-                    params.push(p);
-                    p
-                }
-            };
-            quantize(p, x, o, k * width);
-        }
-        each_row(r, x_row, out_row);
+    let mut observed = Vec::with_capacity(blocks.len());
+    for block in blocks {
+        let (p, n, seen) = block?;
+        params.extend(p);
+        notes.extend(n);
+        observed.push(seen);
     }
-    Ok((out, params))
+    Ok(Grouped { out, params, notes, observed })
+}
+
+/// Run `work` with this thread's scratch buffer (fits that try several candidates reuse it
+/// rather than allocate per group).
+pub(crate) fn with_scratch<R>(work: impl FnOnce(&mut Vec<f32>) -> R) -> R {
+    thread_local! {
+        static SCRATCH: std::cell::RefCell<Vec<f32>> = const { std::cell::RefCell::new(Vec::new()) };
+    }
+    SCRATCH.with(|s| work(&mut s.borrow_mut()))
 }
 
 /// W·diag(s).
