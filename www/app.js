@@ -37,8 +37,22 @@ const state = {
 
 // ------------------------------------------------------------------ worker bridge
 
+/** The core, compiled once here from a script rather than fetched, so that the page and its
+ * workers can forbid every connection (connect-src 'none'). */
+async function compileCore() {
+  const { default: base64 } = await import('./pkg/bitloupe_core.js');
+  const text = atob(base64);
+  const bytes = new Uint8Array(text.length);
+  for (let i = 0; i < text.length; i++) bytes[i] = text.charCodeAt(i);
+  return WebAssembly.compile(bytes);
+}
+
 const config = window.BITLOUPE_CONFIG || {};
-const bridge = new CoreBridge(config.makeWorker || (() => new Worker('worker.js')), config.wasm || 'pkg/bitloupe_bg.wasm');
+const core = config.wasm ?? await compileCore().catch((err) => {
+  $('status').textContent = `The page could not load its compute core: ${err.message}`;
+  throw err;
+});
+const bridge = new CoreBridge(config.makeWorker || (() => new Worker('worker.js')), core);
 bridge.onRestart = (reason) => {
   if (!(reason instanceof Cancelled)) showMessage('input-message', reason.message);
 };

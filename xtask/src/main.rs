@@ -136,6 +136,7 @@ fn build() -> Result<PathBuf> {
         .args(["--target", "no-modules", "--no-typescript", "--out-dir"])
         .arg(staging.join("pkg"))
         .arg(&wasm))?;
+    let core = write_core_module(&staging)?;
     copy_dir(&root.join("www"), &staging)?;
     let vendor = staging.join("vendor");
     std::fs::create_dir_all(&vendor).map_err(|e| e.to_string())?;
@@ -143,12 +144,27 @@ fn build() -> Result<PathBuf> {
         std::fs::copy(root.join("node_modules").join(from), vendor.join(to)).map_err(|e| format!("{from}: {e}"))?;
     }
     write_precache_list(&staging)?;
-    write_single_file(&staging)?;
+    write_single_file(&staging, &core)?;
     // Replace dist/ only once the new build is complete.
     let _ = std::fs::remove_dir_all(&dist);
     std::fs::rename(&staging, &dist).map_err(|e| format!("dist: {e}"))?;
     eprintln!("page built in {}", dist.display());
     Ok(dist)
+}
+
+/// Replace wasm-bindgen's `pkg/bitloupe_bg.wasm` with `pkg/bitloupe_core.js`, a module whose
+/// default export is the same bytes in base64; returns that base64. The page imports it as a
+/// script instead of fetching the wasm, so neither the page nor its compute workers need any
+/// `connect-src`: their Content-Security-Policy forbids connecting anywhere.
+fn write_core_module(staging: &Path) -> Result<String> {
+    use base64::Engine;
+    let wasm_path = staging.join("pkg/bitloupe_bg.wasm");
+    let wasm = std::fs::read(&wasm_path).map_err(|e| format!("{}: {e}", wasm_path.display()))?;
+    let core = base64::engine::general_purpose::STANDARD.encode(wasm);
+    let module = format!("// Written by `cargo xtask build`: the core's wasm module in base64.\nexport default '{core}';\n");
+    std::fs::write(staging.join("pkg/bitloupe_core.js"), module).map_err(|e| e.to_string())?;
+    std::fs::remove_file(&wasm_path).map_err(|e| e.to_string())?;
+    Ok(core)
 }
 
 /// Allows what the single file needs when opened from disk: its own inline scripts and the blob:
@@ -180,9 +196,9 @@ const SINGLE_FILE_LOADER: &str = r#"
 })();
 "#;
 
-/// Write `bitloupe.html`: the whole page, wasm and scripts inlined, that works opened from disk.
-fn write_single_file(dist: &Path) -> Result {
-    use base64::Engine;
+/// Write `bitloupe.html`: the whole page, wasm (`core`, in base64) and scripts inlined, that works
+/// opened from disk.
+fn write_single_file(dist: &Path, core: &str) -> Result {
     let read = |rel: &str| std::fs::read_to_string(dist.join(rel)).map_err(|e| format!("{rel}: {e}"));
     let mut modules = serde_json::Map::new();
     for entry in std::fs::read_dir(dist).map_err(|e| e.to_string())? {
@@ -191,7 +207,6 @@ fn write_single_file(dist: &Path) -> Result {
             modules.insert(name.clone(), read(&name)?.into());
         }
     }
-    let wasm = std::fs::read(dist.join("pkg/bitloupe_bg.wasm")).map_err(|e| e.to_string())?;
     let bundle = serde_json::json!({
         "css": format!("{}
 {}", read("vendor/uPlot.min.css")?, read("style.css")?),
@@ -199,7 +214,7 @@ fn write_single_file(dist: &Path) -> Result {
         "glue": read("pkg/bitloupe.js")?,
         "worker": read("worker.js")?,
         "modules": modules,
-        "wasm": base64::engine::general_purpose::STANDARD.encode(wasm),
+        "wasm": core,
     });
     // "</" may not appear inside a script element; "<\/" is the same JSON string.
     let bundle = bundle.to_string().replace("</", "<\\/");
@@ -224,12 +239,23 @@ fn write_single_file(dist: &Path) -> Result {
 }
 
 /// The page's Content-Security-Policy, kept in one place: the meta tag of `www/index.html`. The
-/// server sends the same policy as a header.
+/// server sends the same policy as a header, which is what governs the compute workers (a
+/// worker's policy comes from its own response, not from the page's meta tag).
 fn page_csp(html: &str) -> Result<String> {
     const PREFIX: &str = r#"<meta http-equiv="Content-Security-Policy" content=""#;
     let start = html.find(PREFIX).ok_or("index.html has no Content-Security-Policy meta tag")? + PREFIX.len();
     let len = html[start..].find('"').ok_or("unterminated Content-Security-Policy meta tag")?;
     Ok(html[start..start + len].to_string())
+}
+
+/// The service worker's policy: the page's with `connect-src 'self'`, because pre-caching the
+/// page's own files for offline use is a fetch. It never receives the user's data.
+fn service_worker_csp(page: &str) -> Result<String> {
+    const PAGE: &str = "connect-src 'none'";
+    if !page.contains(PAGE) {
+        return Err(format!("the page's Content-Security-Policy no longer says {PAGE}"));
+    }
+    Ok(page.replace(PAGE, "connect-src 'self'"))
 }
 
 fn copy_dir(from: &Path, to: &Path) -> Result {
@@ -304,13 +330,14 @@ fn serve(args: &[String]) -> Result {
 fn serve_dir(dist: &Path, port: u16) -> Result {
     let index = std::fs::read_to_string(dist.join("index.html")).map_err(|e| format!("index.html: {e}"))?;
     let csp = page_csp(&index)?;
+    let sw_csp = service_worker_csp(&csp)?;
     let listener = std::net::TcpListener::bind(("127.0.0.1", port)).map_err(|e| format!("cannot listen on 127.0.0.1:{port}: {e}"))?;
     eprintln!("\nbitloupe is ready: open http://127.0.0.1:{port}/ (press Ctrl+C to stop)");
     std::thread::scope(|scope| {
         for stream in listener.incoming().flatten() {
-            let csp = &csp;
+            let (csp, sw_csp) = (&csp, &sw_csp);
             scope.spawn(move || {
-                let _ = answer(stream, dist, csp);
+                let _ = answer(stream, dist, csp, sw_csp);
             });
         }
     });
@@ -320,7 +347,7 @@ fn serve_dir(dist: &Path, port: u16) -> Result {
 /// Answer one request and close the connection. A thread per connection and no keep-alive:
 /// this serves a handful of static files to one local browser, and must never make one request
 /// wait for another.
-fn answer(mut stream: std::net::TcpStream, dist: &Path, csp: &str) -> std::io::Result<()> {
+fn answer(mut stream: std::net::TcpStream, dist: &Path, csp: &str, sw_csp: &str) -> std::io::Result<()> {
     use std::io::{BufRead, BufReader, Read, Write};
     stream.set_read_timeout(Some(std::time::Duration::from_secs(10)))?;
     let mut reader = BufReader::new(stream.try_clone()?.take(64 * 1024));
@@ -339,6 +366,7 @@ fn answer(mut stream: std::net::TcpStream, dist: &Path, csp: &str) -> std::io::R
     let safe = !relative.split('/').any(|part| part == ".." || part.is_empty());
     let file = dist.join(relative);
     let found = if safe && (method == "GET" || method == "HEAD") { std::fs::read(&file).ok() } else { None };
+    let csp = if relative == "sw.js" { sw_csp } else { csp };
     let (status, body, kind) = match found {
         Some(body) => ("200 OK", body, content_type(&file)),
         None => ("404 Not Found", b"not found".to_vec(), "text/plain; charset=utf-8"),
