@@ -77,7 +77,8 @@ impl BitCost {
         let elements = rows * cols;
         let groups = match recipe.granularity {
             Granularity::Tensor => u64::from(elements > 0),
-            Granularity::Row => rows,
+            // An empty row holds no group, as with the other granularities.
+            Granularity::Row => rows * u64::from(cols > 0),
             Granularity::Group(g) => rows * cols.div_ceil(g as u64),
         };
         let bits = u64::from(recipe.format.element_bits(recipe.bits));
@@ -161,6 +162,8 @@ mod tests {
         assert_eq!(r.total_bits, 800 + 10 * (16 + 8));
         let empty = BitCost::of(&Recipe::default(), 0, 10, 16);
         assert_eq!((empty.total_bits, empty.bits_per_weight, empty.ratio_to_source), (0, 0.0, 0.0));
+        let empty_rows = BitCost::of(&Recipe { granularity: Granularity::Row, ..Recipe::default() }, 10, 0, 16);
+        assert_eq!((empty_rows.groups, empty_rows.total_bits), (0, 0));
     }
 
     #[test]

@@ -301,6 +301,9 @@ impl Recipe {
         if self.method == Method::Hqq && self.symmetric {
             return bad("HQQ fits the zero point, so it needs an asymmetric grid".into());
         }
+        if self.method == Method::Hqq && self.scale_dtype == ScaleDType::E8M0 {
+            return bad("HQQ stores its real zero points in the scale's type, and E8M0 holds only powers of two; choose f16, bf16 or f32".into());
+        }
         Ok(())
     }
 
@@ -373,6 +376,7 @@ mod tests {
         assert!(Recipe { granularity: Granularity::Group(4), ..Recipe::default() }.validate().is_err());
         assert!(Recipe { granularity: Granularity::Group(4097), ..Recipe::default() }.validate().is_err());
         assert!(Recipe { method: Method::Hqq, symmetric: true, ..Recipe::default() }.validate().is_err());
+        assert!(Recipe { method: Method::Hqq, scale_dtype: ScaleDType::E8M0, ..Recipe::default() }.validate().is_err());
         assert!(Recipe { keep_cols: 2, keep_frac: 0.01, ..Recipe::default() }.validate().is_err());
         assert!(Recipe { smooth: Some(1.5), ..Recipe::default() }.validate().is_err());
         assert!(Recipe { method: Method::Awq, smooth: Some(0.5), ..Recipe::default() }.validate().is_err());

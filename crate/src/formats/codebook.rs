@@ -40,6 +40,15 @@ pub fn fit(values: &[f32], count: usize) -> Codebook {
     if n == 0 {
         return Codebook { levels: vec![0.0], iterations: 0, mse: 0.0 };
     }
+    // Values with at most `count` distinct members are their own best codebook (zero error).
+    // The quantile start would merge repeated values into fewer levels, which Lloyd–Max never
+    // splits again: 16 values on 16 levels could end on 4, and a codebook run on its own
+    // output would not give it back.
+    let distinct_up_to_one_past_count = 1 + sorted.windows(2).filter(|w| w[0] != w[1]).take(count).count();
+    if distinct_up_to_one_past_count <= count {
+        sorted.dedup();
+        return Codebook { levels: stored(sorted.iter().map(|&v| f64::from(v))), iterations: 0, mse: 0.0 };
+    }
     let mut sum = Vec::with_capacity(n + 1);
     let mut sum_sq = Vec::with_capacity(n + 1);
     let (mut s, mut q) = (0f64, 0f64);
@@ -81,9 +90,14 @@ pub fn fit(values: &[f32], count: usize) -> Codebook {
             break;
         }
     }
-    let mut stored: Vec<f32> = levels.iter().map(|&l| f16::from_f32(l as f32).to_f32()).collect();
+    Codebook { levels: stored(levels.into_iter()), iterations, mse }
+}
+
+/// Levels as stored: f16 values, ascending, without repeats.
+fn stored(levels: impl Iterator<Item = f64>) -> Vec<f32> {
+    let mut stored: Vec<f32> = levels.map(|l| f16::from_f32(l as f32).to_f32()).collect();
     stored.dedup();
-    Codebook { levels: stored, iterations, mse }
+    stored
 }
 
 #[cfg(test)]
@@ -111,6 +125,11 @@ mod tests {
         assert_eq!(fit(&[2.0; 5], 4).levels, vec![2.0]);
         let cb = fit(&[-1.0, -1.0, 3.0, 3.0], 2);
         assert_eq!(cb.levels, vec![-1.0, 3.0]);
+        assert_eq!(cb.mse, 0.0);
+        // 16 distinct values, most of them on two: every value keeps a level of its own.
+        let skewed: Vec<f32> = (0..16).flat_map(|i| vec![i as f32 - 7.5; if i == 7 || i == 8 { 100 } else { 1 }]).collect();
+        let cb = fit(&skewed, 16);
+        assert_eq!(cb.levels, (0..16).map(|i| i as f32 - 7.5).collect::<Vec<_>>());
         assert_eq!(cb.mse, 0.0);
     }
 }

@@ -18,7 +18,7 @@
 use super::keep::Kept;
 use super::{quantize_groups, MethodFigures, Quantized};
 use crate::error::Result;
-use crate::grid::{GroupParams, IntGrid};
+use crate::grid::{round_half_even_small, GroupParams, IntGrid};
 use crate::recipe::Recipe;
 use ndarray::ArrayView2;
 use serde::Serialize;
@@ -46,7 +46,9 @@ pub struct HqqFigures {
 /// HQQ's quantize-dequantize of one value with a real zero point.
 #[inline]
 fn dequantize(p: GroupParams, qmax: f32, v: f32) -> f32 {
-    let q = (v / p.scale + p.zero).round_ties_even().clamp(0.0, qmax);
+    // The grid's own rounding gives +0 where round_ties_even gives −0 (for a zero point of 0
+    // and v just below 0): no code of the packed file decodes to −0.
+    let q = round_half_even_small(v / p.scale + p.zero).clamp(0.0, qmax);
     (q - p.zero) * p.scale
 }
 
