@@ -449,9 +449,12 @@ async function analyze() {
       showResults(result, { fresh: false });
       recordTiming('recipe-to-drawn', started);
       timings.push({ what: 'recipe-compute', ms: bridge.lastComputeMs });
+    } else {
+      restoreShownRecipe();
     }
   } catch (err) {
     showRecipeError(err.message);
+    restoreShownRecipe();
   } finally {
     analysing = false;
     if (again) {
@@ -459,6 +462,14 @@ async function analyze() {
       analyze();
     }
   }
+}
+
+/** After a run that failed or was cancelled, put back the recipe of the results on screen, so
+ * that the controls, the results, the exports and the link describe one recipe. */
+function restoreShownRecipe() {
+  if (!state.result) return;
+  setRecipe(state.result.summary.recipe);
+  showDependentControls();
 }
 
 function showRecipeError(message) {

@@ -1,6 +1,7 @@
 // Shared set-up of the browser tests: Debian's Chromium driven by playwright-core, the page
 // served by `cargo xtask test`, screenshots into the folder the test command prints.
 import { chromium } from 'playwright-core';
+import assert from 'node:assert/strict';
 import { readFileSync } from 'node:fs';
 import path from 'node:path';
 import { fileURLToPath } from 'node:url';
@@ -62,4 +63,61 @@ export async function waitForAnalysis(page, before = '') {
 export function sameOrigin(url) {
   const origin = new URL(URL_UNDER_TEST).origin;
   return url.startsWith('data:') || url.startsWith('blob:') || new URL(url).origin === origin;
+}
+
+/** A little-endian float32 `.npy` file of `rows` × `cols` (layout from numpy's NPY format
+ * documentation, version 1.0), with `valueAt(i)` as its i-th element in C order. */
+export function npyF32(rows, cols, valueAt) {
+  const header = `{'descr': '<f4', 'fortran_order': False, 'shape': (${rows}, ${cols}), }`;
+  const padded = header + ' '.repeat(63 - ((10 + header.length) % 64)) + '\n';
+  const preamble = Buffer.alloc(10);
+  preamble.write('\x93NUMPY', 0, 'latin1');
+  preamble[6] = 1;
+  preamble.writeUInt16LE(padded.length, 8);
+  const data = new Float32Array(rows * cols);
+  for (let i = 0; i < data.length; i++) data[i] = valueAt(i);
+  return Buffer.concat([preamble, Buffer.from(padded, 'latin1'), Buffer.from(data.buffer)]);
+}
+
+/** Everything the page shows of its tensor, calibration, recipe and results: the same before
+ * and after a failure means the failure lost nothing on screen. */
+export async function pageState(page) {
+  return page.evaluate(() => {
+    const el = (id) => document.getElementById(id);
+    const control = (id) => (el(id).type === 'checkbox' ? el(id).checked : el(id).value);
+    const recipeControls = ['format', 'bits', 'granularity', 'symmetric', 'scale-dtype', 'method', 'double-quant', 'damp', 'act-order', 'awq-clip', 'keep', 'smooth-on'];
+    const figures = ['fig-bpw', 'fig-size', 'fig-sqnr', 'fig-rel', 'fig-max', 'fig-output', 'method-figures', 'hist-caption', 'map-caption'];
+    return {
+      tensor: el('tensor-info').textContent,
+      calibration: el('calib-info').textContent,
+      outputErrorShown: !el('fig-output-card').hidden,
+      recipe: Object.fromEntries(recipeControls.map((id) => [id, control(id)])),
+      figures: Object.fromEntries(figures.map((id) => [id, el(id).textContent])),
+      link: location.hash,
+    };
+  });
+}
+
+/** The identity and figures of the downloaded JSON report: what the compute worker holds. */
+export async function reportFigures(page) {
+  const [download] = await Promise.all([page.waitForEvent('download'), page.click('#download-report')]);
+  const chunks = [];
+  for await (const chunk of await download.createReadStream()) chunks.push(chunk);
+  const report = JSON.parse(Buffer.concat(chunks).toString());
+  const { tensor, label, recipe, bits_per_weight, sqnr_db, mse, output_rel_err } = report;
+  return { tensor, label, recipe, bits_per_weight, sqnr_db, mse, output_rel_err };
+}
+
+/**
+ * After a failure: the screen shows exactly what `before` recorded (see `pageState`), the worker
+ * still holds the analysis behind it (its report matches `reportBefore`), and a further recipe
+ * change runs on the same tensor: choosing `bits` shows a result whose label starts `label`.
+ */
+export async function assertNothingLost(page, before, reportBefore, { bits, label }) {
+  assert.deepEqual(await pageState(page), before, 'tensor, calibration, recipe and results on screen are unchanged');
+  assert.deepEqual(await reportFigures(page), reportBefore, 'the worker still holds the analysis on screen');
+  const status = await page.textContent('#status');
+  await page.selectOption('#bits', String(bits));
+  const shown = await waitForAnalysis(page, status);
+  assert.ok(shown.startsWith(label), `after the failure, bits ${bits} show "${shown}", not "${label}…"`);
 }
