@@ -335,6 +335,11 @@ pub fn unpack<S: ByteSource + ?Sized>(src: &S) -> Result<(Vec<usize>, Array2<f32
     let shape: Vec<usize> = serde_json::from_str(metadata.get("shape").ok_or_else(|| bad("no shape in the metadata"))?)
         .map_err(|e| bad(format!("the shape in the metadata is not valid ({e})")))?;
     let (rows, cols) = crate::tensor::view_2d(&shape)?;
+    // Packing needs an analysis, which refuses an empty tensor; an empty shape here could only
+    // size per-row arrays from a dimension that no data bounds.
+    if rows * cols == 0 {
+        return Err(bad(format!("the shape {shape:?} holds no elements")));
+    }
     let entries = read_header(src)?;
     let raw = |name: &str| -> Result<Option<Vec<u8>>> {
         match entries.iter().find(|e| e.name == name) {
@@ -345,7 +350,9 @@ pub fn unpack<S: ByteSource + ?Sized>(src: &S) -> Result<(Vec<usize>, Array2<f32
     let need = |name: &str| -> Result<Vec<u8>> { raw(name)?.ok_or_else(|| bad(format!("the '{name}' tensor is missing"))) };
     let groups = recipe.granularity.group_count(rows, cols);
     let codes = need("codes")?;
-    let expected_code_bytes = (rows * cols * Codec::new(&recipe).bits as usize).div_ceil(8);
+    // rows × cols ≤ MAX_ELEMENTS (view_2d), at most 8 bits each: within 64 bits, and checked
+    // for 32-bit wasm.
+    let expected_code_bytes = (rows * cols).checked_mul(Codec::new(&recipe).bits as usize).ok_or_else(|| bad("the code count overflows"))?.div_ceil(8);
     if codes.len() != expected_code_bytes {
         return Err(bad(format!("'codes' holds {} bytes but {rows}×{cols} codes need {expected_code_bytes}", codes.len())));
     }
@@ -354,7 +361,7 @@ pub fn unpack<S: ByteSource + ?Sized>(src: &S) -> Result<(Vec<usize>, Array2<f32
     if recipe.format == Format::Codebook {
         let levels = scale_values(ScaleDType::F16, &need("codebook")?);
         let per = 1usize << recipe.bits;
-        if levels.len() != per * groups {
+        if Some(levels.len()) != per.checked_mul(groups) {
             return Err(bad("the codebook does not match the recipe"));
         }
         codebooks = levels.chunks(per).map(<[f32]>::to_vec).collect();
@@ -394,12 +401,15 @@ pub fn unpack<S: ByteSource + ?Sized>(src: &S) -> Result<(Vec<usize>, Array2<f32
     if kept_columns.iter().any(|&c| c >= cols) || kept_index.iter().any(|&i| i >= rows * cols) {
         return Err(bad("a kept index lies outside the tensor"));
     }
-    let kept_positions: Vec<(usize, usize)> =
-        kept_columns.iter().flat_map(|&c| (0..rows).map(move |r| (r, c))).chain(kept_index.iter().map(|&i| (i / cols, i % cols))).collect();
     let kept_values = raw("kept_values")?.map(|b| scale_values(ScaleDType::F16, &b)).unwrap_or_default();
-    if kept_values.len() != kept_positions.len() {
+    // Counted before the positions are listed: a few kept columns repeated many times over a
+    // tall tensor would otherwise list far more positions than the file holds values.
+    let kept_count = kept_columns.len().checked_mul(rows).and_then(|n| n.checked_add(kept_index.len()));
+    if kept_count != Some(kept_values.len()) {
         return Err(bad("kept values and their positions differ in number"));
     }
+    let kept_positions: Vec<(usize, usize)> =
+        kept_columns.iter().flat_map(|&c| (0..rows).map(move |r| (r, c))).chain(kept_index.iter().map(|&i| (i / cols, i % cols))).collect();
     let column_factors = raw("column_factors")?.map(|b| scale_values(ScaleDType::F32, &b));
     if column_factors.as_ref().is_some_and(|s| s.len() != cols) {
         return Err(bad("column factors do not match the columns"));
@@ -487,5 +497,37 @@ mod tests {
         assert!(unpack(&plain[..]).is_err());
         let not_ours = write(&[Outgoing { name: "w", dtype: "F32", shape: vec![1], data: 1f32.to_le_bytes().to_vec() }], &BTreeMap::new());
         assert!(unpack(&not_ours[..]).unwrap_err().to_string().contains("bitloupe.packed"));
+    }
+
+    /// A packed file of `recipe` for `shape` holding the given tensors (a hostile writer's).
+    fn forged(recipe: &Recipe, shape: &str, tensors: &[Outgoing]) -> Vec<u8> {
+        let metadata = BTreeMap::from([
+            ("bitloupe.packed".to_string(), LAYOUT.to_string()),
+            ("recipe".to_string(), serde_json::to_string(recipe).unwrap()),
+            ("shape".to_string(), shape.to_string()),
+        ]);
+        write(tensors, &metadata)
+    }
+
+    #[test]
+    fn forged_packed_files_are_refused_before_allocating() {
+        let row = Recipe { granularity: Granularity::Row, symmetric: true, ..Recipe::default() };
+        // No elements, but a row count that would size a scale array of 2^32 entries.
+        let empty = forged(&row, "[4294967296, 0]", &[Outgoing { name: "codes", dtype: "U8", shape: vec![0], data: vec![] }]);
+        assert!(unpack(&empty[..]).unwrap_err().to_string().contains("holds no elements"));
+        // Two kept columns claimed a thousand times over a tall tensor: 2 × 10^8 positions for
+        // no stored value; refused from the counts.
+        let rows = 100_000;
+        let kept = Recipe { keep_cols: 1, ..row };
+        let tall = forged(
+            &kept,
+            &format!("[{rows}, 2]"),
+            &[
+                Outgoing { name: "codes", dtype: "U8", shape: vec![rows], data: vec![0; rows] },
+                Outgoing { name: "scales", dtype: "F16", shape: vec![rows], data: vec![0; 2 * rows] },
+                Outgoing { name: "kept_columns", dtype: "U32", shape: vec![1000], data: vec![0; 4000] },
+            ],
+        );
+        assert!(unpack(&tall[..]).unwrap_err().to_string().contains("differ in number"));
     }
 }

@@ -146,9 +146,10 @@ impl Listing {
     /// The entry to read: by name, or the only one when no name is given.
     pub fn choose(&self, name: Option<&str>) -> Result<&TensorEntry> {
         match name {
+            // Names are shown escaped: a name from a file may hold line breaks, and a message is one line.
             Some(name) => self.entries.iter().find(|e| e.name == name).ok_or_else(|| Error::NoSuchTensor {
-                name: name.to_string(),
-                available: self.entries.iter().take(8).map(|e| e.name.clone()).collect(),
+                name: name.escape_debug().to_string(),
+                available: self.entries.iter().take(8).map(|e| e.name.escape_debug().to_string()).collect(),
             }),
             None if self.entries.len() == 1 => Ok(&self.entries[0]),
             None => Err(Error::TensorNotChosen { count: self.entries.len() }),
@@ -178,16 +179,18 @@ pub fn list<S: ByteSource + ?Sized>(src: &S, opts: ReadOptions) -> Result<Listin
 /// Read one listed tensor's data (its own byte range only) into the 2-D f32 view.
 pub fn read<S: ByteSource + ?Sized>(src: &S, entry: &TensorEntry) -> Result<Tensor> {
     let element = entry.element.ok_or_else(|| Error::UnsupportedDtype {
-        dtype: entry.dtype_label.clone(),
+        dtype: entry.dtype_label.escape_debug().to_string(),
         hint: format!("supported types are {}", DType::SUPPORTED),
     })?;
     let (rows, cols) = view_2d(&entry.shape)?;
     let count = rows * cols;
     let size = element.dtype.size();
-    if entry.bytes != count as u64 * size as u64 {
+    // count ≤ MAX_ELEMENTS and size ≤ 8, so the product fits in 64 bits.
+    let needed = count as u64 * size as u64;
+    if entry.bytes != needed {
         return Err(Error::BadFormat {
             format: "tensor",
-            detail: format!("'{}' has {} bytes but its shape needs {}", entry.name, entry.bytes, count * size),
+            detail: format!("'{}' has {} bytes but its shape needs {needed}", entry.name.escape_debug(), entry.bytes),
         });
     }
     let available = src.len();
@@ -199,7 +202,8 @@ pub fn read<S: ByteSource + ?Sized>(src: &S, entry: &TensorEntry) -> Result<Tens
     let mut raw = vec![0u8; READ_CHUNK_ELEMENTS.min(count) * size];
     for (i, out) in values.chunks_mut(READ_CHUNK_ELEMENTS).enumerate() {
         let bytes = &mut raw[..out.len() * size];
-        src.read_at(entry.offset + (i * READ_CHUNK_ELEMENTS * size) as u64, bytes)?;
+        // Within [offset, offset + bytes), which was checked against the source's length above.
+        src.read_at(entry.offset + (i * READ_CHUNK_ELEMENTS) as u64 * size as u64, bytes)?;
         element.decode(bytes, out);
     }
     if entry.fortran_order && entry.shape.len() > 1 {
@@ -216,19 +220,26 @@ fn fortran_to_c(values: Vec<f32>, shape: &[usize]) -> Vec<f32> {
     array.as_standard_layout().iter().copied().collect()
 }
 
-/// The number of elements of a shape, refusing overflow and sizes past [`MAX_ELEMENTS`].
+/// The number of elements of a shape, refusing shapes this build cannot hold, before anything
+/// is allocated for them.
+///
+/// The cap applies to the product of the non-zero axes, not only to the element count: a shape
+/// such as [2^40, 0] holds nothing, yet its rows would still size per-row arrays, and ndarray
+/// refuses any shape whose non-zero axes overflow `isize`.
 pub fn element_count(shape: &[usize]) -> Result<usize> {
-    let count = shape.iter().try_fold(1usize, |acc, &d| acc.checked_mul(d));
-    match count {
-        Some(count) if count <= MAX_ELEMENTS => Ok(count),
-        Some(count) => Err(Error::BadShape {
-            shape: shape.to_vec(),
-            detail: format!(
-                "its {count} elements need {:.1} GiB as f32, and an analysis about twice that; this build holds at most {MAX_ELEMENTS} elements",
-                count as f64 * 4.0 / (1u64 << 30) as f64
-            ),
-        }),
-        None => Err(Error::BadShape { shape: shape.to_vec(), detail: "its element count overflows".into() }),
+    let extent = shape.iter().filter(|&&d| d != 0).try_fold(1usize, |acc, &d| acc.checked_mul(d));
+    let refused = |detail: String| Err(Error::BadShape { shape: shape.to_vec(), detail });
+    match extent {
+        None => refused("its element count overflows".into()),
+        Some(extent) if extent > MAX_ELEMENTS && shape.contains(&0) => refused(format!(
+            "it holds no elements, but its other axes span {extent}, more than the {MAX_ELEMENTS} this build holds"
+        )),
+        Some(count) if count > MAX_ELEMENTS => refused(format!(
+            "its {count} elements need {:.1} GiB as f32, and an analysis about twice that; this build holds at most {MAX_ELEMENTS} elements",
+            count as f64 * 4.0 / (1u64 << 30) as f64
+        )),
+        Some(_) if shape.contains(&0) => Ok(0),
+        Some(count) => Ok(count),
     }
 }
 
@@ -369,6 +380,58 @@ mod tests {
         assert_eq!(view_2d(&[0, 5]).unwrap(), (0, 5));
         assert_eq!(view_2d(&[5, 0]).unwrap(), (5, 0));
         assert!(matches!(view_2d(&[usize::MAX, 3]), Err(Error::BadShape { .. })));
+    }
+
+    /// Shapes past the cap are refused with their size in the message; a shape that holds no
+    /// element is refused too when its other axes pass the cap (they would size per-row arrays,
+    /// and ndarray refuses non-zero axes whose product overflows isize).
+    #[test]
+    fn shapes_past_the_element_cap_are_refused_with_their_size() {
+        let message = |shape: &[usize]| element_count(shape).unwrap_err().to_string();
+        let over = MAX_ELEMENTS + 1;
+        assert!(message(&[over]).contains(&format!("its {over} elements need")), "{}", message(&[over]));
+        assert!(message(&[over]).contains(&format!("at most {MAX_ELEMENTS} elements")));
+        assert!(message(&[over, 0]).contains(&format!("holds no elements, but its other axes span {over}")));
+        assert!(message(&[0, 1 << 20, 1 << 20, 1 << 20]).contains("holds no elements"));
+        assert!(message(&[1 << 40, 1 << 40, 0]).contains("overflows"));
+        assert_eq!(element_count(&[MAX_ELEMENTS, 0]).unwrap(), 0);
+        assert_eq!(element_count(&[3, 0, 5]).unwrap(), 0);
+        assert_eq!(element_count(&[]).unwrap(), 1);
+    }
+
+    /// A source that claims a huge length and reads as zeros past a real header: the read is
+    /// refused from the shape alone, before any buffer for the values exists.
+    struct Claimed(Vec<u8>, u64);
+
+    impl ByteSource for Claimed {
+        fn len(&self) -> u64 {
+            self.1
+        }
+        fn read_at(&self, offset: u64, buf: &mut [u8]) -> Result<()> {
+            for (i, b) in buf.iter_mut().enumerate() {
+                *b = usize::try_from(offset).ok().and_then(|o| self.0.get(o + i)).copied().unwrap_or(0);
+            }
+            Ok(())
+        }
+    }
+
+    #[test]
+    fn tensors_past_the_cap_list_but_refuse_to_load_before_allocating() {
+        let elements = MAX_ELEMENTS as u64 * 2;
+        let header = format!(r#"{{"big":{{"dtype":"F32","shape":[2,{}],"data_offsets":[0,{}]}}}}"#, elements / 2, elements * 4);
+        let mut bytes = (header.len() as u64).to_le_bytes().to_vec();
+        bytes.extend_from_slice(header.as_bytes());
+        let src = Claimed(bytes, 8 + header.len() as u64 + elements * 4);
+        let listing = list(&src, ReadOptions::default()).unwrap();
+        let message = read(&src, listing.choose(None).unwrap()).unwrap_err().to_string();
+        assert!(message.contains(&format!("its {elements} elements need")), "{message}");
+    }
+
+    #[test]
+    fn names_in_messages_stay_on_one_line() {
+        let listing = Listing { kind: FileKind::Safetensors, entries: vec![] };
+        let message = listing.choose(Some("a\nb")).unwrap_err().to_string();
+        assert!(!message.contains('\n') && message.contains("a\\nb"), "{message}");
     }
 
     #[test]

@@ -12,8 +12,16 @@ use crate::error::{Error, Result};
 /// The six bytes every `.npy` file starts with.
 pub const MAGIC: &[u8] = b"\x93NUMPY";
 
-/// Headers larger than this are refused rather than read into memory.
-const MAX_HEADER_BYTES: u64 = 1 << 20;
+/// Headers larger than this are refused before they are read. A plain array's header is under
+/// 200 bytes (NumPy pads it to 64 or so), and NumPy's own reader refuses more than 10 000 by
+/// default (`numpy.lib.format`'s `max_header_size`, from memory); 1 MiB leaves room for odd
+/// writers while a version 2.0 length field, which can claim 4 GiB, cannot make us allocate it.
+pub const MAX_HEADER_BYTES: u64 = 1 << 20;
+
+/// Deepest nesting of brackets the header parser follows. A real header nests two levels (the
+/// dict and its shape tuple); the parser recurses per level, so a header of a million '[' would
+/// otherwise exhaust the stack (wasm's is 1 MiB) and abort instead of failing.
+const MAX_HEADER_DEPTH: usize = 8;
 
 const FORMAT: &str = "NumPy .npy";
 
@@ -78,7 +86,7 @@ struct HeaderFields {
 
 impl HeaderFields {
     fn parse(text: &str) -> Result<Self> {
-        let mut parser = Literal { text, pos: 0 };
+        let mut parser = Literal { text, pos: 0, depth: 0 };
         let dict = parser.value()?;
         let Value::Dict(items) = dict else { return Err(bad("the header is not a dict")) };
         let get = |key: &str| items.iter().find(|(k, _)| k == key).map(|(_, v)| v);
@@ -115,7 +123,8 @@ impl HeaderFields {
     }
 
     fn element(&self, opts: ReadOptions) -> Result<Option<Element>> {
-        let unsupported = |hint: &str| Error::UnsupportedDtype { dtype: self.descr.clone(), hint: hint.into() };
+        // Escaped: the header is the file's text, and a message must stay on one line.
+        let unsupported = |hint: &str| Error::UnsupportedDtype { dtype: self.descr.escape_debug().to_string(), hint: hint.into() };
         let mut chars = self.descr.chars();
         let order = chars.next().ok_or_else(|| bad("empty 'descr'"))?;
         let big_endian = match order {
@@ -157,6 +166,8 @@ enum Value {
 struct Literal<'a> {
     text: &'a str,
     pos: usize,
+    /// Brackets open at `pos`.
+    depth: usize,
 }
 
 impl Literal<'_> {
@@ -196,21 +207,34 @@ impl Literal<'_> {
         }
     }
 
+    /// Step into a bracket, refusing nesting deeper than any real header has.
+    fn open(&mut self) -> Result<()> {
+        self.depth += 1;
+        if self.depth > MAX_HEADER_DEPTH {
+            return Err(bad(format!("the header nests brackets more than {MAX_HEADER_DEPTH} deep")));
+        }
+        self.pos += 1;
+        Ok(())
+    }
+
     fn value(&mut self) -> Result<Value> {
         match self.peek() {
             Some('{') => {
-                self.pos += 1;
+                self.open()?;
                 let items = self.items('}', |p| {
                     let Value::Str(key) = p.value()? else { return Err(bad("a header key is not a string")) };
                     p.expect(':')?;
                     Ok((key, p.value()?))
                 })?;
+                self.depth -= 1;
                 Ok(Value::Dict(items))
             }
             Some(open @ ('(' | '[')) => {
-                self.pos += 1;
+                self.open()?;
                 let close = if open == '(' { ')' } else { ']' };
-                Ok(Value::List(self.items(close, Self::value)?))
+                let items = self.items(close, Self::value)?;
+                self.depth -= 1;
+                Ok(Value::List(items))
             }
             Some(quote @ ('\'' | '"')) => {
                 let body = &self.text[self.pos + 1..];
@@ -301,6 +325,41 @@ mod tests {
         assert!(HeaderFields::parse("{'descr': '<f4', 'shape': (2,)}").is_err());
         assert!(HeaderFields::parse("{'descr': '<f4', 'fortran_order': False, 'shape': (-2,)}").is_err());
         assert!(HeaderFields::parse("{'descr': '<f4'").is_err());
+    }
+
+    fn npy_v2(header: &str) -> Vec<u8> {
+        let mut out = MAGIC.to_vec();
+        out.extend_from_slice(&[2, 0]);
+        out.extend_from_slice(&(header.len() as u32).to_le_bytes());
+        out.extend_from_slice(header.as_bytes());
+        out
+    }
+
+    /// NEP 1: the header length is a u32 in version 2.0, so a file can claim 4 GiB of header.
+    #[test]
+    fn header_length_past_the_cap_is_refused_before_reading() {
+        let mut file = npy_v2("{}");
+        file[8..12].copy_from_slice(&u32::MAX.to_le_bytes());
+        let message = read_header(&file[..], ReadOptions::default()).unwrap_err().to_string();
+        assert!(message.contains(&format!("claims {} bytes, more than the {MAX_HEADER_BYTES} allowed", u32::MAX)), "{message}");
+    }
+
+    /// NEP 1: the header is a dict literal whose shape is a tuple; deeper nesting is hostile.
+    #[test]
+    fn deeply_nested_headers_are_refused_without_exhausting_the_stack() {
+        let deep = format!("{{'descr': '<f4', 'fortran_order': False, 'shape': {}}}", "(".repeat(200_000));
+        let message = read_header(&npy_v2(&deep)[..], ReadOptions::default()).unwrap_err().to_string();
+        assert!(message.contains("nests brackets more than"), "{message}");
+        assert!(HeaderFields::parse("{'descr': '<f4', 'fortran_order': False, 'shape': ((2,),)}").is_err(), "nesting within the cap still parses, then fails on content");
+    }
+
+    /// A header that lies about the size: its shape needs more bytes than the file holds.
+    #[test]
+    fn shapes_larger_than_the_data_are_refused() {
+        let file = npy_v2("{'descr': '<f4', 'fortran_order': False, 'shape': (1000, 1000), }");
+        let needed = file.len() as u64 + 4_000_000;
+        let error = read_header(&file[..], ReadOptions::default()).unwrap_err();
+        assert_eq!(error, Error::Truncated { what: "array data", needed, available: file.len() as u64 });
     }
 
     #[test]

@@ -5,13 +5,20 @@
 //! `data_offsets` [begin, end) relative to the byte after the header (plus an optional
 //! `__metadata__` map of strings), then the data, little-endian and row-major. Listing reads the
 //! header alone; a tensor is then read from its own byte range.
+//!
+//! The same description promises that "addresses in the file do not overlap in any way", so a
+//! reader never holds more than the file's size; a header whose ranges overlap, leave the data
+//! or disagree with dtype × shape is refused whole. Gaps between ranges are tolerated. Listing
+//! does not apply the tool's element cap ([`super::MAX_ELEMENTS`]): a shard may hold tensors
+//! too large to analyse and still be costed from its header; reading one refuses it.
 
-use super::{element_count, read_range, ByteSource, DType, Element, TensorEntry};
+use super::{read_range, ByteSource, DType, Element, TensorEntry};
 use crate::error::{Error, Result};
 use serde_json::Value;
 
-/// Headers larger than this are refused before they are read (the format's reference
-/// implementation uses the same 100 MB bound).
+/// Headers larger than this are refused before they are read: the format's description sets
+/// the same 100 MB bound against headers built to exhaust memory (a JSON tree costs several
+/// times its text). A shard's real header is a few hundred bytes per tensor.
 pub const MAX_HEADER_BYTES: u64 = 100_000_000;
 
 const FORMAT: &str = "safetensors";
@@ -40,17 +47,23 @@ fn element_of(label: &str) -> (Option<usize>, Option<Element>) {
     (Some(dtype.size()), Some(Element::little(dtype)))
 }
 
-/// List every tensor from the header alone.
-pub fn read_header<S: ByteSource + ?Sized>(src: &S) -> Result<Vec<TensorEntry>> {
+/// The header as JSON, and where the data starts.
+fn header<S: ByteSource + ?Sized>(src: &S) -> Result<(Value, u64)> {
     let size_field = read_range(src, 0, 8, "header size")?;
     let header_len = u64::from_le_bytes(size_field.try_into().expect("eight bytes"));
     if header_len > MAX_HEADER_BYTES {
         return Err(bad(format!("the header claims {header_len} bytes, more than the {MAX_HEADER_BYTES} allowed")));
     }
-    let header = read_range(src, 8, header_len, "header")?;
-    let data_start = 8 + header_len;
+    let text = read_range(src, 8, header_len, "header")?;
+    let json = serde_json::from_slice(&text).map_err(|e| bad(format!("the header is not valid JSON ({e})")))?;
+    Ok((json, 8 + header_len))
+}
+
+/// List every tensor from the header alone.
+pub fn read_header<S: ByteSource + ?Sized>(src: &S) -> Result<Vec<TensorEntry>> {
+    let (json, data_start) = header(src)?;
+    // header() has read up to data_start, so the source is at least that long.
     let data_len = src.len() - data_start;
-    let json: Value = serde_json::from_slice(&header).map_err(|e| bad(format!("the header is not valid JSON ({e})")))?;
     let Value::Object(map) = json else { return Err(bad("the header is not a JSON object")) };
     let mut entries = Vec::with_capacity(map.len());
     for (name, info) in &map {
@@ -59,44 +72,75 @@ pub fn read_header<S: ByteSource + ?Sized>(src: &S) -> Result<Vec<TensorEntry>> 
         }
         entries.push(entry(name, info, data_start, data_len)?);
     }
+    refuse_overlaps(&entries)?;
     Ok(entries)
 }
 
+/// Refuse two tensors that share a byte (empty tensors share none).
+fn refuse_overlaps(entries: &[TensorEntry]) -> Result<()> {
+    let mut ranges: Vec<&TensorEntry> = entries.iter().filter(|e| e.bytes > 0).collect();
+    ranges.sort_unstable_by_key(|e| e.offset);
+    for pair in ranges.windows(2) {
+        let (a, b) = (pair[0], pair[1]);
+        // Both ranges were checked to end within the source, so these sums do not overflow.
+        if a.offset + a.bytes > b.offset {
+            return Err(bad(format!(
+                "tensors '{}' and '{}' overlap (bytes {}..{} and {}..{} of the file)",
+                a.name.escape_debug(),
+                b.name.escape_debug(),
+                a.offset,
+                a.offset + a.bytes,
+                b.offset,
+                b.offset + b.bytes
+            )));
+        }
+    }
+    Ok(())
+}
+
 fn entry(name: &str, info: &Value, data_start: u64, data_len: u64) -> Result<TensorEntry> {
-    let field = |key: &str| info.get(key).ok_or_else(|| bad(format!("tensor '{name}' has no '{key}'")));
+    // Names are shown escaped: they come from the file, and a message must stay on one line.
+    let shown = name.escape_debug();
+    let field = |key: &str| info.get(key).ok_or_else(|| bad(format!("tensor '{shown}' has no '{key}'")));
     let dtype_label = field("dtype")?
         .as_str()
-        .ok_or_else(|| bad(format!("tensor '{name}' has a dtype that is not a string")))?
+        .ok_or_else(|| bad(format!("tensor '{shown}' has a dtype that is not a string")))?
         .to_string();
     let shape = field("shape")?
         .as_array()
         .and_then(|dims| dims.iter().map(|d| d.as_u64().and_then(|d| usize::try_from(d).ok())).collect::<Option<Vec<_>>>())
-        .ok_or_else(|| bad(format!("tensor '{name}' has a shape that is not a list of sizes")))?;
+        .ok_or_else(|| bad(format!("tensor '{shown}' has a shape that is not a list of sizes")))?;
     let offsets = field("data_offsets")?
         .as_array()
         .and_then(|o| match o.as_slice() {
             [b, e] => Some((b.as_u64()?, e.as_u64()?)),
             _ => None,
         })
-        .ok_or_else(|| bad(format!("tensor '{name}' has data_offsets that are not two byte positions")))?;
+        .ok_or_else(|| bad(format!("tensor '{shown}' has data_offsets that are not two byte positions")))?;
     let (begin, end) = offsets;
-    if begin > end || end > data_len {
-        return Err(Error::Truncated {
-            what: "tensor data",
-            needed: data_start.saturating_add(end.max(begin)),
-            available: data_start + data_len,
-        });
+    if begin > end {
+        return Err(bad(format!("tensor '{shown}' has data_offsets [{begin}, {end}] that end before they begin")));
     }
+    if end > data_len {
+        return Err(Error::Truncated { what: "tensor data", needed: data_start.saturating_add(end), available: data_start + data_len });
+    }
+    let bytes = end - begin;
+    let count = shape.iter().try_fold(1u64, |acc, &d| acc.checked_mul(d as u64));
+    let shown_dtype = dtype_label.escape_debug();
     let (itemsize, element) = element_of(&dtype_label);
-    if let Some(itemsize) = itemsize {
-        let count = element_count(&shape)? as u64;
-        if count.checked_mul(itemsize as u64) != Some(end - begin) {
+    match (count, itemsize) {
+        (None, _) => return Err(bad(format!("tensor '{shown}' has a shape {shape:?} whose element count overflows"))),
+        (Some(count), Some(itemsize)) if count.checked_mul(itemsize as u64) != Some(bytes) => {
             return Err(bad(format!(
-                "tensor '{name}' has {} bytes of data but its shape {shape:?} of {dtype_label} needs {}",
-                end - begin,
+                "tensor '{shown}' has {bytes} bytes of data but its shape {shape:?} of {shown_dtype} needs {}",
                 count.saturating_mul(itemsize as u64)
-            )));
+            )))
         }
+        // A dtype this reader does not know still has at least one bit per element.
+        (Some(count), None) if count > bytes.saturating_mul(8) => {
+            return Err(bad(format!("tensor '{shown}' has {bytes} bytes of data, too few for the {count} elements of its shape {shape:?}")))
+        }
+        _ => {}
     }
     Ok(TensorEntry {
         name: name.to_string(),
@@ -104,24 +148,19 @@ fn entry(name: &str, info: &Value, data_start: u64, data_len: u64) -> Result<Ten
         element,
         shape,
         offset: data_start + begin,
-        bytes: end - begin,
+        bytes,
         fortran_order: false,
     })
 }
 
 /// The `__metadata__` map of a `.safetensors` file (empty when it has none).
 pub fn read_metadata<S: ByteSource + ?Sized>(src: &S) -> Result<std::collections::BTreeMap<String, String>> {
-    let size_field = read_range(src, 0, 8, "header size")?;
-    let header_len = u64::from_le_bytes(size_field.try_into().expect("eight bytes"));
-    if header_len > MAX_HEADER_BYTES {
-        return Err(bad(format!("the header claims {header_len} bytes, more than the {MAX_HEADER_BYTES} allowed")));
-    }
-    let header = read_range(src, 8, header_len, "header")?;
-    let json: Value = serde_json::from_slice(&header).map_err(|e| bad(format!("the header is not valid JSON ({e})")))?;
+    let (json, _) = header(src)?;
     let mut out = std::collections::BTreeMap::new();
     if let Some(Value::Object(meta)) = json.get("__metadata__") {
         for (k, v) in meta {
-            out.insert(k.clone(), v.as_str().ok_or_else(|| bad(format!("metadata '{k}' is not a string")))?.to_string());
+            let text = v.as_str().ok_or_else(|| bad(format!("metadata '{}' is not a string", k.escape_debug())))?;
+            out.insert(k.clone(), text.to_string());
         }
     }
     Ok(out)
@@ -186,8 +225,9 @@ mod tests {
         for v in [1.5f32, -2.0] {
             data.extend_from_slice(&v.to_le_bytes());
         }
+        data.push(1);
         let bytes = file(
-            r#"{"__metadata__":{"k":"v"},"w":{"dtype":"F32","shape":[1,2],"data_offsets":[2,10]},"m":{"dtype":"I8","shape":[2],"data_offsets":[0,2]},"b":{"dtype":"BOOL","shape":[1],"data_offsets":[0,1]}}"#,
+            r#"{"__metadata__":{"k":"v"},"w":{"dtype":"F32","shape":[1,2],"data_offsets":[2,10]},"m":{"dtype":"I8","shape":[2],"data_offsets":[0,2]},"b":{"dtype":"BOOL","shape":[1],"data_offsets":[10,11]}}"#,
             &data,
         );
         let listing = tensor::list(&bytes[..], ReadOptions::default()).unwrap();
@@ -240,5 +280,40 @@ mod tests {
         assert!(matches!(read_header(cut), Err(Error::Truncated { .. })));
         let not_json = file("{nope", &[]);
         assert!(matches!(read_header(&not_json[..]), Err(Error::BadFormat { .. })));
+        let backwards = file(r#"{"w":{"dtype":"F32","shape":[0],"data_offsets":[8,0]}}"#, &[0; 8]);
+        assert!(read_header(&backwards[..]).unwrap_err().to_string().contains("end before they begin"));
+        let overflowing = file(r#"{"w":{"dtype":"F32","shape":[4294967296,4294967296,4294967296],"data_offsets":[0,8]}}"#, &[0; 8]);
+        assert!(read_header(&overflowing[..]).unwrap_err().to_string().contains("element count overflows"));
+        let unknown_type = file(r#"{"w":{"dtype":"X9","shape":[100],"data_offsets":[0,8]}}"#, &[0; 8]);
+        assert!(read_header(&unknown_type[..]).unwrap_err().to_string().contains("too few for the 100 elements"));
+    }
+
+    /// The format's description: "addresses in the file do not overlap in any way".
+    #[test]
+    fn refuses_overlapping_ranges_and_accepts_gaps_and_empty_tensors() {
+        let overlapping = file(
+            r#"{"a":{"dtype":"U8","shape":[6],"data_offsets":[0,6]},"b":{"dtype":"U8","shape":[4],"data_offsets":[4,8]}}"#,
+            &[0; 8],
+        );
+        let message = read_header(&overlapping[..]).unwrap_err().to_string();
+        assert!(message.contains("tensors 'a' and 'b' overlap"), "{message}");
+        let same = file(r#"{"a":{"dtype":"U8","shape":[4],"data_offsets":[0,4]},"b":{"dtype":"I8","shape":[4],"data_offsets":[0,4]}}"#, &[0; 4]);
+        assert!(read_header(&same[..]).is_err());
+        let gaps_and_empty = file(
+            r#"{"a":{"dtype":"U8","shape":[2],"data_offsets":[0,2]},"e":{"dtype":"F32","shape":[0,3],"data_offsets":[1,1]},"b":{"dtype":"U8","shape":[2],"data_offsets":[4,6]}}"#,
+            &[0; 6],
+        );
+        assert_eq!(read_header(&gaps_and_empty[..]).unwrap().len(), 3);
+    }
+
+    #[test]
+    fn names_and_types_from_the_file_stay_on_one_line_in_messages() {
+        let odd = file("{\"line\\nbreak\":{\"dtype\":\"F32\",\"shape\":[3],\"data_offsets\":[0,4]}}", &[0; 4]);
+        let message = read_header(&odd[..]).unwrap_err().to_string();
+        assert!(!message.contains('\n') && message.contains("line\\nbreak"), "{message}");
+        let odd_type = file("{\"w\":{\"dtype\":\"F\\n1\",\"shape\":[1],\"data_offsets\":[0,4]}}", &[0; 4]);
+        let listing = tensor::list(&odd_type[..], ReadOptions::default()).unwrap();
+        let message = tensor::read(&odd_type[..], &listing.entries[0]).unwrap_err().to_string();
+        assert!(!message.contains('\n'), "{message}");
     }
 }

@@ -45,6 +45,9 @@ pub fn parse(text: &str) -> Result<Tensor> {
         }
     }
     let n_rows = rows.len();
+    // The rows hold about one f32 per two characters of text; the flat copy is refused here,
+    // before it is made, when it would pass the element cap (the page's wasm memory).
+    super::element_count(&[n_rows, cols])?;
     let values: Vec<f32> = rows.into_iter().flat_map(|r| r.values).collect();
     let values = Array2::from_shape_vec((n_rows, cols), values).expect("rows checked equal");
     Ok(Tensor::from_values(PASTED_NAME, DType::F32, values))
