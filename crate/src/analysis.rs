@@ -190,11 +190,14 @@ impl RowObserver for Measure {
     fn row(&self, block: &mut BlockSums, r: usize, x: &[f32], x_hat: &[f32]) {
         let first = if self.whole_tensor { 0 } else { (r % ROW_BLOCK) * self.per_row };
         for (k, (xg, og)) in x.chunks(self.width).zip(x_hat.chunks(self.width)).enumerate() {
-            let index = if self.whole_tensor { 0 } else { first + k };
-            block.groups[index].add(xg, og);
+            let sums = &mut block.groups[if self.whole_tensor { 0 } else { first + k }];
+            match &mut block.columns {
+                Some(columns) => sums.add_with_columns(xg, og, columns, k * self.width),
+                None => sums.add(xg, og),
+            }
         }
         if let Some(columns) = &mut block.columns {
-            columns.add_row(x, x_hat);
+            columns.end_row();
         }
     }
 }

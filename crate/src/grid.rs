@@ -13,6 +13,7 @@
 
 use crate::error::Error;
 use crate::recipe::{Recipe, ScaleDType};
+use crate::simd::{quads, quads_mut, F32x4};
 
 /// The fitted parameters of one group.
 #[derive(Debug, Clone, Copy, PartialEq)]
@@ -68,9 +69,19 @@ impl IntGrid {
         Ok(GroupParams { scale, zero })
     }
 
-    /// Quantize and dequantize `x` into `out` (the fast kernel).
+    /// Quantize and dequantize `x` into `out` (the fast kernel; the same arithmetic as
+    /// [`IntGrid::dequantize_one`], four values at a time).
     pub fn quantize_into(&self, p: GroupParams, x: &[f32], out: &mut [f32]) {
-        for (o, &v) in out.iter_mut().zip(x) {
+        let (scale, zero) = (F32x4::splat(p.scale), F32x4::splat(p.zero));
+        let (qmin, qmax) = (F32x4::splat(self.qmin), F32x4::splat(self.qmax));
+        let (low, high, magic) = (F32x4::splat(-ROUNDING_LIMIT), F32x4::splat(ROUNDING_LIMIT), F32x4::splat(ROUNDING_MAGIC));
+        let ((xs, x_rest), (outs, out_rest)) = (quads(x), quads_mut(out));
+        for (o, v) in outs.iter_mut().zip(xs) {
+            let y = (F32x4::load(v) / scale).max(low).min(high);
+            let q = (y + magic - magic + zero).max(qmin).min(qmax);
+            ((q - zero) * scale).store(o);
+        }
+        for (o, &v) in out_rest.iter_mut().zip(x_rest) {
             *o = self.dequantize_one(p, v);
         }
     }
@@ -90,27 +101,28 @@ impl IntGrid {
 
 /// Smallest and largest value of a slice ((0, 0) for an empty one, which then gets scale 1).
 pub fn min_max(x: &[f32]) -> (f32, f32) {
-    // Eight independent lanes let the compiler vectorise the reduction.
-    let mut lo = [0f32; 8];
-    let mut hi = [0f32; 8];
-    let chunks = x.chunks_exact(8);
-    let tail = chunks.remainder();
-    // Plain comparisons rather than f32::min/max (whose NaN rules block one-instruction
-    // vector code): the tensor was checked to be finite before any group is fitted.
-    for chunk in chunks {
-        for i in 0..8 {
-            lo[i] = if chunk[i] < lo[i] { chunk[i] } else { lo[i] };
-            hi[i] = if chunk[i] > hi[i] { chunk[i] } else { hi[i] };
+    // Two vectors of lanes keep two independent chains in flight. The lane `max`/`min` skip a
+    // NaN, like the tail's `f32::min`/`max`; the tensor's finiteness is checked elsewhere.
+    let zero = F32x4::splat(0.0);
+    let (mut lo, mut hi) = ([zero; 2], [zero; 2]);
+    let (octets, rest) = x.as_chunks::<8>();
+    for octet in octets {
+        let halves = [octet.first_chunk::<4>().expect("8 values"), octet.last_chunk::<4>().expect("8 values")];
+        for (half, values) in halves.into_iter().enumerate() {
+            let v = F32x4::load(values);
+            lo[half] = lo[half].min(v);
+            hi[half] = hi[half].max(v);
         }
     }
-    let mut lo = lo.iter().copied().fold(0f32, f32::min);
-    let mut hi = hi.iter().copied().fold(0f32, f32::max);
-    for &v in tail {
-        lo = lo.min(v);
-        hi = hi.max(v);
-    }
+    let lo = lo[0].min(lo[1]).to_array().into_iter().chain(rest.iter().copied()).fold(0f32, f32::min);
+    let hi = hi[0].max(hi[1]).to_array().into_iter().chain(rest.iter().copied()).fold(0f32, f32::max);
     (lo, hi)
 }
+
+/// 1.5 · 2^23: adding and subtracting it rounds an f32 below 2^22 in magnitude to an integer.
+const ROUNDING_MAGIC: f32 = 12_582_912.0;
+/// 2^20: the clamp that keeps [`ROUNDING_MAGIC`] exact.
+const ROUNDING_LIMIT: f32 = 1_048_576.0;
 
 /// Round half to even for values whose result is later clamped to a small code range.
 ///
@@ -120,9 +132,7 @@ pub fn min_max(x: &[f32]) -> (f32, f32) {
 /// a library call on targets without a rounding instruction.
 #[inline(always)]
 pub(crate) fn round_half_even_small(y: f32) -> f32 {
-    const MAGIC: f32 = 12_582_912.0; // 1.5 · 2^23
-    const LIMIT: f32 = 1_048_576.0; // 2^20
-    (y.clamp(-LIMIT, LIMIT) + MAGIC) - MAGIC
+    (y.clamp(-ROUNDING_LIMIT, ROUNDING_LIMIT) + ROUNDING_MAGIC) - ROUNDING_MAGIC
 }
 
 #[cfg(test)]

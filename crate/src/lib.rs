@@ -22,6 +22,7 @@ pub mod packed;
 pub mod recipe;
 pub mod report;
 pub mod rows;
+pub mod simd;
 pub mod sizing;
 pub mod sweep;
 pub mod tensor;

@@ -10,6 +10,7 @@
 //! [`OUTLIER_SCORE`] or more marks an outlier column). Sums run in f32 over short blocks
 //! and then in f64, so their relative rounding error stays near 1e-6 at worst.
 
+use crate::simd::{F32x4, LANES};
 use serde::Serialize;
 
 /// Columns whose largest magnitude is at least this many times the median column's are marked
@@ -25,8 +26,13 @@ fn larger(a: f32, b: f32) -> f32 {
     if b > a { b } else { a }
 }
 
-fn lane_sum(lanes: &[f32; 8]) -> f64 {
-    lanes.iter().map(|&v| f64::from(v)).sum()
+/// Columns `at..at + len` of `c` in groups of eight.
+fn octets(c: &mut [f32], at: usize, len: usize) -> &mut [[f32; 8]] {
+    c[at..at + len].as_chunks_mut::<8>().0
+}
+
+fn lane_sum(low: &[f32; 4], high: &[f32; 4]) -> f64 {
+    low.iter().chain(high).map(|&v| f64::from(v)).sum()
 }
 
 /// Running sums for one set of elements (a group or the whole tensor).
@@ -45,31 +51,74 @@ pub struct ErrorSums {
 impl ErrorSums {
     /// Add the elements of `x` and their reconstruction `x_hat` (finite values).
     pub fn add(&mut self, x: &[f32], x_hat: &[f32]) {
-        // Eight f32 lanes over blocks of at most 256 elements let the loop vectorise; each
-        // block's lane sums (32 terms at most) then go into the f64 totals, which keeps the
-        // relative rounding error of the sums near 1e-6 at worst.
-        for (xb, hb) in x.chunks(SUM_BLOCK).zip(x_hat.chunks(SUM_BLOCK)) {
-            let mut err = [0f32; 8];
-            let mut sig = [0f32; 8];
-            let mut max = [0f32; 8];
-            let (xc, hc) = (xb.chunks_exact(8), hb.chunks_exact(8));
-            let (xt, ht) = (xc.remainder(), hc.remainder());
-            for (a, b) in xc.zip(hc) {
-                let (a, b): (&[f32; 8], &[f32; 8]) = (a.try_into().expect("8 lanes"), b.try_into().expect("8 lanes"));
-                for i in 0..8 {
-                    let e = a[i] - b[i];
-                    err[i] += e * e;
-                    sig[i] += a[i] * a[i];
-                    max[i] = larger(max[i], e.abs());
+        self.add_measuring::<false>(x, x_hat, &mut [], &mut [], &mut []);
+    }
+
+    /// [`ErrorSums::add`], also adding each element to its column's sums (element j to column j):
+    /// one pass over the data while it is in cache.
+    pub fn add_with_columns(&mut self, x: &[f32], x_hat: &[f32], columns: &mut ColumnBlock, first_col: usize) {
+        let span = first_col..first_col + x.len();
+        let (max, sq, err) = (&mut columns.max_abs[span.clone()], &mut columns.sum_sq[span.clone()], &mut columns.sum_sq_err[span]);
+        self.add_measuring::<true>(x, x_hat, max, sq, err);
+    }
+
+    #[inline(always)]
+    fn add_measuring<const COLUMNS: bool>(&mut self, x: &[f32], x_hat: &[f32], col_max: &mut [f32], col_sq: &mut [f32], col_err: &mut [f32]) {
+        // Eight f32 lanes (two vectors) over blocks of at most 256 elements; each block's lane
+        // sums (32 terms at most) then go into the f64 totals, which keeps the relative
+        // rounding error of the sums near 1e-6 at worst.
+        for (b, (xb, hb)) in x.chunks(SUM_BLOCK).zip(x_hat.chunks(SUM_BLOCK)).enumerate() {
+            let zero = F32x4::splat(0.0);
+            let (mut err, mut sig, mut max) = ([zero; 2], [zero; 2], [zero; 2]);
+            let at = b * SUM_BLOCK;
+            let ((x8, x_rest), (h8, h_rest)) = (xb.as_chunks::<8>(), hb.as_chunks::<8>());
+            let whole = xb.len() - x_rest.len();
+            // Both halves of eight values: the error and signal lanes, and what a column adds.
+            let mut step = |xo: &[f32; 8], ho: &[f32; 8]| {
+                let (xs, hs) = (xo.as_chunks::<4>().0, ho.as_chunks::<4>().0);
+                let mut seen = [(zero, zero, zero); 2];
+                for half in 0..2 {
+                    let a = F32x4::load(&xs[half]);
+                    let e = a - F32x4::load(&hs[half]);
+                    let (e2, a2) = (e * e, a * a);
+                    err[half] = err[half] + e2;
+                    sig[half] = sig[half] + a2;
+                    max[half] = max[half].max(e.abs());
+                    seen[half] = (a.abs(), a2, e2);
+                }
+                seen
+            };
+            if COLUMNS {
+                let columns = octets(col_max, at, whole).iter_mut().zip(octets(col_sq, at, whole)).zip(octets(col_err, at, whole));
+                for ((xo, ho), ((m, sq), e)) in x8.iter().zip(h8).zip(columns) {
+                    let seen = step(xo, ho);
+                    let (m, sq, e) = (m.as_chunks_mut::<4>().0, sq.as_chunks_mut::<4>().0, e.as_chunks_mut::<4>().0);
+                    for (half, (abs, a2, e2)) in seen.into_iter().enumerate() {
+                        F32x4::load(&m[half]).max(abs).store(&mut m[half]);
+                        (F32x4::load(&sq[half]) + a2).store(&mut sq[half]);
+                        (F32x4::load(&e[half]) + e2).store(&mut e[half]);
+                    }
+                }
+            } else {
+                for (xo, ho) in x8.iter().zip(h8) {
+                    step(xo, ho);
                 }
             }
-            for (i, (&a, &b)) in xt.iter().zip(ht).enumerate() {
-                let e = a - b;
-                err[i] += e * e;
-                sig[i] += a * a;
-                max[i] = larger(max[i], e.abs());
+            let mut lanes = [err[0].to_array(), err[1].to_array(), sig[0].to_array(), sig[1].to_array(), max[0].to_array(), max[1].to_array()];
+            for (i, (&a, &h)) in x_rest.iter().zip(h_rest).enumerate() {
+                let e = a - h;
+                let (half, lane) = (i / LANES, i % LANES);
+                lanes[half][lane] += e * e;
+                lanes[2 + half][lane] += a * a;
+                lanes[4 + half][lane] = larger(lanes[4 + half][lane], e.abs());
+                if COLUMNS {
+                    let c = at + whole + i;
+                    col_max[c] = larger(col_max[c], a.abs());
+                    col_sq[c] += a * a;
+                    col_err[c] += e * e;
+                }
             }
-            let (block_err, block_sig) = (lane_sum(&err), lane_sum(&sig));
+            let (block_err, block_sig) = (lane_sum(&lanes[0], &lanes[1]), lane_sum(&lanes[2], &lanes[3]));
             if block_err.is_finite() && block_sig.is_finite() {
                 self.sum_sq_err += block_err;
                 self.sum_sq += block_sig;
@@ -82,7 +131,7 @@ impl ErrorSums {
                     self.sum_sq += f64::from(a) * f64::from(a);
                 }
             }
-            self.max_abs_err = max.iter().copied().fold(self.max_abs_err, larger);
+            self.max_abs_err = lanes[4].iter().chain(&lanes[5]).copied().fold(self.max_abs_err, larger);
         }
         self.count += x.len();
     }
@@ -180,15 +229,8 @@ impl ColumnBlock {
         ColumnBlock { rows: 0, max_abs: vec![0.0; cols], sum_sq: vec![0.0; cols], sum_sq_err: vec![0.0; cols] }
     }
 
-    /// Add one row and its reconstruction (finite values).
-    pub fn add_row(&mut self, x: &[f32], x_hat: &[f32]) {
-        let columns = self.max_abs.iter_mut().zip(self.sum_sq.iter_mut()).zip(self.sum_sq_err.iter_mut());
-        for (((max, sq), err), (&a, &b)) in columns.zip(x.iter().zip(x_hat)) {
-            *max = larger(*max, a.abs());
-            *sq += a * a;
-            let e = a - b;
-            *err += e * e;
-        }
+    /// Count one more row, once all its groups went through [`ErrorSums::add_with_columns`].
+    pub fn end_row(&mut self) {
         self.rows += 1;
     }
 }
@@ -333,8 +375,14 @@ mod tests {
     #[test]
     fn columns_score_outliers_against_the_median() {
         let mut block = ColumnBlock::new(5);
-        block.add_row(&[1.0, 1.0, 10.0, -1.0, 1.0], &[1.0, 1.0, 9.0, -1.0, 1.0]);
-        block.add_row(&[-1.0, 0.5, 2.0, 1.0, 0.0], &[-1.0, 0.5, 2.0, 1.0, 0.0]);
+        let mut sums = ErrorSums::default();
+        // Row one in two groups (columns 0–2 and 3–4), row two in one.
+        sums.add_with_columns(&[1.0, 1.0, 10.0], &[1.0, 1.0, 9.0], &mut block, 0);
+        sums.add_with_columns(&[-1.0, 1.0], &[-1.0, 1.0], &mut block, 3);
+        block.end_row();
+        sums.add_with_columns(&[-1.0, 0.5, 2.0, 1.0, 0.0], &[-1.0, 0.5, 2.0, 1.0, 0.0], &mut block, 0);
+        block.end_row();
+        assert_eq!(sums.count, 10);
         let mut c = ColumnSums::new(5);
         c.add_block(&block);
         let f = c.figures();

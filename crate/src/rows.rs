@@ -41,23 +41,23 @@ fn wave() -> usize {
 /// Apply `work(first_row, rows_of_out)` to every block of a row-major `[rows, cols]` buffer,
 /// returning the blocks' results in row order and calling `progress(rows done, rows)` between
 /// waves of blocks.
-pub fn map_blocks_mut<R: Send>(
-    out: &mut [f32],
+pub fn map_blocks_mut<T: Send, R: Send>(
+    out: &mut [T],
     cols: usize,
     progress: &mut dyn FnMut(usize, usize),
-    work: impl Fn(usize, &mut [f32]) -> R + Sync + Send,
+    work: impl Fn(usize, &mut [T]) -> R + Sync + Send,
 ) -> Vec<R> {
     map_chunks_mut(out, cols, ROW_BLOCK, progress, work)
 }
 
 /// [`map_blocks_mut`] over chunks of `chunk_rows` rows (a fixed constant of the caller, so that
 /// the split never depends on the thread count).
-pub fn map_chunks_mut<R: Send>(
-    out: &mut [f32],
+pub fn map_chunks_mut<T: Send, R: Send>(
+    out: &mut [T],
     cols: usize,
     chunk_rows: usize,
     progress: &mut dyn FnMut(usize, usize),
-    work: impl Fn(usize, &mut [f32]) -> R + Sync + Send,
+    work: impl Fn(usize, &mut [T]) -> R + Sync + Send,
 ) -> Vec<R> {
     if out.is_empty() || cols == 0 {
         return Vec::new();

@@ -188,7 +188,7 @@ pub fn quantize(
                 let mut loss = 0f64;
                 for i in 0..count {
                     let orig = perm[i1 + i];
-                    if dynamic_groups && orig % width == 0 {
+                    if dynamic_groups && orig.is_multiple_of(width) {
                         let end = (i + width).min(count);
                         fit_values(&mut scratch, r, &mut (i..end).map(|j| (orig + j - i, w_row[j])));
                         chunk_params[i_row * per_row + orig / width] = grid.fit(&scratch).map_err(overflow(r, orig))?;

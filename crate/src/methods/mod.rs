@@ -282,16 +282,19 @@ pub fn quantize_groups<T: Send, O: RowObserver>(
         }
         _ => (None, Vec::new()),
     };
-    let mut out = Array2::<f32>::zeros((rows, cols));
-    let blocks = rows::map_blocks_mut(out.as_slice_mut().expect("fresh array"), cols, progress, |first, out_block| {
+    // Each row is built in a small buffer that stays in cache while the observer reads it, then
+    // copied once into the output, which is therefore written exactly once (never zeroed first).
+    let mut out = Vec::<f32>::with_capacity(rows * cols);
+    let blocks = rows::map_blocks_mut(&mut out.spare_capacity_mut()[..rows * cols], cols, progress, |first, out_block| {
         let block_rows = out_block.len() / cols;
         let mut params = Vec::new();
         let mut block_notes = Vec::new();
         let mut seen = observer.start(first, block_rows);
+        let mut row = vec![0f32; cols];
         for (i, out_row) in out_block.chunks_mut(cols).enumerate() {
             let r = first + i;
             let x_row = &all[r * cols..(r + 1) * cols];
-            for (k, (x, o)) in x_row.chunks(width).zip(out_row.chunks_mut(width)).enumerate() {
+            for (k, (x, o)) in x_row.chunks(width).zip(row.chunks_mut(width)).enumerate() {
                 let p = match whole {
                     Some(p) => p,
                     None => {
@@ -303,7 +306,8 @@ pub fn quantize_groups<T: Send, O: RowObserver>(
                 };
                 quantize(p, x, o, k * width);
             }
-            observer.row(&mut seen, r, x_row, out_row);
+            observer.row(&mut seen, r, x_row, &row);
+            out_row.write_copy_of_slice(&row);
         }
         Ok::<_, Error>((params, block_notes, seen))
     });
@@ -316,6 +320,10 @@ pub fn quantize_groups<T: Send, O: RowObserver>(
         notes.extend(n);
         observed.push(seen);
     }
+    // SAFETY: every block returned Ok, so each copied its whole row buffer (always initialised)
+    // into every one of its rows: all rows × cols values are written.
+    unsafe { out.set_len(rows * cols) };
+    let out = Array2::from_shape_vec((rows, cols), out).expect("rows × cols values");
     Ok(Grouped { out, params, notes, observed })
 }
 
