@@ -89,19 +89,6 @@ test('a compute worker that stops without a word: the waiting run can be cancell
   await context.close();
 });
 
-test('a cancelled GPTQ run puts back the recipe of the results on screen', async () => {
-  const { page, context } = await withDemoCalibration();
-  const before = await pageState(page);
-  const reportBefore = await reportFigures(page);
-  await page.selectOption('#method', 'gptq');
-  await page.waitForSelector('#busy:not([hidden])');
-  await page.click('#cancel');
-  await page.waitForFunction(() => document.getElementById('status').textContent.startsWith('Cancelled'));
-  assert.equal(await page.inputValue('#method'), 'rtn', 'the controls describe the results again');
-  await assertNothingLost(page, before, reportBefore, { bits: 3, label: 'int3 asym g128 f16 on demo' });
-  await context.close();
-});
-
 /** A Content-Security-Policy as { directive: [sources] } (CSP Level 3 serialisation). */
 function directives(policy) {
   return Object.fromEntries(policy.split(';').map((d) => d.trim().split(/\s+/)).filter((d) => d[0]).map(([name, ...sources]) => [name, sources]));
