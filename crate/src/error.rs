@@ -41,6 +41,13 @@ pub enum Error {
         /// A few names that do exist, to help the user.
         available: Vec<String>,
     },
+    /// A name pattern that takes no tensor of the files given.
+    NothingSelected {
+        /// The pattern as given.
+        pattern: String,
+        /// What left the tensors out.
+        detail: String,
+    },
     /// The file holds several tensors and the caller did not say which.
     TensorNotChosen {
         /// How many tensors the file holds.
@@ -120,6 +127,7 @@ impl fmt::Display for Error {
                 }
                 Ok(())
             }
+            Error::NothingSelected { pattern, detail } => write!(f, "no tensor is selected by '{pattern}': {detail}"),
             Error::TensorNotChosen { count } => write!(
                 f,
                 "the file holds {count} tensors; choose one by name (for example with --tensor)"

@@ -10,6 +10,7 @@
 
 pub mod analysis;
 pub mod calib;
+pub mod checkpoint;
 pub mod cost;
 pub mod demo;
 pub mod error;
