@@ -205,3 +205,179 @@ fn packed_export_unpacks_to_the_dequantized_tensor() {
     assert_eq!(text(&out.stderr).lines().count(), 1);
     assert!(!dir.path().join("never.npy").exists());
 }
+
+/// A .safetensors file written with bitloupe's own writer: (name, F32 shape, values) each, plus
+/// optional extra tensors of other types, as (name, dtype, shape, bytes).
+fn write_checkpoint(path: &Path, floats: &[(&str, Vec<usize>, Vec<f32>)], others: &[(&str, &'static str, Vec<usize>, Vec<u8>)]) {
+    use bitloupe::tensor::safetensors::{write, Outgoing};
+    let mut tensors: Vec<Outgoing> = floats
+        .iter()
+        .map(|(name, shape, values)| Outgoing { name, dtype: "F32", shape: shape.clone(), data: values.iter().flat_map(|v| v.to_le_bytes()).collect() })
+        .collect();
+    tensors.extend(others.iter().map(|(name, dtype, shape, data)| Outgoing { name, dtype, shape: shape.clone(), data: data.clone() }));
+    std::fs::write(path, write(&tensors, &Default::default())).unwrap();
+}
+
+fn normal_values(count: usize, seed: u64, scale: f32) -> Vec<f32> {
+    let mut rng = bitloupe::demo::Rng::new(seed);
+    (0..count).map(|_| rng.normal() as f32 * scale).collect()
+}
+
+/// `report` over two files: every quantized row equals a single `quantize --report` of the same
+/// tensor (bits per weight, bits and MSE to the last digit), the totals equal the sums computed
+/// here from those single reports and the written values (definitions: `report --help`), and
+/// the CSV carries the same rows and a total row.
+#[test]
+fn report_rows_equal_single_quantizations_and_totals_their_sums() {
+    let dir = tempfile::tempdir().unwrap();
+    let (a, b) = (dir.path().join("a.safetensors"), dir.path().join("b.safetensors"));
+    let tensors_a = [("layers.0.proj.weight", vec![24, 96], normal_values(24 * 96, 1, 0.02)), ("layers.0.norm.weight", vec![96], normal_values(96, 2, 1.0))];
+    // A second scale, 50x larger, so that the weighted totals differ from plain means.
+    let tensors_b = [("layers.1.proj.weight", vec![40, 64], normal_values(40 * 64, 3, 1.0)), ("layers.1.conv.weight", vec![8, 2, 48], normal_values(8 * 96, 4, 0.02))];
+    write_checkpoint(&a, &tensors_a, &[("layers.0.position", "I8", vec![4], vec![0, 1, 2, 3])]);
+    write_checkpoint(&b, &tensors_b, &[]);
+    let (json, csv) = (dir.path().join("r.json"), dir.path().join("r.csv"));
+    let recipe = ["--bits", "3", "--group", "32", "--sym"];
+    let mut args = vec!["report", path_str(&a), path_str(&b), "--json", path_str(&json), "--csv", path_str(&csv)];
+    args.extend(recipe);
+    let out = bitloupe(&args);
+    let stderr = text(&out.stderr);
+    assert!(out.status.success(), "{stderr}");
+    assert!(stderr.contains("3 tensor(s) quantized, 2 skipped, 0 failed") && stderr.contains("proxy"), "{stderr}");
+    assert!(!stderr.contains('\r') && !stderr.contains('\x1b'), "no progress bar when stderr is not a terminal: {stderr:?}");
+    assert!(out.stdout.is_empty(), "both outputs went to files");
+    let doc: Value = serde_json::from_str(&std::fs::read_to_string(&json).unwrap()).unwrap();
+    assert_eq!(doc["schema"], "bitloupe.checkpoint/1");
+    assert_eq!(doc["label"], "int3 sym g32 f16");
+    let rows = doc["rows"].as_array().unwrap();
+    assert_eq!(rows.len(), 5);
+    let (mut params, mut bits, mut sum_sq_err, mut sum_sq) = (0u64, 0u64, 0f64, 0f64);
+    for (file, (name, _, values)) in tensors_a.iter().map(|t| (&a, t)).chain(tensors_b.iter().map(|t| (&b, t))) {
+        let row = rows.iter().find(|r| r["name"] == *name).unwrap();
+        assert_eq!(row["file"], path_str(file));
+        if *name == "layers.0.norm.weight" {
+            assert_eq!(row["status"], "skipped");
+            assert!(row["note"].as_str().unwrap().starts_with("1-D"), "{row}");
+            continue;
+        }
+        assert_eq!(row["status"], "quantized", "{row}");
+        let single = dir.path().join("single.json");
+        let mut args = vec!["quantize", path_str(file), "--tensor", name, "--report", path_str(&single)];
+        args.extend(recipe);
+        let q = bitloupe(&args);
+        assert!(q.status.success(), "{}", text(&q.stderr));
+        let one: Value = serde_json::from_str(&std::fs::read_to_string(&single).unwrap()).unwrap();
+        for key in ["bits_per_weight", "total_bits", "mse", "sqnr_db", "rel_fro_err", "max_abs_err"] {
+            assert_eq!(row[key], one[key], "{name} {key}");
+        }
+        params += values.len() as u64;
+        bits += one["total_bits"].as_u64().unwrap();
+        sum_sq_err += one["mse"].as_f64().unwrap() * values.len() as f64;
+        sum_sq += values.iter().map(|&x| f64::from(x) * f64::from(x)).sum::<f64>();
+    }
+    let position = rows.iter().find(|r| r["name"] == "layers.0.position").unwrap();
+    assert_eq!((position["status"].as_str(), position["dtype"].as_str()), (Some("skipped"), Some("i8")));
+    let totals = &doc["totals"];
+    assert_eq!(totals["params"].as_u64(), Some(params));
+    assert_eq!(totals["total_bits"].as_u64(), Some(bits));
+    assert_eq!(totals["bits_per_weight"].as_f64(), Some(bits as f64 / params as f64));
+    let close = |key: &str, want: f64| {
+        let got = totals[key].as_f64().unwrap();
+        assert!((got - want).abs() <= 1e-9 * want.abs(), "{key}: {got} vs {want}");
+    };
+    close("mse", sum_sq_err / params as f64);
+    close("rel_fro_err", (sum_sq_err / sum_sq).sqrt());
+    close("sqnr_db", 10.0 * (sum_sq / sum_sq_err).log10());
+    // The norm scale (96 f32) and the position tensor (4 i8) stay as stored.
+    assert_eq!((totals["other_params"].as_u64(), totals["other_bits"].as_u64()), (Some(100), Some(96 * 32 + 4 * 8)));
+
+    let table = std::fs::read_to_string(&csv).unwrap();
+    let lines: Vec<&str> = table.lines().collect();
+    assert_eq!(lines[0], "file,name,shape,dtype,params,status,bits_per_weight,total_bits,mse,sqnr_db,rel_fro_err,max_abs_err,note");
+    assert_eq!(lines.len(), 1 + 5 + 1);
+    let total: Vec<&str> = lines[6].split(',').collect();
+    assert_eq!((total[4], total[5], total[7]), (params.to_string().as_str(), "total", bits.to_string().as_str()));
+    assert!(lines.iter().any(|l| l.contains(",layers.1.conv.weight,8x2x48,f32,768,quantized,")), "{table}");
+}
+
+/// Same figures on one thread as on every core (rows are merged in a fixed order: rows.rs), and
+/// the default output is the CSV on standard output.
+#[test]
+fn report_is_the_same_on_one_thread_and_prints_csv_by_default() {
+    let dir = tempfile::tempdir().unwrap();
+    let file = dir.path().join("m.safetensors");
+    write_checkpoint(&file, &[("w", vec![200, 160], normal_values(200 * 160, 5, 0.1))], &[]);
+    let run = |threads: &str| bitloupe(&["report", path_str(&file), "--threads", threads, "--method", "hqq"]);
+    let (one, all) = (run("1"), run("0"));
+    assert!(one.status.success(), "{}", text(&one.stderr));
+    assert!(text(&one.stdout).starts_with("file,name,shape"), "{}", text(&one.stdout));
+    assert_eq!(text(&one.stdout), text(&all.stdout));
+}
+
+/// The pattern and --include-1d pick tensors of the multi-type fixture; a tensor that fails is a
+/// row with its message, the report is still written and the exit status is 3 (report --help).
+#[test]
+fn report_selection_and_a_failing_tensor() {
+    let dir = tempfile::tempdir().unwrap();
+    let multi = fixture("multi.safetensors");
+    let out = bitloupe(&["report", path_str(&multi), "--pattern", "block.*.weight", "--json", "-"]);
+    assert!(out.status.success(), "{}", text(&out.stderr));
+    let doc: Value = serde_json::from_str(&text(&out.stdout)).unwrap();
+    let status = |doc: &Value, name: &str| doc["rows"].as_array().unwrap().iter().find(|r| r["name"] == name).unwrap()["status"].clone();
+    assert_eq!(status(&doc, "block.0.attn.q.weight"), "quantized");
+    assert_eq!(status(&doc, "block.10.norm.scale"), "skipped");
+    assert_eq!(doc["totals"]["quantized_tensors"], 3);
+    let out = bitloupe(&["report", path_str(&multi), "--pattern", "*.norm.*", "--include-1d", "--json", "-"]);
+    assert!(out.status.success(), "{}", text(&out.stderr));
+    let doc: Value = serde_json::from_str(&text(&out.stdout)).unwrap();
+    assert_eq!(status(&doc, "block.10.norm.scale"), "quantized");
+    assert_eq!(doc["totals"]["params"], 6);
+
+    let file = dir.path().join("nan.safetensors");
+    let mut bad = normal_values(64, 6, 1.0);
+    bad[10] = f32::NAN;
+    write_checkpoint(&file, &[("bad", vec![2, 32], bad), ("good", vec![2, 32], normal_values(64, 7, 1.0))], &[]);
+    let json = dir.path().join("r.json");
+    let out = bitloupe(&["report", path_str(&file), "--json", path_str(&json)]);
+    assert_eq!(out.status.code(), Some(3), "{}", text(&out.stderr));
+    assert!(text(&out.stderr).contains("failed bad in"), "{}", text(&out.stderr));
+    let doc: Value = serde_json::from_str(&std::fs::read_to_string(&json).unwrap()).unwrap();
+    assert_eq!(status(&doc, "bad"), "failed");
+    assert!(doc["rows"][0]["note"].as_str().unwrap().contains("1 NaN"), "{}", doc["rows"][0]);
+    assert_eq!((doc["totals"]["failed_tensors"].as_u64(), doc["totals"]["params"].as_u64()), (Some(1), Some(64)));
+}
+
+/// Inputs that stop a report: exit status 1, one line, and no output file (not even the one
+/// that could have been written).
+#[test]
+fn report_failures_write_nothing() {
+    let dir = tempfile::tempdir().unwrap();
+    let good = dir.path().join("good.safetensors");
+    write_checkpoint(&good, &[("w", vec![4, 32], normal_values(128, 8, 1.0))], &[]);
+    let bad = dir.path().join("bad.safetensors");
+    std::fs::write(&bad, b"\x10\x00\x00\x00\x00\x00\x00\x00{not json at all").unwrap();
+    let json = dir.path().join("r.json");
+    let cases: Vec<(Vec<&str>, &str)> = vec![
+        (vec![path_str(&good), path_str(&bad)], "bad.safetensors: not a valid"),
+        (vec![path_str(&good), "/no/such/file.safetensors"], "cannot open"),
+        (vec![path_str(&good), "--pattern", "*.bias"], "no tensor is selected by '*.bias'"),
+        (vec![path_str(&good), "--method", "gptq"], "GPTQ needs calibration"),
+        (vec![path_str(&good), "--bits", "9"], "9 bits"),
+        (vec![path_str(&good), "--csv", "/no/such/dir/r.csv"], "cannot write"),
+        (vec![path_str(&good), "--csv", "-", "--json", "-"], "only one of --json and --csv"),
+    ];
+    for (mut args, needle) in cases {
+        args.insert(0, "report");
+        if !args.contains(&"--json") {
+            args.extend(["--json", path_str(&json)]);
+        }
+        let out = bitloupe(&args);
+        let stderr = text(&out.stderr);
+        assert_eq!(out.status.code(), Some(1), "{args:?}: {stderr}");
+        assert_eq!(stderr.lines().count(), 1, "{args:?}: {stderr}");
+        assert!(stderr.contains(needle), "{args:?}: expected '{needle}' in: {stderr}");
+        assert!(!json.exists(), "{args:?} left an output behind");
+        let leftovers = std::fs::read_dir(dir.path()).unwrap().filter_map(|e| e.ok()).filter(|e| e.file_name().to_string_lossy().contains("partial")).count();
+        assert_eq!(leftovers, 0, "{args:?} left a partial file");
+    }
+}

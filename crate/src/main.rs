@@ -19,7 +19,10 @@ mod cli {
     use bitloupe::recipe::Method;
     use bitloupe::sweep::{self, ParetoBy, SweepSpec};
     use bitloupe::{analyze_with, Granularity, ReadOptions, Recipe, ScaleDType, Tensor};
+    use bitloupe::checkpoint::{self, Progress, Selection, Shard};
     use clap::{Args, Parser, Subcommand};
+    use indicatif::{ProgressBar, ProgressDrawTarget, ProgressStyle};
+    use std::io::IsTerminal;
     use std::path::{Path, PathBuf};
     use std::process::ExitCode;
 
@@ -127,6 +130,10 @@ mod cli {
             #[arg(long, value_name = "OUT.json")]
             json: Option<PathBuf>,
         },
+        /// Run one recipe over every selected tensor of one or more .safetensors files (a
+        /// checkpoint's shards) and write one row per tensor plus whole-model totals.
+        #[command(after_help = REPORT_HELP)]
+        Report(ReportArgs),
         /// Write the built-in demo weight (seeded, invented) as a .npy file, and optionally its
         /// matching activation sample.
         Demo {
@@ -137,6 +144,49 @@ mod cli {
             #[arg(long, value_name = "ACTS.npy")]
             activations: Option<PathBuf>,
         },
+    }
+
+    const REPORT_HELP: &str = "\
+Tensors are taken strictly one at a time: peak memory is about three f32 copies of the largest
+selected tensor, whatever the size of the checkpoint, and each tensor's analysis runs on every
+thread (its rows split into fixed blocks merged in order, so the figures never depend on
+--threads). Tensors left out (name not matching, 1-D, integer or unsupported types, empty) are
+rows with status 'skipped' and the reason; a tensor that cannot be read or quantized is a row
+with status 'failed' and its message, and the run goes on.
+
+Totals, over the quantized tensors: bits per weight = their bits / their weights; MSE = their
+summed squared error / their weights (the weight-weighted mean of the tensors' MSE); relative
+error = sqrt(sum of (x - x')^2 / sum of x^2) over all of them, the whole-model figure.
+
+Exit status: 0 when every selected tensor was quantized; 3 when the report was written but some
+selected tensor failed; 1 when no report was written (bad file, recipe or selection); 2 for bad
+usage. A progress bar is drawn on standard error when it is a terminal.
+
+Per-tensor error is only a proxy: check any recipe on the model's own task before deploying it.";
+
+    #[derive(Args)]
+    struct ReportArgs {
+        /// The .safetensors files (the shards of one checkpoint, or several checkpoints).
+        #[arg(required = true, value_name = "FILE")]
+        files: Vec<PathBuf>,
+        /// Tensors to quantize, by name; '*' stands for any text (e.g. 'layers.*.weight').
+        #[arg(long, value_name = "PATTERN", default_value = "*")]
+        pattern: String,
+        /// Also quantize 1-D tensors and scalars (norm scales, biases), left as stored by default.
+        #[arg(long)]
+        include_1d: bool,
+        #[command(flatten)]
+        recipe: RecipeArgs,
+        /// Threads for each tensor's analysis (0: one per core).
+        #[arg(long, value_name = "N", default_value_t = 0)]
+        threads: usize,
+        /// Write the report as JSON ('-' for standard output).
+        #[arg(long, value_name = "OUT.json|-")]
+        json: Option<PathBuf>,
+        /// Write one CSV row per tensor and a total row ('-' for standard output; the default
+        /// when neither --json nor --csv is given).
+        #[arg(long, value_name = "OUT.csv|-")]
+        csv: Option<PathBuf>,
     }
 
     #[derive(Args)]
@@ -259,7 +309,7 @@ mod cli {
     pub fn main() -> ExitCode {
         let cli = Cli::parse();
         match run(cli.command) {
-            Ok(()) => ExitCode::SUCCESS,
+            Ok(code) => code,
             Err(Failure(message)) => {
                 eprintln!("bitloupe: {message}");
                 ExitCode::FAILURE
@@ -267,8 +317,10 @@ mod cli {
         }
     }
 
-    fn run(command: Command) -> Result<(), Failure> {
-        match command {
+    fn run(command: Command) -> Result<ExitCode, Failure> {
+        let done = match command {
+            // The one command whose exit status says more than success or failure.
+            Command::Report(args) => return report(args),
             Command::Inspect { file, read } => {
                 let (_, listing) = open(&file, read.options())?;
                 print!("{}", describe(&listing));
@@ -370,6 +422,88 @@ mod cli {
                     outputs.push((path, as_npy(&bitloupe::demo::activations())));
                 }
                 write_all_or_nothing(&outputs)
+            }
+        };
+        done.map(|()| ExitCode::SUCCESS)
+    }
+
+    /// Exit status of a report written with some selected tensor failed (see REPORT_HELP).
+    const SOME_TENSOR_FAILED: u8 = 3;
+
+    fn report(args: ReportArgs) -> Result<ExitCode, Failure> {
+        let recipe = args.recipe.recipe()?;
+        let is_stdout = |path: &Option<PathBuf>| path.as_deref() == Some(Path::new("-"));
+        if is_stdout(&args.json) && is_stdout(&args.csv) {
+            return Err(Failure("only one of --json and --csv can go to standard output ('-')".into()));
+        }
+        if args.threads > 0 {
+            rayon::ThreadPoolBuilder::new()
+                .num_threads(args.threads)
+                .build_global()
+                .map_err(|e| Failure(format!("--threads {}: {e}", args.threads)))?;
+        }
+        let opened = args.files.iter().map(|path| open(path, ReadOptions::default())).collect::<Result<Vec<_>, _>>()?;
+        let shards: Vec<Shard<std::fs::File>> = args
+            .files
+            .iter()
+            .zip(&opened)
+            .map(|(path, (file, listing))| Shard { label: path.display().to_string(), source: file, listing: listing.clone() })
+            .collect();
+        let selection = Selection { pattern: args.pattern, include_1d: args.include_1d };
+        let mut bar = ReportBar::new();
+        let report = checkpoint::run(&shards, &selection, &recipe, &mut |p| bar.show(p));
+        bar.clear();
+        let report = report?;
+
+        let mut outputs = Vec::new();
+        let mut to_stdout = String::new();
+        let csv = if args.json.is_none() && args.csv.is_none() { Some(PathBuf::from("-")) } else { args.csv };
+        for (path, text) in [(args.json, report.to_json() + "\n"), (csv, report.to_csv())] {
+            match path {
+                Some(path) if path == Path::new("-") => to_stdout = text,
+                Some(path) => outputs.push((path, text.into_bytes())),
+                None => {}
+            }
+        }
+        write_all_or_nothing(&outputs)?;
+        print!("{to_stdout}");
+        eprint!("{}", report.summary());
+        Ok(if report.totals.failed_tensors > 0 { ExitCode::from(SOME_TENSOR_FAILED) } else { ExitCode::SUCCESS })
+    }
+
+    /// The progress bar of a report: drawn on standard error only when it is a terminal, so
+    /// pipes, files and tests get no control characters.
+    struct ReportBar {
+        bar: Option<ProgressBar>,
+        tensor: (usize, String),
+    }
+
+    impl ReportBar {
+        fn new() -> Self {
+            ReportBar { bar: None, tensor: (usize::MAX, String::new()) }
+        }
+
+        fn show(&mut self, p: &Progress) {
+            let bar = self.bar.get_or_insert_with(|| {
+                let target = if std::io::stderr().is_terminal() { ProgressDrawTarget::stderr() } else { ProgressDrawTarget::hidden() };
+                let bar = ProgressBar::with_draw_target(Some(p.bytes), target);
+                let style = ProgressStyle::with_template("{elapsed_precise} [{bar:30}] {binary_bytes}/{binary_total_bytes} eta {eta} {msg}")
+                    .expect("a fixed, valid template")
+                    .progress_chars("=> ");
+                bar.set_style(style);
+                bar
+            });
+            bar.set_position(p.bytes_done);
+            // A new message only when the tensor changes: set_message allocates and redraws.
+            if (p.tensors_done, p.current) != (self.tensor.0, self.tensor.1.as_str()) {
+                self.tensor = (p.tensors_done, p.current.to_string());
+                bar.set_message(format!("tensor {}/{} {}", (p.tensors_done + 1).min(p.tensors), p.tensors, p.current.escape_debug()));
+            }
+        }
+
+        fn clear(&self) {
+            if let Some(bar) = &self.bar {
+                bar.finish_and_clear();
             }
         }
     }
