@@ -108,8 +108,28 @@ pub enum Error {
     },
 }
 
+/// Writes through to a formatter on one line: messages quote text from files, pastes and
+/// options, and a line break there would split the one line a front end prints, so control
+/// characters are written as escapes (`\n`).
+struct OneLine<'a, 'b>(&'a mut fmt::Formatter<'b>);
+
+impl fmt::Write for OneLine<'_, '_> {
+    fn write_str(&mut self, text: &str) -> fmt::Result {
+        for ch in text.chars() {
+            if ch.is_control() {
+                write!(self.0, "{}", ch.escape_default())?;
+            } else {
+                fmt::Write::write_char(self.0, ch)?;
+            }
+        }
+        Ok(())
+    }
+}
+
 impl fmt::Display for Error {
     fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        use fmt::Write as _;
+        let f = &mut OneLine(f);
         match self {
             Error::Io { message } => write!(f, "could not read the data: {message}"),
             Error::Truncated { what, needed, available } => write!(

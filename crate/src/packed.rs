@@ -102,7 +102,7 @@ impl Codec {
 
 fn push_bits(stream: &mut Vec<u8>, used: &mut usize, value: u32, bits: u32) {
     for i in 0..bits {
-        if *used % 8 == 0 {
+        if used.is_multiple_of(8) {
             stream.push(0);
         }
         if value >> i & 1 == 1 {

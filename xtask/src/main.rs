@@ -3,8 +3,8 @@
 //! * `serve [--port N]`: install what is missing, build the page into `dist/`, serve it on
 //!   127.0.0.1 (the main command of the README);
 //! * `build`: the same without serving;
-//! * `test`: install what is missing and run every test: native, wasm under Node, and the
-//!   browser tests in headless Chromium;
+//! * `test`: install what is missing and run every test: native, a short pass of every fuzz
+//!   target, wasm under Node, and the browser tests in headless Chromium;
 //! * `bench`: the native benchmarks.
 //!
 //! Every tool the project needs is installed here when missing, so a fresh machine needs only
@@ -392,6 +392,7 @@ fn test() -> Result {
     ensure_node()?;
     step("native tests");
     run(Command::new("cargo").args(["test", "--workspace"]).current_dir(&root))?;
+    fuzz_smoke(&root)?;
     step("wasm32 tests under Node (wasm-bindgen-test)");
     run(Command::new("cargo")
         .args(["test", "-p", "bitloupe", "--target", "wasm32-unknown-unknown", "--test", "wasm_boundary"])
@@ -413,6 +414,59 @@ fn test() -> Result {
         .env("BITLOUPE_SINGLE_FILE", dist.join("bitloupe.html"))
         .current_dir(&root))?;
     eprintln!("\nscreenshots of the page's main states: {}", shots.display());
+    Ok(())
+}
+
+/// The fuzz targets of `fuzz/Cargo.toml`.
+const FUZZ_TARGETS: [&str; 6] = ["npy", "safetensors", "text", "calib", "unpack", "recipe"];
+
+/// Seconds each target runs in the smoke pass (after replaying its seeds and regressions).
+const FUZZ_SMOKE_SECONDS: u32 = 5;
+
+fn ensure_cargo_fuzz() -> Result {
+    if output(Command::new("rustup").args(["run", "nightly", "rustc", "--version"])).is_none() {
+        step("installing the nightly toolchain (libFuzzer's instrumentation needs it)");
+        run(Command::new("rustup").args(["toolchain", "install", "nightly", "--profile", "minimal"]))?;
+    }
+    if output(Command::new("cargo").args(["fuzz", "--version"])).is_none() {
+        step("installing cargo-fuzz");
+        run(Command::new("cargo").args(["install", "cargo-fuzz"]))?;
+    }
+    Ok(())
+}
+
+/// Run every fuzz target for a few seconds over its seeds and every saved crasher, so the
+/// targets keep building and no fixed crash comes back. An unoptimised build without a
+/// sanitizer (the core is safe Rust; overflow checks stay on) keeps this to about a minute;
+/// the long runs use the defaults (fuzz/README.md).
+fn fuzz_smoke(root: &Path) -> Result {
+    ensure_cargo_fuzz()?;
+    step("fuzz smoke pass: each target over its seeds and regressions, then a few seconds of fuzzing");
+    let scratch = root.join("target").join("fuzz-smoke");
+    for target in FUZZ_TARGETS {
+        let corpus = scratch.join("corpus").join(target);
+        let artifacts = scratch.join("artifacts").join(target);
+        for dir in [&corpus, &artifacts] {
+            std::fs::create_dir_all(dir).map_err(|e| format!("{}: {e}", dir.display()))?;
+        }
+        let fuzz = root.join("fuzz");
+        run(Command::new("rustup")
+            .args(["run", "nightly", "cargo", "fuzz", "run", "--dev", "--sanitizer", "none", "--target-dir"])
+            .arg(scratch.join("build"))
+            .arg(target)
+            .arg(&corpus)
+            .arg(fuzz.join("seeds").join(target))
+            .arg(fuzz.join("regressions").join(target))
+            .arg("--")
+            .arg(format!("-max_total_time={FUZZ_SMOKE_SECONDS}"))
+            .args(["-rss_limit_mb=2048", "-timeout=10"])
+            .arg(format!("-artifact_prefix={}/", artifacts.display()))
+            // `cargo xtask` runs under the stable toolchain; let rustup choose nightly's tools.
+            .env_remove("RUSTUP_TOOLCHAIN")
+            .env_remove("RUSTC")
+            .env_remove("CARGO")
+            .current_dir(&fuzz))?;
+    }
     Ok(())
 }
 

@@ -146,10 +146,9 @@ impl Listing {
     /// The entry to read: by name, or the only one when no name is given.
     pub fn choose(&self, name: Option<&str>) -> Result<&TensorEntry> {
         match name {
-            // Names are shown escaped: a name from a file may hold line breaks, and a message is one line.
             Some(name) => self.entries.iter().find(|e| e.name == name).ok_or_else(|| Error::NoSuchTensor {
-                name: name.escape_debug().to_string(),
-                available: self.entries.iter().take(8).map(|e| e.name.escape_debug().to_string()).collect(),
+                name: name.to_string(),
+                available: self.entries.iter().take(8).map(|e| e.name.clone()).collect(),
             }),
             None if self.entries.len() == 1 => Ok(&self.entries[0]),
             None => Err(Error::TensorNotChosen { count: self.entries.len() }),
@@ -179,7 +178,7 @@ pub fn list<S: ByteSource + ?Sized>(src: &S, opts: ReadOptions) -> Result<Listin
 /// Read one listed tensor's data (its own byte range only) into the 2-D f32 view.
 pub fn read<S: ByteSource + ?Sized>(src: &S, entry: &TensorEntry) -> Result<Tensor> {
     let element = entry.element.ok_or_else(|| Error::UnsupportedDtype {
-        dtype: entry.dtype_label.escape_debug().to_string(),
+        dtype: entry.dtype_label.clone(),
         hint: format!("supported types are {}", DType::SUPPORTED),
     })?;
     let (rows, cols) = view_2d(&entry.shape)?;
@@ -190,7 +189,7 @@ pub fn read<S: ByteSource + ?Sized>(src: &S, entry: &TensorEntry) -> Result<Tens
     if entry.bytes != needed {
         return Err(Error::BadFormat {
             format: "tensor",
-            detail: format!("'{}' has {} bytes but its shape needs {needed}", entry.name.escape_debug(), entry.bytes),
+            detail: format!("'{}' has {} bytes but its shape needs {needed}", entry.name, entry.bytes),
         });
     }
     let available = src.len();

@@ -123,8 +123,7 @@ impl HeaderFields {
     }
 
     fn element(&self, opts: ReadOptions) -> Result<Option<Element>> {
-        // Escaped: the header is the file's text, and a message must stay on one line.
-        let unsupported = |hint: &str| Error::UnsupportedDtype { dtype: self.descr.escape_debug().to_string(), hint: hint.into() };
+        let unsupported = |hint: &str| Error::UnsupportedDtype { dtype: self.descr.clone(), hint: hint.into() };
         let mut chars = self.descr.chars();
         let order = chars.next().ok_or_else(|| bad("empty 'descr'"))?;
         let big_endian = match order {

@@ -86,8 +86,8 @@ fn refuse_overlaps(entries: &[TensorEntry]) -> Result<()> {
         if a.offset + a.bytes > b.offset {
             return Err(bad(format!(
                 "tensors '{}' and '{}' overlap (bytes {}..{} and {}..{} of the file)",
-                a.name.escape_debug(),
-                b.name.escape_debug(),
+                a.name,
+                b.name,
                 a.offset,
                 a.offset + a.bytes,
                 b.offset,
@@ -99,46 +99,43 @@ fn refuse_overlaps(entries: &[TensorEntry]) -> Result<()> {
 }
 
 fn entry(name: &str, info: &Value, data_start: u64, data_len: u64) -> Result<TensorEntry> {
-    // Names are shown escaped: they come from the file, and a message must stay on one line.
-    let shown = name.escape_debug();
-    let field = |key: &str| info.get(key).ok_or_else(|| bad(format!("tensor '{shown}' has no '{key}'")));
+    let field = |key: &str| info.get(key).ok_or_else(|| bad(format!("tensor '{name}' has no '{key}'")));
     let dtype_label = field("dtype")?
         .as_str()
-        .ok_or_else(|| bad(format!("tensor '{shown}' has a dtype that is not a string")))?
+        .ok_or_else(|| bad(format!("tensor '{name}' has a dtype that is not a string")))?
         .to_string();
     let shape = field("shape")?
         .as_array()
         .and_then(|dims| dims.iter().map(|d| d.as_u64().and_then(|d| usize::try_from(d).ok())).collect::<Option<Vec<_>>>())
-        .ok_or_else(|| bad(format!("tensor '{shown}' has a shape that is not a list of sizes")))?;
+        .ok_or_else(|| bad(format!("tensor '{name}' has a shape that is not a list of sizes")))?;
     let offsets = field("data_offsets")?
         .as_array()
         .and_then(|o| match o.as_slice() {
             [b, e] => Some((b.as_u64()?, e.as_u64()?)),
             _ => None,
         })
-        .ok_or_else(|| bad(format!("tensor '{shown}' has data_offsets that are not two byte positions")))?;
+        .ok_or_else(|| bad(format!("tensor '{name}' has data_offsets that are not two byte positions")))?;
     let (begin, end) = offsets;
     if begin > end {
-        return Err(bad(format!("tensor '{shown}' has data_offsets [{begin}, {end}] that end before they begin")));
+        return Err(bad(format!("tensor '{name}' has data_offsets [{begin}, {end}] that end before they begin")));
     }
     if end > data_len {
         return Err(Error::Truncated { what: "tensor data", needed: data_start.saturating_add(end), available: data_start + data_len });
     }
     let bytes = end - begin;
     let count = shape.iter().try_fold(1u64, |acc, &d| acc.checked_mul(d as u64));
-    let shown_dtype = dtype_label.escape_debug();
     let (itemsize, element) = element_of(&dtype_label);
     match (count, itemsize) {
-        (None, _) => return Err(bad(format!("tensor '{shown}' has a shape {shape:?} whose element count overflows"))),
+        (None, _) => return Err(bad(format!("tensor '{name}' has a shape {shape:?} whose element count overflows"))),
         (Some(count), Some(itemsize)) if count.checked_mul(itemsize as u64) != Some(bytes) => {
             return Err(bad(format!(
-                "tensor '{shown}' has {bytes} bytes of data but its shape {shape:?} of {shown_dtype} needs {}",
+                "tensor '{name}' has {bytes} bytes of data but its shape {shape:?} of {dtype_label} needs {}",
                 count.saturating_mul(itemsize as u64)
             )))
         }
         // A dtype this reader does not know still has at least one bit per element.
         (Some(count), None) if count > bytes.saturating_mul(8) => {
-            return Err(bad(format!("tensor '{shown}' has {bytes} bytes of data, too few for the {count} elements of its shape {shape:?}")))
+            return Err(bad(format!("tensor '{name}' has {bytes} bytes of data, too few for the {count} elements of its shape {shape:?}")))
         }
         _ => {}
     }
@@ -159,7 +156,7 @@ pub fn read_metadata<S: ByteSource + ?Sized>(src: &S) -> Result<std::collections
     let mut out = std::collections::BTreeMap::new();
     if let Some(Value::Object(meta)) = json.get("__metadata__") {
         for (k, v) in meta {
-            let text = v.as_str().ok_or_else(|| bad(format!("metadata '{}' is not a string", k.escape_debug())))?;
+            let text = v.as_str().ok_or_else(|| bad(format!("metadata '{k}' is not a string")))?;
             out.insert(k.clone(), text.to_string());
         }
     }
@@ -194,7 +191,7 @@ pub fn write(tensors: &[Outgoing], metadata: &std::collections::BTreeMap<String,
         offset += t.data.len();
     }
     let mut text = Value::Object(header).to_string();
-    while text.len() % 8 != 0 {
+    while !text.len().is_multiple_of(8) {
         text.push(' ');
     }
     let mut out = Vec::with_capacity(8 + text.len() + offset);
