@@ -88,44 +88,118 @@ fn text_matrices_and_the_demo_weight_are_accepted() {
     assert_eq!(std::fs::metadata(&demo).unwrap().len(), 128 + 4 * 1024 * 4096);
 }
 
-/// Every bad input: exit code 1, exactly one line on stderr, no panic, and no output file.
+/// A `.safetensors` file: the header's length (u64 little-endian), the header, then `data`
+/// (the layout of the format's description).
+fn safetensors_bytes(header: &str, data: &[u8]) -> Vec<u8> {
+    let mut out = (header.len() as u64).to_le_bytes().to_vec();
+    out.extend_from_slice(header.as_bytes());
+    out.extend_from_slice(data);
+    out
+}
+
+/// A version 1.0 `.npy` file with this header dict and no data (NEP 1's layout, unpadded).
+fn npy_bytes(header: &str) -> Vec<u8> {
+    let mut out = b"\x93NUMPY\x01\x00".to_vec();
+    out.extend_from_slice(&(header.len() as u16).to_le_bytes());
+    out.extend_from_slice(header.as_bytes());
+    out
+}
+
+/// Every bad input: exit code 1, exactly one line on stderr naming the problem, no panic, and
+/// no output file. Each case is a row of the README's "Bad inputs" table.
 #[test]
 fn bad_inputs_fail_with_one_clear_line_and_write_nothing() {
     let dir = tempfile::tempdir().unwrap();
-    let truncated = dir.path().join("truncated.npy");
+    let write = |name: &str, bytes: &[u8]| {
+        let path = dir.path().join(name);
+        std::fs::write(&path, bytes).unwrap();
+        path
+    };
     let full = std::fs::read(fixture("quant_weight.npy")).unwrap();
-    std::fs::write(&truncated, &full[..full.len() - 100]).unwrap();
-    let bad_header = dir.path().join("bad.safetensors");
-    std::fs::write(&bad_header, b"\x10\x00\x00\x00\x00\x00\x00\x00{not json at all").unwrap();
-    let ragged = dir.path().join("ragged.txt");
-    std::fs::write(&ragged, "1 2 3\n4 5\n").unwrap();
-    let nan = dir.path().join("nan.csv");
-    std::fs::write(&nan, "1, 2\nnan, 4\n").unwrap();
+    let truncated = write("truncated.npy", &full[..full.len() - 100]);
+    let empty = write("empty.npy", b"");
+    let wrong_magic = write("picture.npy", b"\x89PNG\r\n\x1a\n\x00\x00\x00\rIHDR");
+    let mut future = full.clone();
+    future[6] = 9;
+    let future_version = write("future.npy", &future);
+    let bad_header = write("bad.safetensors", b"\x10\x00\x00\x00\x00\x00\x00\x00{not json at all");
+    let mut claims = (1u64 << 40).to_le_bytes().to_vec();
+    claims.extend_from_slice(b"{}");
+    let huge_header = write("huge-header.safetensors", &claims);
+    let lying = write("lying.safetensors", &safetensors_bytes(r#"{"w":{"dtype":"F32","shape":[3],"data_offsets":[0,8]}}"#, &[0; 8]));
+    let past_end = write("past-end.safetensors", &safetensors_bytes(r#"{"w":{"dtype":"F32","shape":[4],"data_offsets":[0,16]}}"#, &[0; 8]));
+    let overlapping = write(
+        "overlap.safetensors",
+        &safetensors_bytes(r#"{"a":{"dtype":"F32","shape":[2],"data_offsets":[0,8]},"b":{"dtype":"F32","shape":[2],"data_offsets":[4,12]}}"#, &[0; 12]),
+    );
+    let line_break = write("line-break.safetensors", &safetensors_bytes("{\"odd\\nname\":{\"dtype\":\"F32\",\"shape\":[1],\"data_offsets\":[0,4]}}", &[0; 4]));
+    // 2^32 + 2 f32 elements (16 GiB) in a sparse file: refused from the header, nothing allocated.
+    let elements: u64 = (1 << 32) + 2;
+    let header = format!(r#"{{"huge":{{"dtype":"F32","shape":[2,{}],"data_offsets":[0,{}]}}}}"#, elements / 2, elements * 4);
+    let huge = write("huge.safetensors", &safetensors_bytes(&header, &[]));
+    std::fs::OpenOptions::new().write(true).open(&huge).unwrap().set_len(8 + header.len() as u64 + elements * 4).unwrap();
+    let no_elements = write("no-elements.npy", &npy_bytes("{'descr': '<f4', 'fortran_order': False, 'shape': (5, 0), }"));
+    let vast_nothing = write("vast-nothing.npy", &npy_bytes("{'descr': '<f4', 'fortran_order': False, 'shape': (0, 8589934592), }"));
+    let ragged = write("ragged.txt", b"1 2 3\n4 5\n");
+    let not_a_number = write("word.csv", b"1, 2\n3, four\n");
+    let unclosed = write("unclosed.txt", b"[[1, 2], [3, 4]");
+    let nothing = write("comments.txt", b"# only a comment\n");
+    let nan = write("nan.csv", b"1, 2\nnan, 4\n");
+    let inf = write("inf.csv", b"1, inf\n2, -inf\n");
+    let calib_nan = write("acts-nan.csv", &b"0.5, ".repeat(299).into_iter().chain(b"nan\n".iter().copied()).collect::<Vec<u8>>());
     let weight = fixture("quant_weight.npy");
     let multi = fixture("multi.safetensors");
     let object = fixture("npy_object.npy");
+    let structured = fixture("npy_structured.npy");
+    let acts = fixture("method_acts.npy");
+    let cube = fixture("npy_3d_fortran.npy");
+    let p = path_str;
     let cases: Vec<(Vec<&str>, &str)> = vec![
         (vec!["quantize", "/no/such/file.npy"], "cannot open"),
-        (vec!["quantize", path_str(&truncated)], "truncated"),
-        (vec!["quantize", path_str(&bad_header)], "not valid JSON"),
-        (vec!["quantize", path_str(&object)], "not supported"),
-        (vec!["quantize", path_str(&multi), "--tensor", "nope"], "no tensor named 'nope'"),
-        (vec!["quantize", path_str(&multi)], "choose one"),
-        (vec!["quantize", path_str(&weight), "--bits", "9"], "9 bits"),
-        (vec!["quantize", path_str(&weight), "--group", "3"], "group size 3"),
-        (vec!["quantize", path_str(&weight), "--group", "lots"], "not a size"),
-        (vec!["quantize", path_str(&weight), "--scale-dtype", "f8"], "scale type"),
-        (vec!["quantize", path_str(&ragged)], "line 2, column 1"),
-        (vec!["quantize", path_str(&nan)], "1 NaN"),
-        (vec!["quantize", path_str(&multi), "--tensor", "block.0.mlp.up.weight", "--out", "/no/such/dir/x.npy"], "cannot write"),
+        (vec!["quantize", p(&empty)], "not a valid tensor file: the file is empty"),
+        (vec!["quantize", p(&wrong_magic)], "starts neither with the NumPy .npy magic nor with a safetensors header"),
+        (vec!["quantize", p(&future_version)], "format version 9.0 is unknown"),
+        (vec!["quantize", p(&truncated)], "the file is truncated: the array data needs 44528 bytes but the file has only 44428"),
+        (vec!["quantize", p(&bad_header)], "not valid JSON"),
+        (vec!["quantize", p(&huge_header)], "the header claims 1099511627776 bytes, more than the 100000000 allowed"),
+        (vec!["quantize", p(&lying)], "tensor 'w' has 8 bytes of data but its shape [3] of F32 needs 12"),
+        (vec!["quantize", p(&past_end)], "the tensor data needs 79 bytes but the file has only 71"),
+        (vec!["quantize", p(&overlapping)], "tensors 'a' and 'b' overlap"),
+        (vec!["quantize", p(&line_break), "--tensor", "nope"], "the file has: odd\\nname"),
+        (vec!["quantize", p(&huge)], "its 4294967298 elements need 16.0 GiB as f32"),
+        (vec!["quantize", p(&no_elements)], "shape [5, 0] cannot be analysed: it has no elements"),
+        (vec!["quantize", p(&vast_nothing)], "holds no elements, but its other axes span 8589934592"),
+        (vec!["quantize", p(&object)], "object arrays hold Python objects"),
+        (vec!["quantize", p(&structured)], "structured (record) arrays have no single number type"),
+        (vec!["quantize", p(&multi), "--tensor", "nope"], "no tensor named 'nope'"),
+        (vec!["quantize", p(&multi)], "choose one"),
+        (vec!["quantize", p(&weight), "--bits", "9"], "9 bits"),
+        (vec!["quantize", p(&weight), "--group", "3"], "group size 3"),
+        (vec!["quantize", p(&weight), "--group", "lots"], "not a size"),
+        (vec!["quantize", p(&weight), "--scale-dtype", "f8"], "scale type"),
+        (vec!["quantize", p(&ragged)], "line 2, column 1: this row has 2 values but the first row has 3"),
+        (vec!["quantize", p(&not_a_number)], "line 2, column 4: 'four' is not a number"),
+        (vec!["quantize", p(&unclosed)], "the list is not closed"),
+        (vec!["quantize", p(&nothing)], "no numbers found"),
+        (vec!["quantize", p(&nan)], "1 NaN and 0 infinite values (first at row 1, column 0)"),
+        (vec!["quantize", p(&inf)], "0 NaN and 2 infinite values (first at row 0, column 1)"),
+        (vec!["quantize", p(&weight), "--calib", p(&acts)], "it has 192 columns but the weight has 300 input columns"),
+        (vec!["quantize", p(&weight), "--calib", p(&calib_nan)], "it holds 1 NaN and 0 infinite values"),
+        (vec!["quantize", p(&weight), "--calib", p(&cube)], "flatten batch and sequence first"),
+        (vec!["quantize", p(&weight), "--calib", p(&weight), "--calib-kind", "maxabs"], "per-column statistics must be one vector"),
+        (vec!["unpack", p(&multi)], "no bitloupe.packed/1 metadata"),
+        (vec!["unpack", p(&weight)], "not a valid safetensors file"),
+        (vec!["quantize", p(&multi), "--tensor", "block.0.mlp.up.weight", "--out", "/no/such/dir/x.npy"], "cannot write"),
     ];
     for (mut args, needle) in cases {
         let deq = dir.path().join("never.npy");
         let report = dir.path().join("never.json");
         if !args.contains(&"--out") {
-            args.extend(["--out", path_str(&deq)]);
+            args.extend(["--out", p(&deq)]);
         }
-        args.extend(["--report", path_str(&report)]);
+        if args[0] == "quantize" {
+            args.extend(["--report", p(&report)]);
+        }
         let out = bitloupe(&args);
         let stderr = text(&out.stderr);
         assert_eq!(out.status.code(), Some(1), "{args:?}: {stderr}");
