@@ -9,6 +9,9 @@ use bitloupe::{analyze, DType, Recipe, Tensor};
 use divan::counter::ItemsCount;
 use ndarray::Array2;
 
+#[global_allocator]
+static ALLOCATOR: mimalloc::MiMalloc = mimalloc::MiMalloc;
+
 fn main() {
     divan::main();
 }

@@ -13,7 +13,8 @@
 
 use crate::error::Error;
 use crate::recipe::{Recipe, ScaleDType};
-use crate::simd::{quads, quads_mut, F32x4};
+use crate::simd::{as_places, quads, quads_mut, F32x4};
+use std::mem::MaybeUninit;
 
 /// The fitted parameters of one group.
 #[derive(Debug, Clone, Copy, PartialEq)]
@@ -72,6 +73,11 @@ impl IntGrid {
     /// Quantize and dequantize `x` into `out` (the fast kernel; the same arithmetic as
     /// [`IntGrid::dequantize_one`], four values at a time).
     pub fn quantize_into(&self, p: GroupParams, x: &[f32], out: &mut [f32]) {
+        self.write_quantized(p, x, as_places(out));
+    }
+
+    /// [`IntGrid::quantize_into`] into fresh memory: writes every place of `out`.
+    pub(crate) fn write_quantized(&self, p: GroupParams, x: &[f32], out: &mut [MaybeUninit<f32>]) {
         let (scale, zero) = (F32x4::splat(p.scale), F32x4::splat(p.zero));
         let (qmin, qmax) = (F32x4::splat(self.qmin), F32x4::splat(self.qmax));
         let (low, high, magic) = (F32x4::splat(-ROUNDING_LIMIT), F32x4::splat(ROUNDING_LIMIT), F32x4::splat(ROUNDING_MAGIC));
@@ -79,10 +85,10 @@ impl IntGrid {
         for (o, v) in outs.iter_mut().zip(xs) {
             let y = (F32x4::load(v) / scale).max(low).min(high);
             let q = (y + magic - magic + zero).max(qmin).min(qmax);
-            ((q - zero) * scale).store(o);
+            ((q - zero) * scale).write(o);
         }
         for (o, &v) in out_rest.iter_mut().zip(x_rest) {
-            *o = self.dequantize_one(p, v);
+            o.write(self.dequantize_one(p, v));
         }
     }
 

@@ -9,6 +9,13 @@ fn main() -> std::process::ExitCode {
     cli::main()
 }
 
+/// mimalloc keeps freed blocks for reuse: an analysis's output (as large as the tensor) then
+/// lands in memory already mapped rather than in fresh pages the kernel must fault in and clear,
+/// which was a third of a round-to-nearest run with the system allocator (DEVELOPERS.md).
+#[cfg(not(target_arch = "wasm32"))]
+#[global_allocator]
+static ALLOCATOR: mimalloc::MiMalloc = mimalloc::MiMalloc;
+
 #[cfg(not(target_arch = "wasm32"))]
 mod cli {
     use bitloupe::report::Report;

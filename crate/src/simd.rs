@@ -8,6 +8,8 @@
 //! follow IEEE 754 single precision exactly as the scalar code does; `max`/`min` are only
 //! used on values already known not to be NaN, where all three targets agree.
 
+use core::mem::MaybeUninit;
+
 /// Four f32 lanes.
 #[derive(Clone, Copy, Debug)]
 pub struct F32x4(imp::Lanes);
@@ -21,10 +23,19 @@ pub fn quads(s: &[f32]) -> (&[[f32; 4]], &[f32]) {
     s.as_chunks::<4>()
 }
 
-/// `s` as whole vectors of four values and the rest, for writing.
+/// `s` as whole vectors of four places and the rest, for writing.
 #[inline(always)]
-pub fn quads_mut(s: &mut [f32]) -> (&mut [[f32; 4]], &mut [f32]) {
+pub fn quads_mut(s: &mut [MaybeUninit<f32>]) -> (&mut [[MaybeUninit<f32>; 4]], &mut [MaybeUninit<f32>]) {
     s.as_chunks_mut::<4>()
+}
+
+/// Initialised values seen as places to write: for kernels that write into fresh output
+/// (never read before written) and into reused buffers alike.
+#[inline(always)]
+pub(crate) fn as_places(s: &mut [f32]) -> &mut [MaybeUninit<f32>] {
+    // SAFETY: same layout; every writer of `MaybeUninit` places in this crate writes only
+    // initialised f32 values, so `s` stays initialised.
+    unsafe { &mut *(s as *mut [f32] as *mut [MaybeUninit<f32>]) }
 }
 
 impl F32x4 {
@@ -41,7 +52,12 @@ impl F32x4 {
     /// Write the lanes to `s`.
     #[inline(always)]
     pub fn store(self, s: &mut [f32; 4]) {
-        imp::store(self.0, s)
+        imp::store(self.0, s.as_mut_ptr())
+    }
+    /// Write the lanes to four places that need not be initialised.
+    #[inline(always)]
+    pub fn write(self, s: &mut [MaybeUninit<f32>; 4]) {
+        imp::store(self.0, s.as_mut_ptr().cast())
     }
     /// Lane-wise `if o > self { o } else { self }`.
     #[inline(always)]
@@ -98,9 +114,10 @@ mod imp {
     pub fn load(s: &[f32; 4]) -> Lanes {
         unsafe { _mm_loadu_ps(s.as_ptr()) }
     }
+    /// `to` points at four writable f32 places (callers pass an array's pointer).
     #[inline(always)]
-    pub fn store(v: Lanes, s: &mut [f32; 4]) {
-        unsafe { _mm_storeu_ps(s.as_mut_ptr(), v) }
+    pub fn store(v: Lanes, to: *mut f32) {
+        unsafe { _mm_storeu_ps(to, v) }
     }
     #[inline(always)]
     pub fn add(a: Lanes, b: Lanes) -> Lanes {
@@ -146,10 +163,11 @@ mod imp {
         // SAFETY: a 16-byte unaligned read of exactly the four values of `s`.
         unsafe { v128_load(s.as_ptr().cast()) }
     }
+    /// `to` points at four writable f32 places (callers pass an array's pointer).
     #[inline(always)]
-    pub fn store(v: Lanes, s: &mut [f32; 4]) {
-        // SAFETY: as in `load`, for a write.
-        unsafe { v128_store(s.as_mut_ptr().cast(), v) }
+    pub fn store(v: Lanes, to: *mut f32) {
+        // SAFETY: a 16-byte unaligned write of exactly four places, as the callers guarantee.
+        unsafe { v128_store(to.cast(), v) }
     }
     #[inline(always)]
     pub fn add(a: Lanes, b: Lanes) -> Lanes {
@@ -196,8 +214,10 @@ mod imp {
     pub fn load(s: &[f32; 4]) -> Lanes {
         *s
     }
-    pub fn store(v: Lanes, s: &mut [f32; 4]) {
-        *s = v;
+    /// `to` points at four writable f32 places (callers pass an array's pointer).
+    pub fn store(v: Lanes, to: *mut f32) {
+        // SAFETY: as the callers guarantee.
+        unsafe { to.cast::<[f32; 4]>().write_unaligned(v) }
     }
     pub fn add(a: Lanes, b: Lanes) -> Lanes {
         each(a, b, |x, y| x + y)

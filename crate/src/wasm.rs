@@ -185,6 +185,13 @@ pub fn open_file(file: web_sys::Blob, name: Option<String>, raw16_as_bf16: bool)
     open_source(&src, name, raw16_as_bf16)
 }
 
+/// Bytes of WebAssembly memory this instance holds. Its memory only grows, so this is also the
+/// peak of everything it has done (the benchmark reports it).
+#[wasm_bindgen(js_name = memoryBytes)]
+pub fn memory_bytes() -> f64 {
+    (core::arch::wasm32::memory_size(0) * 65536) as f64
+}
+
 /// Read one tensor from bytes already in memory.
 #[wasm_bindgen(js_name = openBytes)]
 pub fn open_bytes(bytes: &[u8], name: Option<String>, raw16_as_bf16: bool) -> Result<TensorHandle, JsError> {

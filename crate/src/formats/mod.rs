@@ -235,10 +235,15 @@ impl Grid {
 
     /// Quantize and dequantize a group (the format is matched once, outside the loop).
     pub fn quantize_into(&self, p: GroupParams, x: &[f32], out: &mut [f32]) {
+        self.write_quantized(p, x, crate::simd::as_places(out));
+    }
+
+    /// [`Grid::quantize_into`] into fresh memory: writes every place of `out`.
+    pub(crate) fn write_quantized(&self, p: GroupParams, x: &[f32], out: &mut [std::mem::MaybeUninit<f32>]) {
         let s = p.scale;
         let pairs = out.iter_mut().zip(x);
         match *self {
-            Grid::Int(g) => g.quantize_into(p, x, out),
+            Grid::Int(g) => g.write_quantized(p, x, out),
             Grid::Scaled { format: Format::Nf4, .. } => {
                 let mids = midpoints(&NF4_LEVELS);
                 for (o, &v) in pairs {
@@ -249,18 +254,18 @@ impl Grid {
                     for step in [8, 4, 2, 1] {
                         index += step * usize::from(u > mids[index + step - 1]);
                     }
-                    *o = NF4_LEVELS[index] * s;
+                    o.write(NF4_LEVELS[index] * s);
                 }
             }
             Grid::Mx(Format::Mxint8) => {
                 for (o, &v) in pairs {
-                    *o = round_half_even_small(v / s * 64.0).clamp(-128.0, 127.0) / 64.0 * s;
+                    o.write(round_half_even_small(v / s * 64.0).clamp(-128.0, 127.0) / 64.0 * s);
                 }
             }
             Grid::Scaled { format, .. } | Grid::Mx(format) => {
                 let element = format.element().expect("a small float");
                 for (o, &v) in pairs {
-                    *o = element.round_fast(v / s) * s;
+                    o.write(element.round_fast(v / s) * s);
                 }
             }
         }

@@ -81,7 +81,7 @@ pub fn run(
                 let mut done = 0;
                 for (xs, fs) in aligned(x, &s, col0, cols) {
                     for ((o, &v), &f) in out[done..done + xs.len()].iter_mut().zip(xs).zip(fs) {
-                        *o = grid.dequantize_one(p, v * f) / f;
+                        o.write(grid.dequantize_one(p, v * f) / f);
                     }
                     done += xs.len();
                 }

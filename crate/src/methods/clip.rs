@@ -51,7 +51,7 @@ pub fn run(w: ArrayView2<f32>, recipe: &Recipe, calib: Option<&Calibration>, kep
                 Ok((p, ratio))
             })
         },
-        |p, x, out, _| grid.quantize_into(p, x, out),
+        |p, x, out, _| grid.write_quantized(p, x, out),
         &(),
         &mut |_, _| {},
     )?;

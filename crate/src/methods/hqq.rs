@@ -110,7 +110,7 @@ pub fn run(w: ArrayView2<f32>, recipe: &Recipe, kept: &Kept) -> Result<Quantized
         },
         |p, x, out, _| {
             for (o, &v) in out.iter_mut().zip(x) {
-                *o = dequantize(p, grid.qmax, v);
+                o.write(dequantize(p, grid.qmax, v));
             }
         },
         &(),

@@ -18,6 +18,7 @@ use crate::formats::{codebook, DoubleQuantized, Format, Grid};
 use crate::grid::{GroupParams, ScaleOverflow};
 use crate::recipe::{Granularity, Method, Recipe};
 use crate::rows;
+use std::mem::MaybeUninit;
 use ndarray::{Array2, ArrayView2};
 use serde::Serialize;
 
@@ -158,12 +159,13 @@ fn round_to_nearest<O: RowObserver>(
     progress: &mut dyn FnMut(usize, usize),
 ) -> Result<(Quantized, Vec<O::Block>)> {
     let grid = Grid::new(recipe);
-    let quantize = |p: GroupParams, x: &[f32], out: &mut [f32], _| grid.quantize_into(p, x, out);
+    let quantize = |p: GroupParams, x: &[f32], out: &mut [MaybeUninit<f32>], _| grid.write_quantized(p, x, out);
     let fit = |x: &[f32], _, _| grid.fit(x).map(|p| (p, ()));
     let mut double = None;
     let grouped = if recipe.double_quant {
         // Fit every block first, quantize the block constants, then quantize with them.
-        let fitted = quantize_groups(w, recipe, kept, fit, |_, _, _, _| {}, &(), &mut |_, _| {})?.params;
+        let zeros = |_: GroupParams, _: &[f32], out: &mut [MaybeUninit<f32>], _| out.iter_mut().for_each(|o| _ = o.write(0.0));
+        let fitted = quantize_groups(w, recipe, kept, fit, zeros, &(), &mut |_, _| {})?.params;
         let dq = DoubleQuantized::of(&fitted);
         let scales = dq.scales();
         double = Some(dq);
@@ -253,15 +255,15 @@ pub struct Grouped<T, B> {
 /// Fit and quantize every group of `w`, blocks of rows in parallel (see [`crate::rows`]):
 /// `fit(values, row, first column)` chooses the parameters (kept values are zeroed first so they
 /// do not stretch the range) and a note about the group, `quantize(params, values, out, first
-/// column)` writes the group's reconstruction, and `observer` sees every finished row. For a
-/// per-tensor recipe the one fit sees the whole tensor row-major, so its value j belongs to
-/// column j mod cols.
-pub fn quantize_groups<T: Send, O: RowObserver>(
+/// column)` writes the group's reconstruction — every place of `out`, which is fresh memory —
+/// and `observer` sees every finished row. For a per-tensor recipe the one fit sees the whole
+/// tensor row-major, so its value j belongs to column j mod cols.
+pub(crate) fn quantize_groups<T: Send, O: RowObserver>(
     w: ArrayView2<f32>,
     recipe: &Recipe,
     kept: &keep::Kept,
     fit: impl Fn(&[f32], usize, usize) -> std::result::Result<(GroupParams, T), ScaleOverflow> + Sync + Send,
-    quantize: impl Fn(GroupParams, &[f32], &mut [f32], usize) + Sync + Send,
+    quantize: impl Fn(GroupParams, &[f32], &mut [MaybeUninit<f32>], usize) + Sync + Send,
     observer: &O,
     progress: &mut dyn FnMut(usize, usize),
 ) -> Result<Grouped<T, O::Block>> {
@@ -282,19 +284,18 @@ pub fn quantize_groups<T: Send, O: RowObserver>(
         }
         _ => (None, Vec::new()),
     };
-    // Each row is built in a small buffer that stays in cache while the observer reads it, then
-    // copied once into the output, which is therefore written exactly once (never zeroed first).
+    // The output is written exactly once, row by row, and each row is measured while it is
+    // still in cache; it is never zeroed first.
     let mut out = Vec::<f32>::with_capacity(rows * cols);
     let blocks = rows::map_blocks_mut(&mut out.spare_capacity_mut()[..rows * cols], cols, progress, |first, out_block| {
         let block_rows = out_block.len() / cols;
         let mut params = Vec::new();
         let mut block_notes = Vec::new();
         let mut seen = observer.start(first, block_rows);
-        let mut row = vec![0f32; cols];
         for (i, out_row) in out_block.chunks_mut(cols).enumerate() {
             let r = first + i;
             let x_row = &all[r * cols..(r + 1) * cols];
-            for (k, (x, o)) in x_row.chunks(width).zip(row.chunks_mut(width)).enumerate() {
+            for (k, (x, o)) in x_row.chunks(width).zip(out_row.chunks_mut(width)).enumerate() {
                 let p = match whole {
                     Some(p) => p,
                     None => {
@@ -306,8 +307,9 @@ pub fn quantize_groups<T: Send, O: RowObserver>(
                 };
                 quantize(p, x, o, k * width);
             }
-            observer.row(&mut seen, r, x_row, &row);
-            out_row.write_copy_of_slice(&row);
+            // SAFETY: the groups tile the row and `quantize` wrote every place of each.
+            let row = unsafe { std::slice::from_raw_parts(out_row.as_ptr().cast::<f32>(), cols) };
+            observer.row(&mut seen, r, x_row, row);
         }
         Ok::<_, Error>((params, block_notes, seen))
     });
@@ -320,8 +322,7 @@ pub fn quantize_groups<T: Send, O: RowObserver>(
         notes.extend(n);
         observed.push(seen);
     }
-    // SAFETY: every block returned Ok, so each copied its whole row buffer (always initialised)
-    // into every one of its rows: all rows × cols values are written.
+    // SAFETY: every block returned Ok, so each wrote all of its rows (see above).
     unsafe { out.set_len(rows * cols) };
     let out = Array2::from_shape_vec((rows, cols), out).expect("rows × cols values");
     Ok(Grouped { out, params, notes, observed })

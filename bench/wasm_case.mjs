@@ -1,0 +1,33 @@
+// One case of the speed table under Node (`bench/compare.py`): the same steps as the native
+// `bench_case` example, through the wasm build's own exports. Prints one JSON line: the open
+// time, the median analysis time, and the wasm memory's size afterwards (WebAssembly memory
+// only grows, so that is its peak).
+//
+// Usage: node bench/wasm_case.mjs PKG_DIR FILE [REPEATS]
+// PKG_DIR holds `wasm-bindgen --target nodejs` output of the release wasm.
+import { createRequire } from 'node:module';
+import { readFileSync } from 'node:fs';
+import path from 'node:path';
+
+const [pkgDir, file, repeatsArg] = process.argv.slice(2);
+const core = createRequire(import.meta.url)(path.resolve(pkgDir, 'bitloupe.js'));
+const repeats = Math.max(1, Number(repeatsArg ?? 5));
+const bytes = readFileSync(file);
+
+let start = performance.now();
+const tensor = core.openBytes(bytes, undefined, false);
+const openMs = performance.now() - start;
+const times = [];
+for (let i = 0; i < repeats; i++) {
+  start = performance.now();
+  const analysis = tensor.analyze({}, undefined, undefined);
+  times.push(performance.now() - start);
+  analysis.free();
+}
+times.sort((a, b) => a - b);
+console.log(JSON.stringify({
+  open_ms: openMs,
+  analyze_ms: times[Math.floor(times.length / 2)],
+  peak_bytes: core.memoryBytes(),
+  elements: JSON.parse(JSON.stringify(tensor.info())).elements,
+}));

@@ -1,0 +1,52 @@
+//! One case of the speed table (`bench/compare.py`, run by `cargo xtask bench`): open a tensor
+//! file, then run the default recipe (int4, asymmetric, groups of 128, f16 scales) with every
+//! statistic, several times. Prints one JSON line: the open time, the median analysis time,
+//! and the process's peak resident memory.
+//!
+//! Usage: bench_case FILE [REPEATS] [THREADS]   (THREADS 1 = single-threaded, 0 = all cores)
+
+// The command's allocator (see crate/src/main.rs).
+#[global_allocator]
+static ALLOCATOR: mimalloc::MiMalloc = mimalloc::MiMalloc;
+
+use bitloupe::tensor::{self, ReadOptions};
+use bitloupe::{analyze, Recipe};
+use std::time::Instant;
+
+fn main() -> Result<(), Box<dyn std::error::Error + Send + Sync>> {
+    let args: Vec<String> = std::env::args().collect();
+    let path = args.get(1).ok_or("usage: bench_case FILE [REPEATS] [THREADS]")?;
+    let repeats: usize = args.get(2).map_or(Ok(5), |s| s.parse())?;
+    let threads: usize = args.get(3).map_or(Ok(1), |s| s.parse())?;
+    let pool = rayon::ThreadPoolBuilder::new().num_threads(threads).build()?;
+    pool.install(|| -> Result<(), Box<dyn std::error::Error + Send + Sync>> {
+        let file = std::fs::File::open(path)?;
+        let start = Instant::now();
+        let listing = tensor::list(&file, ReadOptions::default())?;
+        let tensor = tensor::read(&file, listing.choose(None)?)?;
+        let open_ms = start.elapsed().as_secs_f64() * 1e3;
+        let recipe = Recipe::default();
+        let mut times = Vec::with_capacity(repeats);
+        for _ in 0..repeats.max(1) {
+            let start = Instant::now();
+            std::hint::black_box(analyze(&tensor, &recipe)?);
+            times.push(start.elapsed().as_secs_f64() * 1e3);
+        }
+        times.sort_by(f64::total_cmp);
+        let median_ms = times[times.len() / 2];
+        println!(
+            "{{\"open_ms\": {open_ms:.3}, \"analyze_ms\": {median_ms:.3}, \"peak_bytes\": {}, \"elements\": {}}}",
+            peak_resident_bytes().unwrap_or(0),
+            tensor.values.len()
+        );
+        Ok(())
+    })
+}
+
+/// The process's peak resident set (VmHWM), where the system reports it.
+fn peak_resident_bytes() -> Option<u64> {
+    let status = std::fs::read_to_string("/proc/self/status").ok()?;
+    let line = status.lines().find(|l| l.starts_with("VmHWM:"))?;
+    let kib: u64 = line.split_whitespace().nth(1)?.parse().ok()?;
+    Some(kib * 1024)
+}
