@@ -449,12 +449,14 @@ Per-tensor error is only a proxy: check any recipe on the model's own task befor
                 .build_global()
                 .map_err(|e| Failure(format!("--threads {}: {e}", args.threads)))?;
         }
-        let opened = args.files.iter().map(|path| open(path, ReadOptions::default())).collect::<Result<Vec<_>, _>>()?;
+        let (sources, listings): (Vec<_>, Vec<_>) =
+            args.files.iter().map(|path| open(path, ReadOptions::default())).collect::<Result<Vec<_>, _>>()?.into_iter().unzip();
         let shards: Vec<Shard<std::fs::File>> = args
             .files
             .iter()
-            .zip(&opened)
-            .map(|(path, (file, listing))| Shard { label: path.display().to_string(), source: file, listing: listing.clone() })
+            .zip(&sources)
+            .zip(listings)
+            .map(|((path, source), listing)| Shard { label: path.display().to_string(), source, listing })
             .collect();
         let selection = Selection { pattern: args.pattern, include_1d: args.include_1d };
         let mut bar = ReportBar::new();
