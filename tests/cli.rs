@@ -455,3 +455,18 @@ fn report_failures_write_nothing() {
         assert_eq!(leftovers, 0, "{args:?} left a partial file");
     }
 }
+
+/// An output that is a device is written in place: replacing it by a rename, as regular outputs
+/// are, would turn /dev/null into a file (common practice: write-then-rename suits regular files
+/// only).
+#[cfg(unix)]
+#[test]
+fn outputs_to_dev_null_leave_the_device_in_place() {
+    use std::os::unix::fs::FileTypeExt;
+    let dir = tempfile::tempdir().unwrap();
+    let csv = dir.path().join("r.csv");
+    let out = bitloupe(&["report", path_str(&fixture("multi.safetensors")), "--json", "/dev/null", "--csv", path_str(&csv)]);
+    assert!(out.status.success(), "{}", text(&out.stderr));
+    assert!(std::fs::metadata("/dev/null").unwrap().file_type().is_char_device(), "/dev/null was replaced");
+    assert!(std::fs::read_to_string(&csv).unwrap().starts_with("file,name,shape"));
+}

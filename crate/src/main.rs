@@ -578,29 +578,43 @@ Per-tensor error is only a proxy: check any recipe on the model's own task befor
 
     /// Write every output to a temporary file beside its target, then rename them all, so a
     /// failure never leaves a partial output behind.
+    ///
+    /// A target that exists and is not a regular file (/dev/null, a terminal, a pipe) is written
+    /// in place once every temporary file is complete: a rename would replace the device itself
+    /// with a file (as root, /dev/null for the whole machine), and what went into a pipe cannot
+    /// be taken back anyway.
     fn write_all_or_nothing(outputs: &[(PathBuf, Vec<u8>)]) -> Result<(), Failure> {
         let temp_of = |path: &Path| {
             let mut name = path.file_name().unwrap_or_default().to_os_string();
             name.push(format!(".partial-{}", std::process::id()));
             path.with_file_name(name)
         };
+        let in_place = |path: &Path| std::fs::metadata(path).is_ok_and(|m| !m.is_file() && !m.is_dir());
+        let (special, regular): (Vec<_>, Vec<_>) = outputs.iter().partition(|(path, _)| in_place(path));
         let cleanup = |upto: usize| {
-            for (path, _) in &outputs[..upto] {
+            for (path, _) in &regular[..upto] {
                 let _ = std::fs::remove_file(temp_of(path));
             }
         };
-        for (i, (path, bytes)) in outputs.iter().enumerate() {
+        let cannot_write = |path: &Path, e: std::io::Error| Failure(format!("{}: cannot write: {e}", path.display()));
+        for (i, (path, bytes)) in regular.iter().enumerate() {
             if let Err(e) = std::fs::write(temp_of(path), bytes) {
                 cleanup(i + 1);
-                return Err(Failure(format!("{}: cannot write: {e}", path.display())));
+                return Err(cannot_write(path, e));
             }
         }
-        for (i, (path, _)) in outputs.iter().enumerate() {
+        for (path, bytes) in &special {
+            if let Err(e) = std::fs::write(path, bytes) {
+                cleanup(regular.len());
+                return Err(cannot_write(path, e));
+            }
+        }
+        for (i, (path, _)) in regular.iter().enumerate() {
             if let Err(e) = std::fs::rename(temp_of(path), path) {
-                for (later, _) in &outputs[i..] {
+                for (later, _) in &regular[i..] {
                     let _ = std::fs::remove_file(temp_of(later));
                 }
-                return Err(Failure(format!("{}: cannot write: {e}", path.display())));
+                return Err(cannot_write(path, e));
             }
         }
         Ok(())
