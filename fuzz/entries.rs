@@ -62,6 +62,8 @@ pub fn safetensors(data: &[u8]) {
     ranges.sort_unstable();
     assert!(ranges.iter().all(|&(_, end)| end <= data.len() as u64), "a range leaves the file: {ranges:?}");
     assert!(ranges.windows(2).all(|w| w[0].1 <= w[1].0), "ranges overlap: {ranges:?}");
+    let names: std::collections::HashSet<&str> = entries.iter().map(|e| e.name.as_str()).collect();
+    assert_eq!(names.len(), entries.len(), "a name is listed twice");
     for entry in entries.iter().filter(|e| e.element.is_some()) {
         read_listed(data, entry);
     }

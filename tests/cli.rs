@@ -132,6 +132,10 @@ fn bad_inputs_fail_with_one_clear_line_and_write_nothing() {
         "overlap.safetensors",
         &safetensors_bytes(r#"{"a":{"dtype":"F32","shape":[2],"data_offsets":[0,8]},"b":{"dtype":"F32","shape":[2],"data_offsets":[4,12]}}"#, &[0; 12]),
     );
+    let twice = write(
+        "twice.safetensors",
+        &safetensors_bytes(r#"{"w":{"dtype":"F32","shape":[1],"data_offsets":[0,4]},"w":{"dtype":"F32","shape":[1],"data_offsets":[4,8]}}"#, &[0; 8]),
+    );
     let line_break = write("line-break.safetensors", &safetensors_bytes("{\"odd\\nname\":{\"dtype\":\"F32\",\"shape\":[1],\"data_offsets\":[0,4]}}", &[0; 4]));
     // 2^32 + 2 f32 elements (16 GiB) in a sparse file: refused from the header, nothing allocated.
     let elements: u64 = (1 << 32) + 2;
@@ -165,6 +169,7 @@ fn bad_inputs_fail_with_one_clear_line_and_write_nothing() {
         (vec!["quantize", p(&lying)], "tensor 'w' has 8 bytes of data but its shape [3] of F32 needs 12"),
         (vec!["quantize", p(&past_end)], "the tensor data needs 79 bytes but the file has only 71"),
         (vec!["quantize", p(&overlapping)], "tensors 'a' and 'b' overlap"),
+        (vec!["quantize", p(&twice)], "the name 'w' appears twice"),
         (vec!["quantize", p(&line_break), "--tensor", "nope"], "the file has: odd\\nname"),
         (vec!["quantize", p(&huge)], "its 4294967298 elements need 16.0 GiB as f32"),
         (vec!["quantize", p(&no_elements)], "shape [5, 0] cannot be analysed: it has no elements"),

@@ -14,6 +14,7 @@
 
 use super::{read_range, ByteSource, DType, Element, TensorEntry};
 use crate::error::{Error, Result};
+use serde::de::{Deserialize, Deserializer, Error as _, MapAccess, Visitor};
 use serde_json::Value;
 
 /// Headers larger than this are refused before they are read: the format's description sets
@@ -47,24 +48,54 @@ fn element_of(label: &str) -> (Option<usize>, Option<Element>) {
     (Some(dtype.size()), Some(Element::little(dtype)))
 }
 
-/// The header as JSON, and where the data starts.
-fn header<S: ByteSource + ?Sized>(src: &S) -> Result<(Value, u64)> {
+/// The header's top-level entries in file order. A name given twice is refused, as the format's
+/// description says ("Duplicate keys are disallowed"): a JSON map would silently keep one.
+struct Entries(Vec<(String, Value)>);
+
+impl<'de> Deserialize<'de> for Entries {
+    fn deserialize<D: Deserializer<'de>>(deserializer: D) -> std::result::Result<Self, D::Error> {
+        struct Distinct;
+        impl<'de> Visitor<'de> for Distinct {
+            type Value = Entries;
+            fn expecting(&self, f: &mut std::fmt::Formatter) -> std::fmt::Result {
+                f.write_str("a JSON object")
+            }
+            fn visit_map<A: MapAccess<'de>>(self, mut map: A) -> std::result::Result<Entries, A::Error> {
+                let mut seen = std::collections::HashSet::new();
+                let mut entries = Vec::new();
+                while let Some((name, value)) = map.next_entry::<String, Value>()? {
+                    if !seen.insert(name.clone()) {
+                        return Err(A::Error::custom(format!("the name '{name}' appears twice")));
+                    }
+                    entries.push((name, value));
+                }
+                Ok(Entries(entries))
+            }
+        }
+        deserializer.deserialize_map(Distinct)
+    }
+}
+
+/// The header's entries, and where the data starts.
+fn header<S: ByteSource + ?Sized>(src: &S) -> Result<(Entries, u64)> {
     let size_field = read_range(src, 0, 8, "header size")?;
     let header_len = u64::from_le_bytes(size_field.try_into().expect("eight bytes"));
     if header_len > MAX_HEADER_BYTES {
         return Err(bad(format!("the header claims {header_len} bytes, more than the {MAX_HEADER_BYTES} allowed")));
     }
     let text = read_range(src, 8, header_len, "header")?;
-    let json = serde_json::from_slice(&text).map_err(|e| bad(format!("the header is not valid JSON ({e})")))?;
-    Ok((json, 8 + header_len))
+    let entries = serde_json::from_slice(&text).map_err(|e| match e.classify() {
+        serde_json::error::Category::Data => bad(format!("the header is not an object of distinct names ({e})")),
+        _ => bad(format!("the header is not valid JSON ({e})")),
+    })?;
+    Ok((entries, 8 + header_len))
 }
 
 /// List every tensor from the header alone.
 pub fn read_header<S: ByteSource + ?Sized>(src: &S) -> Result<Vec<TensorEntry>> {
-    let (json, data_start) = header(src)?;
+    let (Entries(map), data_start) = header(src)?;
     // header() has read up to data_start, so the source is at least that long.
     let data_len = src.len() - data_start;
-    let Value::Object(map) = json else { return Err(bad("the header is not a JSON object")) };
     let mut entries = Vec::with_capacity(map.len());
     for (name, info) in &map {
         if name == "__metadata__" {
@@ -152,9 +183,9 @@ fn entry(name: &str, info: &Value, data_start: u64, data_len: u64) -> Result<Ten
 
 /// The `__metadata__` map of a `.safetensors` file (empty when it has none).
 pub fn read_metadata<S: ByteSource + ?Sized>(src: &S) -> Result<std::collections::BTreeMap<String, String>> {
-    let (json, _) = header(src)?;
+    let (Entries(entries), _) = header(src)?;
     let mut out = std::collections::BTreeMap::new();
-    if let Some(Value::Object(meta)) = json.get("__metadata__") {
+    if let Some((_, Value::Object(meta))) = entries.iter().find(|(name, _)| name == "__metadata__") {
         for (k, v) in meta {
             let text = v.as_str().ok_or_else(|| bad(format!("metadata '{k}' is not a string")))?;
             out.insert(k.clone(), text.to_string());
@@ -283,6 +314,19 @@ mod tests {
         assert!(read_header(&overflowing[..]).unwrap_err().to_string().contains("element count overflows"));
         let unknown_type = file(r#"{"w":{"dtype":"X9","shape":[100],"data_offsets":[0,8]}}"#, &[0; 8]);
         assert!(read_header(&unknown_type[..]).unwrap_err().to_string().contains("too few for the 100 elements"));
+    }
+
+    /// The format's description: "Duplicate keys are disallowed".
+    #[test]
+    fn refuses_a_name_given_twice() {
+        let twice = file(
+            r#"{"w":{"dtype":"U8","shape":[2],"data_offsets":[0,2]},"w":{"dtype":"U8","shape":[2],"data_offsets":[2,4]}}"#,
+            &[0; 4],
+        );
+        let message = read_header(&twice[..]).unwrap_err().to_string();
+        assert!(message.contains("the name 'w' appears twice"), "{message}");
+        let array = file("[1, 2]", &[]);
+        assert!(read_header(&array[..]).unwrap_err().to_string().contains("not an object of distinct names"));
     }
 
     /// The format's description: "addresses in the file do not overlap in any way".
