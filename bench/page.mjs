@@ -8,7 +8,11 @@
 //    chosen; the time from choosing it to the painted list of its tensors.
 // 3. GPTQ and AWQ on the same 4096 × 4096 weight with 512 calibration tokens, int4 asym g128:
 //    the time from choosing the method to the drawn result in the page, and the wall time of the
-//    native `bitloupe quantize` command (BITLOUPE_BIN) on the same files, single-threaded both.
+//    native `bitloupe quantize` command (BITLOUPE_BIN) on the same files, both on all cores.
+// 4. The worker pool: the compute time of round to nearest and of HQQ on the 4096 × 4096 weight
+//    with one pool worker (`?threads=1`) and with one per core, and their ratio.
+// 5. A 4096 × 14336 f16 `.safetensors` file (one tensor): the time from choosing it to the
+//    drawn error map.
 import { mkdirSync, writeFileSync, openSync, ftruncateSync, closeSync, writeSync } from 'node:fs';
 import { execFileSync } from 'node:child_process';
 import os from 'node:os';
@@ -64,6 +68,20 @@ function npyF32(rows, cols, file) {
     data[i] = ((s / 2 ** 32) - 0.5) * 0.04;
   }
   writeFileSync(file, Buffer.concat([head, Buffer.from(padded), Buffer.from(data.buffer)]));
+}
+
+/** One seeded f16 tensor in a `.safetensors` file (bit patterns of magnitudes 2^-10 … 2^-1). */
+function f16Safetensors(file, name, rows, cols) {
+  const header = Buffer.from(JSON.stringify({ [name]: { dtype: 'F16', shape: [rows, cols], data_offsets: [0, rows * cols * 2] } }));
+  const size = Buffer.alloc(8);
+  size.writeBigUInt64LE(BigInt(header.length));
+  const data = new Uint16Array(rows * cols);
+  let s = 2024;
+  for (let i = 0; i < data.length; i++) {
+    s = (s * 1103515245 + 12345) >>> 0;
+    data[i] = ((s >>> 31) << 15) | ((5 + ((s >>> 20) % 10)) << 10) | (s & 0x3ff);
+  }
+  writeFileSync(file, Buffer.concat([size, header, Buffer.from(data.buffer)]));
 }
 
 function sparseSafetensors(file, count, rows, cols) {
@@ -135,6 +153,44 @@ for (const method of ['gptq', 'awq']) {
 }
 await page.selectOption('#method', 'rtn');
 
+// The worker pool: one pool worker against one per core, same file, same recipes.
+const poolTimes = {};
+for (const threads of [1, os.cpus().length]) {
+  const p = await browser.newPage({ viewport: { width: 1400, height: 1000 } });
+  await p.goto(`${URL_UNDER_TEST}?threads=${threads}`);
+  await p.waitForSelector('body[data-ready=true]');
+  const computes = () => p.evaluate(() => window.bitloupeTimings.filter((t) => t.what === 'recipe-compute').map((t) => t.ms));
+  await p.setInputFiles('#file-input', weightFile);
+  await p.waitForFunction(() => window.bitloupeTimings.some((t) => t.what === 'open-to-drawn'), null, { timeout: 120_000 });
+  const times = { rtn: [], hqq: [] };
+  for (const [method, runs] of [['rtn', 7], ['hqq', 3]]) {
+    if (method === 'hqq') {
+      const n = (await computes()).length;
+      await p.selectOption('#method', 'hqq');
+      await p.waitForFunction((k) => window.bitloupeTimings.filter((t) => t.what === 'recipe-compute').length > k, n, { timeout: 300_000 });
+    }
+    for (let i = 0; i < runs; i++) {
+      const n = (await computes()).length;
+      await p.selectOption('#bits', i % 2 ? '4' : '3');
+      await p.waitForFunction((k) => window.bitloupeTimings.filter((t) => t.what === 'recipe-compute').length > k, n, { timeout: 300_000 });
+      times[method].push((await computes()).at(-1));
+    }
+  }
+  poolTimes[threads] = { rtn: median(times.rtn), hqq: median(times.hqq) };
+  await p.close();
+}
+
+// A large f16 layer from a dropped file: choose it → drawn error map.
+const wideFile = path.join(dir, 'layer-4096x14336-f16.safetensors');
+f16Safetensors(wideFile, 'model.block.0.mlp.down.weight', 4096, 14336);
+const wideRuns = [];
+for (let i = 0; i < 3; i++) {
+  const done = (await timings()).filter((t) => t.what === 'open-to-drawn').length;
+  await page.setInputFiles('#file-input', wideFile);
+  await waitFor('open-to-drawn', done + 1);
+  wideRuns.push((await timings()).filter((t) => t.what === 'open-to-drawn')[done].ms);
+}
+
 const listRuns = [];
 for (let i = 0; i < 5; i++) {
   await page.setInputFiles('#file-input', bigFile);
@@ -160,6 +216,11 @@ console.log(`| 4096×4096 f32, recipe change to int4 asym g128 f16 → drawn | $
 console.log(`| 4096×4096 f32, open file → first drawn result | ${openRun.toFixed(0)} ms | 1 |`);
 console.log(`| 2 GiB .safetensors (128 tensors), choose file → list drawn | ${median(listRuns).toFixed(0)} ms | ${listRuns.map((x) => x.toFixed(0)).join(', ')} |`);
 console.log(`| 4096×4096 f32, 48-recipe round-to-nearest sweep (click → last row drawn) | ${(sweepMs / 1000).toFixed(2)} s | 1 |`);
+const cores = Object.keys(poolTimes).map(Number).sort((a, b) => a - b);
+const [one, all] = [poolTimes[cores[0]], poolTimes[cores[cores.length - 1]]];
+console.log(`| worker pool, 4096×4096 f32, round to nearest compute: 1 pool worker → ${cores.at(-1)} | ${one.rtn.toFixed(0)} ms → ${all.rtn.toFixed(0)} ms (${(one.rtn / all.rtn).toFixed(2)}×) | 7 each |`);
+console.log(`| worker pool, 4096×4096 f32, HQQ compute: 1 pool worker → ${cores.at(-1)} | ${(one.hqq / 1000).toFixed(2)} s → ${(all.hqq / 1000).toFixed(2)} s (${(one.hqq / all.hqq).toFixed(2)}×) | 3 each |`);
+console.log(`| 4096×14336 f16 .safetensors, choose file → error map drawn | ${median(wideRuns).toFixed(0)} ms | ${wideRuns.map((x) => x.toFixed(0)).join(', ')} |`);
 for (const method of ['gptq', 'awq']) {
   const t = methodTimes[method];
   const ratio = native[method] ? `; native command ${(native[method] / 1000).toFixed(2)} s (reading the files included); wasm/native ${(t.compute / native[method]).toFixed(2)}×` : '';

@@ -39,8 +39,23 @@ const state = {
 
 /** The core, compiled once here from a script rather than fetched, so that the page and its
  * workers can forbid every connection (connect-src 'none'). */
-async function compileCore() {
-  const { default: base64 } = await import('./pkg/bitloupe_core.js');
+/** Most pool workers the page starts, whatever the core count (memory use grows with each). */
+const MAX_POOL_WORKERS = 8;
+
+/**
+ * Pool workers for the threaded core: one per logical core (capped), or `?threads=N` from the
+ * address (`?threads=0`: the single-threaded core). Shared memory needs a cross-origin isolated page; elsewhere (a host without those
+ * headers, the single file opened from disk) the single-threaded core runs instead.
+ */
+function poolSize() {
+  if (!self.crossOriginIsolated || config.wasm) return 0;
+  const asked = new URLSearchParams(location.search).get('threads');
+  const wanted = asked !== null && Number(asked) >= 0 ? Number(asked) : navigator.hardwareConcurrency || 1;
+  return Math.min(Math.floor(wanted), MAX_POOL_WORKERS);
+}
+
+async function compileCore(pkg) {
+  const { default: base64 } = await import(`./${pkg}/bitloupe_core.js`);
   const text = atob(base64);
   const bytes = new Uint8Array(text.length);
   for (let i = 0; i < text.length; i++) bytes[i] = text.charCodeAt(i);
@@ -48,11 +63,12 @@ async function compileCore() {
 }
 
 const config = window.BITLOUPE_CONFIG || {};
-const core = config.wasm ?? await compileCore().catch((err) => {
+const threads = poolSize();
+const core = config.wasm ?? await compileCore(threads ? 'pkg-threads' : 'pkg').catch((err) => {
   $('status').textContent = `The page could not load its compute core: ${err.message}`;
   throw err;
 });
-const bridge = new CoreBridge(config.makeWorker || (() => new Worker('worker.js')), core);
+const bridge = new CoreBridge(config.makeWorker || (() => new Worker('worker.js')), core, threads);
 bridge.onRestart = (reason) => {
   if (!(reason instanceof Cancelled)) showMessage('input-message', reason.message);
 };

@@ -1,7 +1,9 @@
 // The main thread's side of the compute worker: promises for requests, progress callbacks, and
 // cancel. The core runs synchronously inside the worker, so cancel ends the worker and starts a
 // fresh one; the bridge then replays the last successful open and analysis there, so that the
-// tensor and results on screen stay usable.
+// tensor and results on screen stay usable. With the threaded core the worker runs a pool of
+// workers of its own; one that fails speaks on a broadcast channel (the compute worker is blocked
+// waiting for it), and the bridge restarts everything the same way.
 
 export class Cancelled extends Error {
   constructor() {
@@ -10,11 +12,20 @@ export class Cancelled extends Error {
   }
 }
 
+/** Restarts in a row whose worker never got ready, after which the bridge gives up. */
+const MAX_FAILED_STARTS = 3;
+
 export class CoreBridge {
-  /** @param {() => Worker} makeWorker @param {string | ArrayBuffer} wasm */
-  constructor(makeWorker, wasm) {
+  /**
+   * @param {() => Worker} makeWorker
+   * @param {WebAssembly.Module | ArrayBuffer} wasm
+   * @param {number} threads pool workers of the threaded core (0: the single-threaded core)
+   */
+  constructor(makeWorker, wasm, threads = 0) {
     this.makeWorker = makeWorker;
     this.wasm = wasm;
+    this.threads = threads;
+    this.failedStarts = 0;
     this.nextId = 1;
     this.pending = new Map();
     this.remembered = { open: null, calib: null, analyze: null };
@@ -30,7 +41,20 @@ export class CoreBridge {
       event.preventDefault();
       this.restart(new Error('the compute worker stopped unexpectedly; the last tensor was reloaded'));
     };
-    return this.send('init', { wasm: this.wasm });
+    this.pool?.close();
+    const channel = `bitloupe-pool-${Date.now()}-${Math.random()}`;
+    if (this.threads) {
+      this.pool = new BroadcastChannel(channel);
+      this.pool.onmessage = (event) => this.restart(new Error(`a compute pool worker failed (${event.data}); the last tensor was reloaded`));
+    }
+    try {
+      const ready = await this.send('init', { wasm: this.wasm, threads: this.threads, channel });
+      this.failedStarts = 0;
+      return ready;
+    } catch (err) {
+      this.failedStarts += 1;
+      throw err;
+    }
   }
 
   receive(message) {
@@ -84,11 +108,14 @@ export class CoreBridge {
 
   restart(reason) {
     this.worker.terminate();
+    this.pool?.close();
     const waiting = [...this.pending.values()];
     this.pending.clear();
     waiting.forEach((entry) => entry.reject(reason));
     // New requests wait until the fresh worker holds the same state again.
     this.ready = (async () => {
+      // A worker that cannot even start (its script missing, say) is not restarted forever.
+      if (this.failedStarts >= MAX_FAILED_STARTS) throw new Error('the compute worker could not start; reload the page');
       await this.start();
       for (const kind of ['open', 'calib', 'analyze']) {
         const step = this.remembered[kind];

@@ -4,7 +4,8 @@
 /* global wasm_bindgen, importScripts */
 'use strict';
 
-if (typeof wasm_bindgen === 'undefined') importScripts('pkg/bitloupe.js');
+/** Pages of shared memory the threaded core starts with (more than its static data needs). */
+const SHARED_MEMORY_PAGES = 256;
 
 let core = null;
 let tensor = null;
@@ -84,10 +85,31 @@ function message(err) {
 }
 
 const handlers = {
-  async init({ wasm }) {
-    await wasm_bindgen({ module_or_path: wasm });
+  /**
+   * Load the core. With `threads` > 0 (the threaded build, on a cross-origin isolated page) the
+   * core gets a shared memory and a pool of that many workers on it; they must all be running
+   * before the pool is built, because this worker then blocks while they compute.
+   */
+  async init({ wasm, threads, channel }) {
+    if (typeof wasm_bindgen === 'undefined') importScripts(threads ? 'pkg-threads/bitloupe.js' : 'pkg/bitloupe.js');
+    if (!threads) {
+      await wasm_bindgen({ module_or_path: wasm });
+    } else {
+      const memory = new WebAssembly.Memory({ initial: SHARED_MEMORY_PAGES, maximum: 65536, shared: true });
+      await wasm_bindgen({ module_or_path: wasm, memory });
+      await Promise.all(Array.from({ length: threads }, () => new Promise((resolve, reject) => {
+        const pool = new Worker('pool-worker.js');
+        pool.onmessage = () => resolve();
+        pool.onerror = (event) => {
+          event.preventDefault();
+          reject(new Error(`a pool worker could not start: ${event.message}`));
+        };
+        pool.postMessage({ module: wasm, memory, channel });
+      })));
+      wasm_bindgen.buildPool(threads);
+    }
     core = wasm_bindgen;
-    return { value: { defaults: core.recipeDefaults() } };
+    return { value: { defaults: core.recipeDefaults(), threads: Math.max(1, threads || 0) } };
   },
   modelSize({ files, pattern, only2d, params, recipe }) {
     return { value: core.modelSize(files, pattern, only2d, params, recipe) };

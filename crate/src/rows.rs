@@ -4,9 +4,9 @@
 //! Every such computation runs over blocks of [`ROW_BLOCK`] consecutive rows, counted from row
 //! 0, and the blocks' partial results are combined strictly in row order. Floating-point sums
 //! are therefore added in the same order whether one thread walks the blocks in turn or many take
-//! them at once, and the figures are identical bit for bit. Natively the blocks are spread over
-//! rayon's threads; in WebAssembly (one thread per instance) they run in turn, and the page's
-//! worker pool hands each web worker a whole number of blocks (see [`block_rows`]).
+//! them at once, and the figures are identical bit for bit. The blocks are spread over rayon's
+//! threads: native threads, or, in the page's threaded WebAssembly build, a pool of web workers
+//! sharing one memory. The single-threaded WebAssembly build runs them in turn.
 
 use std::ops::Range;
 
@@ -28,11 +28,11 @@ pub fn block_count(rows: usize) -> usize {
 /// Blocks handed out at once: one per thread, so progress can be reported between waves from
 /// the calling thread (a progress callback need not be shareable across threads).
 fn wave() -> usize {
-    #[cfg(not(target_arch = "wasm32"))]
+    #[cfg(any(not(target_arch = "wasm32"), target_feature = "atomics"))]
     {
         rayon::current_num_threads().max(1)
     }
-    #[cfg(target_arch = "wasm32")]
+    #[cfg(all(target_arch = "wasm32", not(target_feature = "atomics")))]
     {
         1
     }
@@ -69,14 +69,14 @@ pub fn map_chunks_mut<T: Send, R: Send>(
     for (w, wave_rows) in out.chunks_mut(chunk * per_wave).enumerate() {
         let first = w * per_wave * chunk_rows;
         let done = first + wave_rows.len() / cols;
-        #[cfg(not(target_arch = "wasm32"))]
+        #[cfg(any(not(target_arch = "wasm32"), target_feature = "atomics"))]
         {
             use rayon::prelude::*;
             let wave_results: Vec<R> =
                 wave_rows.par_chunks_mut(chunk).enumerate().map(|(i, block)| work(first + i * chunk_rows, block)).collect();
             results.extend(wave_results);
         }
-        #[cfg(target_arch = "wasm32")]
+        #[cfg(all(target_arch = "wasm32", not(target_feature = "atomics")))]
         results.extend(wave_rows.chunks_mut(chunk).enumerate().map(|(i, block)| work(first + i * chunk_rows, block)));
         progress(done, rows);
     }
@@ -91,12 +91,12 @@ pub fn map_blocks<R: Send>(rows: usize, work: impl Fn(Range<usize>) -> R + Sync 
 /// Apply `work(i)` to every i in 0..count (independent items such as sweep recipes or search
 /// candidates), returning the results in order.
 pub fn map_items<R: Send>(count: usize, work: impl Fn(usize) -> R + Sync + Send) -> Vec<R> {
-    #[cfg(not(target_arch = "wasm32"))]
+    #[cfg(any(not(target_arch = "wasm32"), target_feature = "atomics"))]
     {
         use rayon::prelude::*;
         (0..count).into_par_iter().map(work).collect()
     }
-    #[cfg(target_arch = "wasm32")]
+    #[cfg(all(target_arch = "wasm32", not(target_feature = "atomics")))]
     {
         (0..count).map(work).collect()
     }

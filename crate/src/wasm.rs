@@ -40,6 +40,44 @@ pub fn start() {
     }));
 }
 
+/// Handed from [`build_pool`] to the waiting pool workers ([`pool_thread`]).
+#[cfg(target_feature = "atomics")]
+type PoolQueue = (std::sync::Mutex<std::sync::mpsc::Sender<rayon::ThreadBuilder>>, std::sync::Mutex<std::sync::mpsc::Receiver<rayon::ThreadBuilder>>);
+
+#[cfg(target_feature = "atomics")]
+fn pool_queue() -> &'static PoolQueue {
+    static QUEUE: std::sync::OnceLock<PoolQueue> = std::sync::OnceLock::new();
+    QUEUE.get_or_init(|| {
+        let (send, receive) = std::sync::mpsc::channel();
+        (std::sync::Mutex::new(send), std::sync::Mutex::new(receive))
+    })
+}
+
+/// Threaded build only: make rayon's global pool out of `threads` web workers that are already
+/// running [`pool_thread`] on this module and memory. The row blocks of every analysis then
+/// spread over them (see `rows`), with the same results as one thread.
+#[cfg(target_feature = "atomics")]
+#[wasm_bindgen(js_name = buildPool)]
+pub fn build_pool(threads: usize) -> Result<(), JsError> {
+    rayon::ThreadPoolBuilder::new()
+        .num_threads(threads)
+        .spawn_handler(|thread| {
+            pool_queue().0.lock().map_err(|_| std::io::Error::other("pool queue poisoned"))?.send(thread).map_err(|_| std::io::Error::other("pool queue closed"))
+        })
+        .build_global()
+        .map_err(|e| JsError::new(&e.to_string()))
+}
+
+/// Threaded build only: a pool worker's whole life — wait for a place in the pool, then run
+/// rayon's work loop (it never returns while the pool lives).
+#[cfg(target_feature = "atomics")]
+#[wasm_bindgen(js_name = poolThread)]
+pub fn pool_thread() -> Result<(), JsError> {
+    let thread = pool_queue().1.lock().map_err(|_| JsError::new("pool queue poisoned"))?.recv().map_err(|e| JsError::new(&e.to_string()))?;
+    thread.run();
+    Ok(())
+}
+
 /// The message of the last panic, if one happened since the last call.
 #[wasm_bindgen(js_name = takePanicMessage)]
 pub fn take_panic_message() -> Option<String> {

@@ -20,14 +20,14 @@ export async function launch() {
 }
 
 /** A fresh page that records every request it makes and every error it throws. */
-export async function openPage(browser, { viewport = { width: 1400, height: 1000 }, colorScheme = 'light' } = {}) {
+export async function openPage(browser, { viewport = { width: 1400, height: 1000 }, colorScheme = 'light', query = '' } = {}) {
   const context = await browser.newContext({ viewport, colorScheme });
   const page = await context.newPage();
   const requests = [];
   const errors = [];
   context.on('request', (r) => requests.push(r.url()));
   page.on('pageerror', (e) => errors.push(e.message));
-  await page.goto(URL_UNDER_TEST);
+  await page.goto(URL_UNDER_TEST + query);
   await page.waitForSelector('body[data-ready=true]', { timeout: 30_000 });
   return { context, page, requests, errors };
 }
@@ -98,12 +98,17 @@ export async function pageState(page) {
   });
 }
 
-/** The identity and figures of the downloaded JSON report: what the compute worker holds. */
-export async function reportFigures(page) {
+/** The downloaded JSON report, parsed. */
+export async function downloadReport(page) {
   const [download] = await Promise.all([page.waitForEvent('download'), page.click('#download-report')]);
   const chunks = [];
   for await (const chunk of await download.createReadStream()) chunks.push(chunk);
-  const report = JSON.parse(Buffer.concat(chunks).toString());
+  return JSON.parse(Buffer.concat(chunks).toString());
+}
+
+/** The identity and figures of the downloaded JSON report: what the compute worker holds. */
+export async function reportFigures(page) {
+  const report = await downloadReport(page);
   const { tensor, label, recipe, bits_per_weight, sqnr_db, mse, output_rel_err } = report;
   return { tensor, label, recipe, bits_per_weight, sqnr_db, mse, output_rel_err };
 }

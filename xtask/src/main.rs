@@ -59,6 +59,30 @@ fn ensure_wasm_target() -> Result {
     Ok(())
 }
 
+/// The threaded core is built with the nightly toolchain: shared memory needs the standard library
+/// rebuilt with atomics (`-Z build-std`), which only nightly offers.
+fn ensure_nightly_wasm() -> Result {
+    let components = output(Command::new("rustup").args(["component", "list", "--toolchain", "nightly", "--installed"]))
+        .ok_or("the threaded core needs the nightly toolchain (rustup toolchain install nightly)")?;
+    if !components.lines().any(|l| l.starts_with("rust-src")) {
+        step("installing rust-src for nightly (the threaded core rebuilds std)");
+        run(Command::new("rustup").args(["component", "add", "rust-src", "--toolchain", "nightly"]))?;
+    }
+    let targets = output(Command::new("rustup").args(["target", "list", "--toolchain", "nightly", "--installed"])).unwrap_or_default();
+    if !targets.lines().any(|l| l.trim() == "wasm32-unknown-unknown") {
+        step("installing the wasm32-unknown-unknown target for nightly");
+        run(Command::new("rustup").args(["target", "add", "wasm32-unknown-unknown", "--toolchain", "nightly"]))?;
+    }
+    Ok(())
+}
+
+/// Flags of the threaded core: atomics and a shared, imported memory (up to wasm32's 4 GiB) whose
+/// thread-local storage each pool worker sets up (the exports wasm-bindgen's thread support uses).
+const THREADED_RUSTFLAGS: &str = "-C target-feature=+atomics,+bulk-memory,+mutable-globals,+simd128 \
+    -C link-arg=--shared-memory -C link-arg=--max-memory=4294967296 -C link-arg=--import-memory \
+    -C link-arg=--export=__wasm_init_tls -C link-arg=--export=__tls_size -C link-arg=--export=__tls_align \
+    -C link-arg=--export=__tls_base";
+
 /// The `wasm-bindgen` version in Cargo.lock; the CLI must match it exactly.
 fn locked_wasm_bindgen_version() -> Result<String> {
     let lock = std::fs::read_to_string(root().join("Cargo.lock")).map_err(|e| format!("Cargo.lock: {e}"))?;
@@ -122,21 +146,38 @@ fn build() -> Result<PathBuf> {
     ensure_wasm_target()?;
     ensure_wasm_bindgen()?;
     ensure_npm_packages()?;
+    ensure_nightly_wasm()?;
     let root = root();
     step("building the core for wasm32 (release)");
     run(Command::new("cargo")
         .args(["build", "--release", "--lib", "-p", "bitloupe", "--target", "wasm32-unknown-unknown"])
         .current_dir(&root))?;
+    step("building the threaded core for wasm32 (release, nightly, shared memory)");
+    let threaded_target = root.join("target/wasm-threads");
+    run(Command::new("cargo")
+        .args(["+nightly", "build", "--release", "--lib", "-p", "bitloupe", "--target", "wasm32-unknown-unknown"])
+        .args(["-Z", "build-std=panic_abort,std", "--target-dir"])
+        .arg(&threaded_target)
+        .env("CARGO_TARGET_WASM32_UNKNOWN_UNKNOWN_RUSTFLAGS", THREADED_RUSTFLAGS)
+        .current_dir(&root))?;
     let dist = root.join("dist");
     let staging = root.join("target").join("dist-staging");
     let _ = std::fs::remove_dir_all(&staging);
-    std::fs::create_dir_all(staging.join("pkg")).map_err(|e| e.to_string())?;
-    let wasm = root.join("target/wasm32-unknown-unknown/release/bitloupe.wasm");
-    run(Command::new("wasm-bindgen")
-        .args(["--target", "no-modules", "--no-typescript", "--out-dir"])
-        .arg(staging.join("pkg"))
-        .arg(&wasm))?;
-    let core = write_core_module(&staging)?;
+    let mut core = String::new();
+    for (pkg, wasm) in [
+        ("pkg", root.join("target/wasm32-unknown-unknown/release/bitloupe.wasm")),
+        ("pkg-threads", threaded_target.join("wasm32-unknown-unknown/release/bitloupe.wasm")),
+    ] {
+        std::fs::create_dir_all(staging.join(pkg)).map_err(|e| e.to_string())?;
+        run(Command::new("wasm-bindgen")
+            .args(["--target", "no-modules", "--no-typescript", "--out-dir"])
+            .arg(staging.join(pkg))
+            .arg(&wasm))?;
+        let base64 = write_core_module(&staging.join(pkg))?;
+        if pkg == "pkg" {
+            core = base64;
+        }
+    }
     copy_dir(&root.join("www"), &staging)?;
     let vendor = staging.join("vendor");
     std::fs::create_dir_all(&vendor).map_err(|e| e.to_string())?;
@@ -152,17 +193,17 @@ fn build() -> Result<PathBuf> {
     Ok(dist)
 }
 
-/// Replace wasm-bindgen's `pkg/bitloupe_bg.wasm` with `pkg/bitloupe_core.js`, a module whose
+/// Replace wasm-bindgen's `bitloupe_bg.wasm` in `pkg` with `bitloupe_core.js`, a module whose
 /// default export is the same bytes in base64; returns that base64. The page imports it as a
 /// script instead of fetching the wasm, so neither the page nor its compute workers need any
 /// `connect-src`: their Content-Security-Policy forbids connecting anywhere.
-fn write_core_module(staging: &Path) -> Result<String> {
+fn write_core_module(pkg: &Path) -> Result<String> {
     use base64::Engine;
-    let wasm_path = staging.join("pkg/bitloupe_bg.wasm");
+    let wasm_path = pkg.join("bitloupe_bg.wasm");
     let wasm = std::fs::read(&wasm_path).map_err(|e| format!("{}: {e}", wasm_path.display()))?;
     let core = base64::engine::general_purpose::STANDARD.encode(wasm);
     let module = format!("// Written by `cargo xtask build`: the core's wasm module in base64.\nexport default '{core}';\n");
-    std::fs::write(staging.join("pkg/bitloupe_core.js"), module).map_err(|e| e.to_string())?;
+    std::fs::write(pkg.join("bitloupe_core.js"), module).map_err(|e| e.to_string())?;
     std::fs::remove_file(&wasm_path).map_err(|e| e.to_string())?;
     Ok(core)
 }
@@ -203,7 +244,7 @@ fn write_single_file(dist: &Path, core: &str) -> Result {
     let mut modules = serde_json::Map::new();
     for entry in std::fs::read_dir(dist).map_err(|e| e.to_string())? {
         let name = entry.map_err(|e| e.to_string())?.file_name().to_string_lossy().into_owned();
-        if name.ends_with(".js") && !["worker.js", "sw.js", "precache.js"].contains(&name.as_str()) {
+        if name.ends_with(".js") && !["worker.js", "pool-worker.js", "sw.js", "precache.js"].contains(&name.as_str()) {
             modules.insert(name.clone(), read(&name)?.into());
         }
     }
@@ -374,6 +415,7 @@ fn answer(mut stream: std::net::TcpStream, dist: &Path, csp: &str, sw_csp: &str)
     write!(
         stream,
         "HTTP/1.1 {status}\r\nContent-Type: {kind}\r\nContent-Length: {}\r\nContent-Security-Policy: {csp}\r\n\
+         Cross-Origin-Opener-Policy: same-origin\r\nCross-Origin-Embedder-Policy: require-corp\r\n\
          Cache-Control: no-cache\r\nX-Content-Type-Options: nosniff\r\nConnection: close\r\n\r\n",
         body.len()
     )?;
