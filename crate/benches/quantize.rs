@@ -30,6 +30,41 @@ fn analyze_4096x4096_int4_g128(bencher: divan::Bencher) {
         .bench(|| analyze(divan::black_box(&tensor), &recipe).unwrap());
 }
 
+/// The speed table's cases (see bench/compare.py): the default recipe with every statistic on
+/// one thread; `f16` cases time reading the tensor from f16 `.safetensors` bytes in
+/// memory (the chunked conversion to f32) plus the analysis.
+#[divan::bench(sample_count = 5, args = ["2048x2048/f32", "2048x2048/f16", "4096x4096/f32", "4096x4096/f16", "4096x14336/f32", "4096x14336/f16"])]
+fn rtn_case(bencher: divan::Bencher, case: &str) {
+    let (shape, dtype) = case.split_once('/').expect("shape/dtype");
+    let (rows, cols) = shape.split_once('x').map(|(r, c)| (r.parse().unwrap(), c.parse().unwrap())).expect("RxC");
+    let tensor = gaussian(rows, cols);
+    let recipe = Recipe::default();
+    let pool = rayon::ThreadPoolBuilder::new().num_threads(1).build().unwrap();
+    if dtype == "f16" {
+        let data = tensor.values.iter().flat_map(|&v| half::f16::from_f32(v).to_le_bytes()).collect();
+        let outgoing = bitloupe::tensor::safetensors::Outgoing { name: "w", dtype: "F16", shape: vec![rows, cols], data };
+        let bytes = bitloupe::tensor::safetensors::write(&[outgoing], &Default::default());
+        bencher.counter(ItemsCount::new(rows * cols)).bench(|| {
+            pool.install(|| {
+                let listing = bitloupe::tensor::list(bytes.as_slice(), Default::default()).unwrap();
+                let t = bitloupe::tensor::read(bytes.as_slice(), listing.choose(None).unwrap()).unwrap();
+                analyze(&t, &recipe).unwrap()
+            })
+        });
+    } else {
+        bencher.counter(ItemsCount::new(rows * cols)).bench(|| pool.install(|| analyze(divan::black_box(&tensor), &recipe).unwrap()));
+    }
+}
+
+/// Round to nearest on every core (compare with `analyze_4096x4096_int4_g128` under
+/// `RAYON_NUM_THREADS=1` for the parallel speed-up; the figures are identical).
+#[divan::bench(sample_count = 10)]
+fn analyze_4096x4096_all_cores(bencher: divan::Bencher) {
+    let tensor = gaussian(4096, 4096);
+    let recipe = Recipe::default();
+    bencher.counter(ItemsCount::new(tensor.values.len())).bench(|| analyze(divan::black_box(&tensor), &recipe).unwrap());
+}
+
 /// A 4096 × 4096 weight and 512 correlated calibration tokens with a few loud channels.
 fn layer_with_calibration() -> (Tensor, bitloupe::calib::Calibration) {
     let weight = gaussian(4096, 4096);

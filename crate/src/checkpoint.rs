@@ -33,6 +33,9 @@ pub struct Selection {
     /// Also take 1-D tensors and scalars (norm scales, biases), which are left as stored by
     /// default, as a model's quantization usually leaves them.
     pub include_1d: bool,
+    /// Memory the analyses may use, when known: a tensor whose analysis needs more is a failed
+    /// row, refused before it is read ([`tensor::check_fits`]).
+    pub available_memory: Option<u64>,
 }
 
 /// One listed file of a checkpoint.
@@ -305,9 +308,12 @@ pub fn run<S: ByteSource + ?Sized>(
             } else {
                 let at = |fraction: f64| bytes_done + (entry.bytes as f64 * fraction.clamp(0.0, 1.0)) as u64;
                 progress(&Progress { tensors_done, tensors, bytes_done, bytes, current: &entry.name });
-                let measured = measure(&shard.label, shard.source, entry, recipe, &mut |done, total| {
-                    let fraction = if total == 0 { 0.0 } else { done as f64 / total as f64 };
-                    progress(&Progress { tensors_done, tensors, bytes_done: at(fraction), bytes, current: &entry.name });
+                let fits = selection.available_memory.map_or(Ok(()), |available| tensor::check_fits(entry, available));
+                let measured = fits.and_then(|()| {
+                    measure(&shard.label, shard.source, entry, recipe, &mut |done, total| {
+                        let fraction = if total == 0 { 0.0 } else { done as f64 / total as f64 };
+                        progress(&Progress { tensors_done, tensors, bytes_done: at(fraction), bytes, current: &entry.name });
+                    })
                 });
                 tensors_done += 1;
                 bytes_done += entry.bytes;
@@ -528,7 +534,7 @@ mod tests {
     }
 
     fn every(pattern: &str) -> Selection {
-        Selection { pattern: pattern.into(), include_1d: false }
+        Selection { pattern: pattern.into(), include_1d: false, available_memory: None }
     }
 
     fn row<'r>(report: &'r CheckpointReport, name: &str) -> &'r TensorRow {
@@ -616,7 +622,7 @@ mod tests {
         assert!(note("layers.0.norm.weight").starts_with("1-D"), "{}", note("layers.0.norm.weight"));
         assert_eq!(row(&report, "layers.1.conv.weight").status, Status::Quantized);
 
-        let with_1d = Selection { pattern: "*".into(), include_1d: true };
+        let with_1d = Selection { pattern: "*".into(), include_1d: true, available_memory: None };
         let report = run(&shards(&files), &with_1d, &Recipe::default(), &mut |_| {}).unwrap();
         assert_eq!(row(&report, "layers.0.norm.weight").status, Status::Quantized);
         let index = row(&report, "layers.0.index");

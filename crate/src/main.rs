@@ -458,7 +458,7 @@ Per-tensor error is only a proxy: check any recipe on the model's own task befor
             .zip(listings)
             .map(|((path, source), listing)| Shard { label: path.display().to_string(), source, listing })
             .collect();
-        let selection = Selection { pattern: args.pattern, include_1d: args.include_1d };
+        let selection = Selection { pattern: args.pattern, include_1d: args.include_1d, available_memory: available_memory() };
         let mut bar = ReportBar::new();
         let report = checkpoint::run(&shards, &selection, &recipe, &mut |p| bar.show(p));
         bar.clear();
@@ -550,11 +550,21 @@ Per-tensor error is only a proxy: check any recipe on the model's own task befor
         }
         let (file, listing) = open(path, options)?;
         let entry = listing.choose(name).map_err(Failure::at(path))?;
+        if let Some(available) = available_memory() {
+            tensor::check_fits(entry, available).map_err(Failure::at(path))?;
+        }
         let mut tensor = tensor::read(&file, entry).map_err(Failure::at(path))?;
         if tensor.name.is_empty() {
             tensor.name = stem(path);
         }
         Ok(tensor)
+    }
+
+    /// Memory the system can still give this process (Linux's MemAvailable), when it says.
+    fn available_memory() -> Option<u64> {
+        let info = std::fs::read_to_string("/proc/meminfo").ok()?;
+        let line = info.lines().find(|l| l.starts_with("MemAvailable:"))?;
+        line.split_whitespace().nth(1)?.parse::<u64>().ok().map(|kib| kib * 1024)
     }
 
     fn stem(path: &Path) -> String {
