@@ -517,9 +517,24 @@ fn bench() -> Result {
     let root = root();
     step("native benchmarks (divan)");
     run(Command::new("cargo").args(["bench", "-p", "bitloupe"]).current_dir(&root))?;
-    run(Command::new("cargo").args(["build", "--release", "-p", "bitloupe"]).current_dir(&root))?;
+    run(Command::new("cargo").args(["build", "--release", "-p", "bitloupe", "--bin", "bitloupe", "--example", "bench_case"]).current_dir(&root))?;
     ensure_chromium()?;
     let dist = build()?;
+    step("speed table: native, wasm under Node, numpy (bench/compare.py)");
+    let node_pkg = root.join("target/bench-node");
+    run(Command::new("wasm-bindgen")
+        .args(["--target", "nodejs", "--no-typescript", "--out-dir"])
+        .arg(&node_pkg)
+        .arg(root.join("target/wasm32-unknown-unknown/release/bitloupe.wasm")))?;
+    if output(Command::new("python3").args(["-c", "import numpy"])).is_none() {
+        step("installing numpy for the comparison (fixtures/requirements.txt)");
+        run(Command::new("python3").args(["-m", "pip", "install", "-r"]).arg(root.join("fixtures/requirements.txt")))?;
+    }
+    run(Command::new("python3")
+        .arg(root.join("bench/compare.py"))
+        .env("BENCH_CASE", root.join("target/release/examples/bench_case"))
+        .env("WASM_PKG", &node_pkg)
+        .current_dir(&root))?;
     step("in-browser benchmark (headless Chromium)");
     let port = free_port()?;
     std::thread::spawn(move || serve_dir(&dist, port));
