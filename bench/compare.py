@@ -11,7 +11,9 @@ column) three ways on the same file:
   operations use one core; BLAS is not involved, and its thread count is pinned to 1 anyway).
 
 Each time is the median of several runs of the analysis alone (the file is opened once, before).
-Peak memory is the native process's peak resident set and the wasm instance's memory size,
+"plain copy" is the time to copy the tensor into fresh memory on one thread: the same bytes read
+and written as the analysis, so the floor memory traffic sets. Peak memory is the native
+process's peak resident set above its size before opening the file and the wasm instance's memory size,
 both divided by the tensor's f32 size. Prints one markdown table.
 
 Environment: BENCH_CASE (path of the native example), WASM_PKG (folder of the Node build).
@@ -109,6 +111,7 @@ def main():
                         wasm["peak_bytes"] / f32_bytes,
                         single["open_ms"],
                         wasm["open_ms"],
+                        single["copy_ms"],
                     )
                 )
                 print(f"done {rows}x{cols} {dtype}", file=sys.stderr)
@@ -116,10 +119,10 @@ def main():
     print(f"Measured {date.today().isoformat()} on {platform.machine()}, {cores} logical cores, "
           f"numpy {np.__version__}, Node {subprocess.run(['node', '--version'], capture_output=True, text=True).stdout.strip()}.")
     print()
-    print("| case | native 1 thread | native ns/weight | native all cores | speed-up | wasm | wasm / native | numpy | numpy / native | peak native | peak wasm | open native | open wasm |")
-    print("|---|---|---|---|---|---|---|---|---|---|---|---|---|")
-    for case, one, pool, wasm, nump, ns, peak_n, peak_w, open_n, open_w in rows_out:
-        print(f"| {case} | {one:.1f} ms | {ns:.2f} | {pool:.1f} ms | {one / pool:.2f}× | {wasm:.1f} ms | {wasm / one:.2f}× | "
+    print("| case | native 1 thread | ns/weight | plain copy | native all cores | speed-up | wasm | wasm / native | numpy | numpy / native | peak native | peak wasm | open native | open wasm |")
+    print("|---|---|---|---|---|---|---|---|---|---|---|---|---|---|")
+    for case, one, pool, wasm, nump, ns, peak_n, peak_w, open_n, open_w, copy in rows_out:
+        print(f"| {case} | {one:.1f} ms | {ns:.2f} | {copy:.1f} ms | {pool:.1f} ms | {one / pool:.2f}× | {wasm:.1f} ms | {wasm / one:.2f}× | "
               f"{nump:.0f} ms | {nump / one:.1f}× | {peak_n:.2f}× | {peak_w:.2f}× | {open_n:.0f} ms | {open_w:.0f} ms |")
 
 
