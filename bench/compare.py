@@ -90,7 +90,7 @@ def main():
             for dtype in DTYPES:
                 path = os.path.join(tmp, f"w_{rows}x{cols}_{dtype}.npy")
                 np.save(path, w if dtype == "f32" else w.astype(np.float16))
-                repeats = 5 if rows * cols <= 4096 * 4096 else 3
+                repeats = 9 if rows * cols <= 4096 * 4096 else 5
                 single = run_json([bench_case, path, str(repeats), "1"])
                 pooled = run_json([bench_case, path, str(repeats), "0"])
                 wasm = run_json(["node", os.path.join(here, "wasm_case.mjs"), wasm_pkg, path, str(repeats)])

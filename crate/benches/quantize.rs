@@ -25,9 +25,10 @@ fn gaussian(rows: usize, cols: usize) -> Tensor {
 fn analyze_4096x4096_int4_g128(bencher: divan::Bencher) {
     let tensor = gaussian(4096, 4096);
     let recipe = Recipe::default();
+    let one = rayon::ThreadPoolBuilder::new().num_threads(1).build().unwrap();
     bencher
         .counter(ItemsCount::new(tensor.values.len()))
-        .bench(|| analyze(divan::black_box(&tensor), &recipe).unwrap());
+        .bench(|| one.install(|| analyze(divan::black_box(&tensor), &recipe).unwrap()));
 }
 
 /// The speed table's cases (see bench/compare.py): the default recipe with every statistic on
@@ -56,8 +57,8 @@ fn rtn_case(bencher: divan::Bencher, case: &str) {
     }
 }
 
-/// Round to nearest on every core (compare with `analyze_4096x4096_int4_g128` under
-/// `RAYON_NUM_THREADS=1` for the parallel speed-up; the figures are identical).
+/// Round to nearest on every core (compare with the single-threaded
+/// `analyze_4096x4096_int4_g128`; the figures are identical).
 #[divan::bench(sample_count = 10)]
 fn analyze_4096x4096_all_cores(bencher: divan::Bencher) {
     let tensor = gaussian(4096, 4096);
