@@ -25,9 +25,20 @@ pub fn block_count(rows: usize) -> usize {
     rows.div_ceil(ROW_BLOCK)
 }
 
-/// Blocks handed out at once: one per thread, so progress can be reported between waves from
-/// the calling thread (a progress callback need not be shareable across threads).
-fn wave() -> usize {
+/// Progress reports per run at most: each ends a wave of blocks, and every wave wakes the pool's
+/// threads again, which costs far more in a browser's web workers than natively.
+const WAVES: usize = 8;
+
+/// Blocks handed out at once, out of `blocks`: a whole number per thread and at most [`WAVES`]
+/// waves, so that progress can be reported between waves from the calling thread (a progress
+/// callback need not be shareable across threads).
+fn blocks_per_wave(blocks: usize) -> usize {
+    let threads = threads();
+    blocks.div_ceil(WAVES).div_ceil(threads).max(1) * threads
+}
+
+/// Threads that take blocks.
+fn threads() -> usize {
     #[cfg(any(not(target_arch = "wasm32"), target_feature = "atomics"))]
     {
         rayon::current_num_threads().max(1)
@@ -64,7 +75,7 @@ pub fn map_chunks_mut<T: Send, R: Send>(
     }
     let rows = out.len() / cols;
     let chunk = chunk_rows * cols;
-    let per_wave = wave();
+    let per_wave = blocks_per_wave(rows.div_ceil(chunk_rows));
     let mut results = Vec::with_capacity(rows.div_ceil(chunk_rows));
     for (w, wave_rows) in out.chunks_mut(chunk * per_wave).enumerate() {
         let first = w * per_wave * chunk_rows;
