@@ -515,8 +515,8 @@ mod tests {
         // No elements, but a row count that would size a scale array of 2^32 entries.
         let empty = forged(&row, "[4294967296, 0]", &[Outgoing { name: "codes", dtype: "U8", shape: vec![0], data: vec![] }]);
         assert!(unpack(&empty[..]).unwrap_err().to_string().contains("holds no elements"));
-        // Two kept columns claimed a thousand times over a tall tensor: 2 × 10^8 positions for
-        // no stored value; refused from the counts.
+        // One kept column listed a thousand times over a tall tensor: 10^8 positions for no
+        // stored value; refused from the counts.
         let rows = 100_000;
         let kept = Recipe { keep_cols: 1, ..row };
         let tall = forged(
