@@ -258,7 +258,7 @@ proptest! {
     /// extremes (min/max, absmax, or ⌊log2 absmax⌋ for MX; crate/src/grid.rs and
     /// crate/src/formats/mod.rs), so:
     /// * codebooks and the MX float blocks: always a fixed point (x̂ has at most 2^b distinct
-    ///   values, which are the codebook's own optimum; an MX element rounds its block's largest
+    ///   values, which are already the codebook's best levels; an MX element rounds its block's largest
     ///   magnitude to no less than 2^emax and no more than the format's maximum < 2^(emax+1));
     /// * MXINT8: a fixed point unless a block used the code −128 (−2·X), the only element whose
     ///   magnitude lifts ⌊log2 max|x̂|⌋ by one and so doubles the second pass's block scale;
