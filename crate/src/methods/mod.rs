@@ -241,7 +241,7 @@ impl RowObserver for () {
 }
 
 /// What [`quantize_groups`] produces.
-pub struct Grouped<T, B> {
+pub(crate) struct Grouped<T, B> {
     /// The reconstruction.
     pub out: Array2<f32>,
     /// Every group's parameters, row-major (one for a per-tensor recipe).
