@@ -62,8 +62,8 @@ fn ensure_wasm_target() -> Result {
 /// The threaded core is built with the nightly toolchain: shared memory needs the standard library
 /// rebuilt with atomics (`-Z build-std`), which only nightly offers.
 fn ensure_nightly_wasm() -> Result {
-    let components = output(Command::new("rustup").args(["component", "list", "--toolchain", "nightly", "--installed"]))
-        .ok_or("the threaded core needs the nightly toolchain (rustup toolchain install nightly)")?;
+    ensure_nightly()?;
+    let components = output(Command::new("rustup").args(["component", "list", "--toolchain", "nightly", "--installed"])).unwrap_or_default();
     if !components.lines().any(|l| l.starts_with("rust-src")) {
         step("installing rust-src for nightly (the threaded core rebuilds std)");
         run(Command::new("rustup").args(["component", "add", "rust-src", "--toolchain", "nightly"]))?;
@@ -465,11 +465,17 @@ const FUZZ_TARGETS: [&str; 6] = ["npy", "safetensors", "text", "calib", "unpack"
 /// Seconds each target runs in the smoke pass (after replaying its seeds and regressions).
 const FUZZ_SMOKE_SECONDS: u32 = 5;
 
-fn ensure_cargo_fuzz() -> Result {
+/// The nightly toolchain: libFuzzer's instrumentation and the threaded core's rebuilt std need it.
+fn ensure_nightly() -> Result {
     if output(Command::new("rustup").args(["run", "nightly", "rustc", "--version"])).is_none() {
-        step("installing the nightly toolchain (libFuzzer's instrumentation needs it)");
+        step("installing the nightly toolchain (the fuzz pass and the threaded core need it)");
         run(Command::new("rustup").args(["toolchain", "install", "nightly", "--profile", "minimal"]))?;
     }
+    Ok(())
+}
+
+fn ensure_cargo_fuzz() -> Result {
+    ensure_nightly()?;
     if output(Command::new("cargo").args(["fuzz", "--version"])).is_none() {
         step("installing cargo-fuzz");
         run(Command::new("cargo").args(["install", "cargo-fuzz"]))?;
