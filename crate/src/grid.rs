@@ -13,7 +13,7 @@
 
 use crate::error::Error;
 use crate::recipe::{Recipe, ScaleDType};
-use crate::simd::{as_places, quads, quads_mut, F32x4};
+use crate::simd::{as_places, larger, quads, quads_mut, smaller, F32x4};
 use std::mem::MaybeUninit;
 
 /// The fitted parameters of one group.
@@ -64,7 +64,8 @@ impl IntGrid {
     }
 
     /// Fit to the range [lo, hi] with lo ≤ 0 ≤ hi (a clipped range, for example).
-    pub fn fit_range(&self, lo: f32, hi: f32) -> Result<GroupParams, ScaleOverflow> {        let raw = if self.symmetric { (-lo).max(hi) / self.qmax } else { (hi - lo) / self.qmax };
+    pub fn fit_range(&self, lo: f32, hi: f32) -> Result<GroupParams, ScaleOverflow> {
+        let raw = if self.symmetric { larger(-lo, hi) / self.qmax } else { (hi - lo) / self.qmax };
         let scale = if raw == 0.0 { 1.0 } else { self.scale_dtype.round(raw).ok_or(ScaleOverflow(raw))? };
         let zero = if self.symmetric { 0.0 } else { (-lo / scale).round_ties_even().clamp(0.0, self.qmax) };
         Ok(GroupParams { scale, zero })
@@ -107,8 +108,8 @@ impl IntGrid {
 
 /// Smallest and largest value of a slice ((0, 0) for an empty one, which then gets scale 1).
 pub fn min_max(x: &[f32]) -> (f32, f32) {
-    // Two vectors of lanes keep two independent chains in flight. The lane `max`/`min` skip a
-    // NaN, like the tail's `f32::min`/`max`; the tensor's finiteness is checked elsewhere.
+    // Two vectors of lanes keep two independent chains in flight. Every comparison here skips a
+    // NaN (as `f32::min`/`max` would); the tensor's finiteness is checked elsewhere.
     let zero = F32x4::splat(0.0);
     let (mut lo, mut hi) = ([zero; 2], [zero; 2]);
     let (octets, rest) = x.as_chunks::<8>();
@@ -120,8 +121,8 @@ pub fn min_max(x: &[f32]) -> (f32, f32) {
             hi[half] = hi[half].max(v);
         }
     }
-    let lo = lo[0].min(lo[1]).to_array().into_iter().chain(rest.iter().copied()).fold(0f32, f32::min);
-    let hi = hi[0].max(hi[1]).to_array().into_iter().chain(rest.iter().copied()).fold(0f32, f32::max);
+    let lo = lo[0].min(lo[1]).to_array().into_iter().chain(rest.iter().copied()).fold(0f32, smaller);
+    let hi = hi[0].max(hi[1]).to_array().into_iter().chain(rest.iter().copied()).fold(0f32, larger);
     (lo, hi)
 }
 

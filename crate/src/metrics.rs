@@ -10,7 +10,7 @@
 //! [`OUTLIER_SCORE`] or more marks an outlier column). Sums run in f32 over short blocks
 //! and then in f64, so their relative rounding error stays near 1e-6 at worst.
 
-use crate::simd::{F32x4, LANES};
+use crate::simd::{larger, F32x4, LANES};
 use serde::Serialize;
 
 /// Columns whose largest magnitude is at least this many times the median column's are marked
@@ -20,11 +20,6 @@ pub const OUTLIER_SCORE: f32 = 4.0;
 /// Elements summed in f32 before their sums are added to the f64 totals.
 const SUM_BLOCK: usize = 256;
 
-/// max for values known not to be NaN; unlike `f32::max` it compiles to one vector instruction.
-#[inline(always)]
-fn larger(a: f32, b: f32) -> f32 {
-    if b > a { b } else { a }
-}
 
 /// Columns `at..at + len` of `c` in groups of eight.
 fn octets(c: &mut [f32], at: usize, len: usize) -> &mut [[f32; 8]] {

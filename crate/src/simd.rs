@@ -17,6 +17,20 @@ pub struct F32x4(imp::Lanes);
 /// Lanes per vector.
 pub const LANES: usize = 4;
 
+/// max for values known not to be NaN. Unlike `f32::max`, whose NaN rule WebAssembly's own
+/// instruction does not share (so it becomes a library call there), this is one instruction
+/// everywhere.
+#[inline(always)]
+pub fn larger(a: f32, b: f32) -> f32 {
+    if b > a { b } else { a }
+}
+
+/// min for values known not to be NaN (see [`larger`]).
+#[inline(always)]
+pub fn smaller(a: f32, b: f32) -> f32 {
+    if b < a { b } else { a }
+}
+
 /// `s` as whole vectors of four values and the rest.
 #[inline(always)]
 pub fn quads(s: &[f32]) -> (&[[f32; 4]], &[f32]) {

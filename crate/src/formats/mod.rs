@@ -213,7 +213,7 @@ impl Grid {
 
     /// Fit to the range [lo, hi] (lo ≤ 0 ≤ hi), for example a clipped one.
     pub fn fit_range(&self, lo: f32, hi: f32) -> std::result::Result<GroupParams, ScaleOverflow> {
-        let absmax = (-lo).max(hi);
+        let absmax = crate::simd::larger(-lo, hi);
         match *self {
             Grid::Int(g) => g.fit_range(lo, hi),
             Grid::Scaled { format, scale_dtype } => {
