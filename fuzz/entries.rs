@@ -130,7 +130,7 @@ pub fn recipe(data: &[u8]) {
     refused(text.parse::<Method>());
     refused(text.parse::<Format>());
     refused(text.parse::<CalibKind>());
-    let Ok(recipe) = serde_json::from_str::<Recipe>(&text) else { return };
+    let Some(recipe) = refused(Recipe::from_json(&text)) else { return };
     if refused(recipe.validate()).is_none() {
         return;
     }

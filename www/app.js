@@ -198,7 +198,12 @@ function setRecipe(recipe) {
   $('format').value = recipe.format;
   $('double-quant').checked = recipe.double_quant;
   $('bits').value = String(recipe.bits);
-  $('granularity').value = typeof recipe.granularity === 'string' ? recipe.granularity : String(recipe.granularity.group);
+  const granularity = typeof recipe.granularity === 'string' ? recipe.granularity : String(recipe.granularity.group);
+  // A link or a format may bring a group size the list does not offer; it joins the list.
+  if (![...$('granularity').options].some((o) => o.value === granularity)) {
+    $('granularity').add(new Option(`groups of ${granularity}`, granularity));
+  }
+  $('granularity').value = granularity;
   $('symmetric').value = String(recipe.symmetric);
   $('scale-dtype').value = recipe.scale_dtype;
   $('method').value = recipe.method;
@@ -1124,18 +1129,20 @@ function writeLink() {
   history.replaceState(null, '', `#${params}`);
 }
 
-function readLink() {
+/** The core reads and checks the link's recipe as it would check an analysis, so a link never
+ * puts half a recipe, or one the page cannot run, on screen. */
+async function readLink() {
   const params = new URLSearchParams(location.hash.slice(1));
+  const map = params.get('map');
+  if (map && METRICS[map]) $('map-metric').value = map;
   const recipe = params.get('recipe');
   if (!recipe) return;
   try {
-    setRecipe({ ...state.defaults.recipe, ...JSON.parse(recipe) });
+    setRecipe(await bridge.request('recipeFromLink', { text: recipe }));
     showDependentControls();
-  } catch {
-    showMessage('recipe-message', 'The link holds a recipe this page cannot read; the defaults are shown.');
+  } catch (err) {
+    showMessage('recipe-message', `The link's recipe was not applied (${err.message}); the defaults are shown.`);
   }
-  const map = params.get('map');
-  if (map && METRICS[map]) $('map-metric').value = map;
 }
 
 $('copy-link').addEventListener('click', async () => {
@@ -1155,7 +1162,7 @@ async function start() {
     const { defaults } = await bridge.start();
     state.defaults = defaults;
     buildControls(defaults);
-    readLink();
+    await readLink();
     document.body.dataset.ready = 'true';
   } catch (err) {
     $('status').textContent = `The page could not start its compute worker: ${err.message}`;

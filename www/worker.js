@@ -117,6 +117,9 @@ const handlers = {
   modelSize({ files, pattern, only2d, params, recipe }) {
     return { value: core.modelSize(files, pattern, only2d, params, recipe) };
   },
+  recipeFromLink({ text }) {
+    return { value: core.recipeFromLink(text) };
+  },
   recipeForFormat({ format }) {
     return { value: core.recipeForFormat(format) };
   },

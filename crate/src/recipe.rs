@@ -249,6 +249,18 @@ impl Default for Recipe {
 }
 
 impl Recipe {
+    /// A recipe from its JSON (the page's links and requests): missing fields
+    /// take their defaults, unknown ones are refused. The ranges are not checked here; see
+    /// [`Recipe::validate`].
+    pub fn from_json(text: &str) -> Result<Self> {
+        // serde would also read a struct from a JSON array, field by field in order, and then
+        // explain a bad element by its position alone.
+        if !text.trim_start().starts_with('{') {
+            return Err(Error::BadRecipe { detail: r#"a recipe is a JSON object of named fields, such as {"bits": 3}"#.into() });
+        }
+        serde_json::from_str(text).map_err(|e| Error::BadRecipe { detail: e.to_string() })
+    }
+
     /// The default recipe for a format: blocks of 64 for NF4 (the QLoRA paper's choice), of 32
     /// for the MX formats (their specification) with E8M0 scales, symmetric groups of 32 for the
     /// small floats, and a 4-bit codebook per row.
@@ -417,8 +429,20 @@ mod tests {
         let r = Recipe { bits: 3, granularity: Granularity::Group(32), symmetric: true, scale_dtype: ScaleDType::BF16, ..Recipe::default() };
         let json = serde_json::to_string(&r).unwrap();
         assert!(json.starts_with(r#"{"format":"int","double_quant":false,"bits":3,"granularity":{"group":32},"symmetric":true,"scale_dtype":"bf16","method":"rtn""#), "{json}");
-        assert_eq!(serde_json::from_str::<Recipe>(&json).unwrap(), r);
-        assert_eq!(serde_json::from_str::<Recipe>("{}").unwrap(), Recipe::default());
-        assert!(serde_json::from_str::<Recipe>(r#"{"bitz":3}"#).is_err());
+        assert_eq!(Recipe::from_json(&json).unwrap(), r);
+        assert_eq!(Recipe::from_json(" {}").unwrap(), Recipe::default());
+    }
+
+    #[test]
+    fn a_recipe_from_json_is_an_object_of_known_fields() {
+        let message = |text: &str| Recipe::from_json(text).unwrap_err().to_string();
+        assert!(message(r#"{"bitz":3}"#).starts_with("invalid recipe: unknown field `bitz`"), "{}", message(r#"{"bitz":3}"#));
+        assert!(message(r#"{"damp":"x"}"#).contains(r#"invalid type: string "x", expected f32"#));
+        // An array would be read field by field in order.
+        for text in ["[3]", "3", "", "null"] {
+            assert!(message(text).ends_with(r#"a recipe is a JSON object of named fields, such as {"bits": 3}"#), "{text}");
+        }
+        // The ranges are for `validate`.
+        assert_eq!(Recipe::from_json(r#"{"bits":99}"#).unwrap().bits, 99);
     }
 }

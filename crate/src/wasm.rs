@@ -145,6 +145,15 @@ pub fn model_size(files: js_sys::Array, pattern: &str, only_2d: bool, params: f6
     to_js(&crate::sizing::model_size(&entries, pattern, only_2d, &recipe))
 }
 
+/// The recipe a page link holds (its JSON text, missing fields at their defaults), checked as
+/// an analysis would check it, so the page never shows a recipe it cannot run.
+#[wasm_bindgen(js_name = recipeFromLink)]
+pub fn recipe_from_link(text: &str) -> Result<JsValue, JsError> {
+    let recipe = Recipe::from_json(text).map_err(js_error)?;
+    recipe.validate().map_err(js_error)?;
+    to_js(&recipe)
+}
+
 /// The default recipe for a format (see `Recipe::for_format`).
 #[wasm_bindgen(js_name = recipeForFormat)]
 pub fn recipe_for_format(name: &str) -> Result<JsValue, JsError> {
@@ -193,7 +202,7 @@ fn parse_recipe(recipe: JsValue) -> Result<Recipe, JsError> {
         return Ok(Recipe::default());
     }
     let text = js_sys::JSON::stringify(&recipe).ok().and_then(|s| s.as_string()).unwrap_or_default();
-    serde_json::from_str(&text).map_err(|e| JsError::new(&format!("invalid recipe: {e}")))
+    Recipe::from_json(&text).map_err(js_error)
 }
 
 /// A progress callback that forwards to a JS function, when one is given.
