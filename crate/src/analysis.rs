@@ -152,7 +152,8 @@ impl Measure {
         rows::map_blocks(x.len() / cols.max(1), |range| {
             let mut block = self.start(range.start, range.len());
             for r in range {
-                self.row(&mut block, r, &x[r * cols..(r + 1) * cols], &x_hat[r * cols..(r + 1) * cols]);
+                self.groups(&mut block, r, 0, &x[r * cols..(r + 1) * cols], &x_hat[r * cols..(r + 1) * cols]);
+                self.end_row(&mut block, r);
             }
             block
         })
@@ -187,15 +188,18 @@ impl RowObserver for Measure {
         BlockSums { groups: vec![ErrorSums::default(); groups], columns: self.columns.then(|| ColumnBlock::new(self.cols)) }
     }
 
-    fn row(&self, block: &mut BlockSums, r: usize, x: &[f32], x_hat: &[f32]) {
-        let first = if self.whole_tensor { 0 } else { (r % ROW_BLOCK) * self.per_row };
+    fn groups(&self, block: &mut BlockSums, r: usize, first_col: usize, x: &[f32], x_hat: &[f32]) {
+        let first = if self.whole_tensor { 0 } else { (r % ROW_BLOCK) * self.per_row + first_col / self.width };
         for (k, (xg, og)) in x.chunks(self.width).zip(x_hat.chunks(self.width)).enumerate() {
             let sums = &mut block.groups[if self.whole_tensor { 0 } else { first + k }];
             match &mut block.columns {
-                Some(columns) => sums.add_with_columns(xg, og, columns, k * self.width),
+                Some(columns) => sums.add_with_columns(xg, og, columns, first_col + k * self.width),
                 None => sums.add(xg, og),
             }
         }
+    }
+
+    fn end_row(&self, block: &mut BlockSums, _: usize) {
         if let Some(columns) = &mut block.columns {
             columns.end_row();
         }

@@ -139,10 +139,10 @@ pub fn rtn(w: ArrayView2<f32>, recipe: &Recipe, kept: &keep::Kept) -> Result<Qua
     Ok(round_to_nearest(w, recipe, kept, &(), &mut |_, _| {})?.0)
 }
 
-/// Round to nearest over the rows of `w` in one pass, showing each finished row and its
-/// reconstruction to `observer` while both are still in cache. This is the plain recipe's path,
-/// and the speed benchmark's subject.
-pub fn rtn_rows<O: RowObserver>(
+/// Round to nearest over the rows of `w` in one pass, showing each finished run of groups and
+/// its reconstruction to `observer` while both are still in cache. This is the plain recipe's
+/// path, and the speed benchmark's subject.
+pub(crate) fn rtn_rows<O: RowObserver>(
     w: ArrayView2<f32>,
     recipe: &Recipe,
     observer: &O,
@@ -222,22 +222,38 @@ pub fn group_width(granularity: Granularity, cols: usize) -> usize {
     }
 }
 
-/// Sees every finished row of a block of rows (see [`crate::rows`]) and sums what it needs into
-/// one partial result per block; the caller combines the partials in row order.
-pub trait RowObserver: Sync {
+/// Sees every finished block of rows (see [`crate::rows`]), a run of whole groups at a time, and
+/// sums what it needs into one partial result per block; the caller combines the partials in
+/// row order.
+pub(crate) trait RowObserver: Sync {
     /// The partial result of one block.
     type Block: Send;
     /// An empty partial result for the block of `rows` rows starting at `first_row`.
     fn start(&self, first_row: usize, rows: usize) -> Self::Block;
-    /// Take in row `r` of the tensor (`x`) and its reconstruction (`x_hat`).
-    fn row(&self, block: &mut Self::Block, r: usize, x: &[f32], x_hat: &[f32]);
+    /// Take in the whole groups of row `r` from column `first_col` on: the tensor's values `x`
+    /// and their reconstruction `x_hat`. A row's runs come in column order.
+    fn groups(&self, block: &mut Self::Block, r: usize, first_col: usize, x: &[f32], x_hat: &[f32]);
+    /// Row `r` is complete.
+    fn end_row(&self, block: &mut Self::Block, r: usize);
 }
 
 /// Observes nothing.
 impl RowObserver for () {
     type Block = ();
     fn start(&self, _: usize, _: usize) {}
-    fn row(&self, _: &mut (), _: usize, _: &[f32], _: &[f32]) {}
+    fn groups(&self, _: &mut (), _: usize, _: usize, _: &[f32], _: &[f32]) {}
+    fn end_row(&self, _: &mut (), _: usize) {}
+}
+
+/// Columns a run of groups spans at most (unless one group is wider): a run's values, its
+/// reconstruction and its three per-column sums (20 KiB in all) are still in L1 when the
+/// observer reads them; a whole wide row would not be (14336 columns: 280 KiB).
+const RUN_COLUMNS: usize = 1024;
+
+/// The runs of whole groups of `width` columns that a row of `cols` columns is observed in.
+fn runs(cols: usize, width: usize) -> impl Iterator<Item = std::ops::Range<usize>> {
+    let step = (RUN_COLUMNS / width).max(1) * width;
+    (0..cols).step_by(step).map(move |start| start..(start + step).min(cols))
 }
 
 /// What [`quantize_groups`] produces.
@@ -256,7 +272,7 @@ pub(crate) struct Grouped<T, B> {
 /// `fit(values, row, first column)` chooses the parameters (kept values are zeroed first so they
 /// do not stretch the range) and a note about the group, `quantize(params, values, out, first
 /// column)` writes the group's reconstruction — every place of `out`, which is fresh memory —
-/// and `observer` sees every finished row. For a per-tensor recipe the one fit sees the whole
+/// and `observer` sees every finished run of groups. For a per-tensor recipe the one fit sees the whole
 /// tensor row-major, so its value j belongs to column j mod cols.
 pub(crate) fn quantize_groups<T: Send, O: RowObserver>(
     w: ArrayView2<f32>,
@@ -295,21 +311,26 @@ pub(crate) fn quantize_groups<T: Send, O: RowObserver>(
         for (i, out_row) in out_block.chunks_mut(cols).enumerate() {
             let r = first + i;
             let x_row = &all[r * cols..(r + 1) * cols];
-            for (k, (x, o)) in x_row.chunks(width).zip(out_row.chunks_mut(width)).enumerate() {
-                let p = match whole {
-                    Some(p) => p,
-                    None => {
-                        let (p, note) = fit(x, r, k * width).map_err(overflow(r, k * width))?;
-                        params.push(p);
-                        block_notes.push(note);
-                        p
-                    }
-                };
-                quantize(p, x, o, k * width);
+            for run in runs(cols, width) {
+                let (x_run, out_run) = (&x_row[run.clone()], &mut out_row[run.clone()]);
+                for (k, (x, o)) in x_run.chunks(width).zip(out_run.chunks_mut(width)).enumerate() {
+                    let col0 = run.start + k * width;
+                    let p = match whole {
+                        Some(p) => p,
+                        None => {
+                            let (p, note) = fit(x, r, col0).map_err(overflow(r, col0))?;
+                            params.push(p);
+                            block_notes.push(note);
+                            p
+                        }
+                    };
+                    quantize(p, x, o, col0);
+                }
+                // SAFETY: the groups tile the run and `quantize` wrote every place of each.
+                let written = unsafe { std::slice::from_raw_parts(out_run.as_ptr().cast::<f32>(), out_run.len()) };
+                observer.groups(&mut seen, r, run.start, x_run, written);
             }
-            // SAFETY: the groups tile the row and `quantize` wrote every place of each.
-            let row = unsafe { std::slice::from_raw_parts(out_row.as_ptr().cast::<f32>(), cols) };
-            observer.row(&mut seen, r, x_row, row);
+            observer.end_row(&mut seen, r);
         }
         Ok::<_, Error>((params, block_notes, seen))
     });
