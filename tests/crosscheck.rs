@@ -217,27 +217,13 @@ fn uniform_noise_follows_the_step_squared_over_twelve_rule() {
     }
 }
 
-/// Source: ml_dtypes 0.5.4's float4_e2m1fn, float6_e2m3fn, float6_e3m2fn, float8_e4m3fn and
-/// float8_e5m2 casts (OCP OFP8 and MX v1.0 element types): every representable value, every
-/// exact tie between neighbours, values just past the ties, random values, subnormal
-/// underflow and −0 agree exactly. Past the maximum ml_dtypes gives NaN (E4M3) or ∞ (E5M2) where
-/// we saturate to ±max, the specifications' saturating mode.
+#[path = "shared/small_float_casts.rs"]
+mod small_float_casts;
+
+/// See `tests/shared/small_float_casts.rs` (ml_dtypes 0.5.4 casts).
 #[test]
 fn small_float_casts_match_ml_dtypes() {
-    use bitloupe::formats::minifloat::{E2M1, E2M3, E3M2, E4M3, E5M2};
-    let m = manifest();
-    for f in [E2M1, E2M3, E3M2, E4M3, E5M2] {
-        let case = &m["formats"]["casts"][f.name];
-        assert_eq!(case["max"].as_f64().unwrap() as f32, f.max, "{} maximum", f.name);
-        let inputs = floats(&case["input"]);
-        for (x, want) in inputs.iter().zip(case["expected"].as_array().unwrap()) {
-            let got = f.round(*x);
-            match want.as_f64() {
-                Some(w) => assert_eq!(got.to_bits(), (w as f32).to_bits(), "{} of {x:e}: {got} vs {w}", f.name),
-                None => assert_eq!(got, f.max.copysign(*x), "{} saturates {x:e}", f.name),
-            }
-        }
-    }
+    small_float_casts::check_small_float_casts(&std::fs::read_to_string(fixture("manifest.json")).unwrap());
 }
 
 /// Source: QLoRA (Dettmers et al., NeurIPS 2023), section 3 and appendix: NF4's levels are built

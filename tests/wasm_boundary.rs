@@ -36,6 +36,16 @@ fn core_matches_the_numpy_reference_in_wasm() {
     assert!(a.dequantized.iter().zip(expected.values.iter()).all(|(g, w)| g == w));
 }
 
+#[path = "shared/small_float_casts.rs"]
+mod small_float_casts;
+
+/// The small-float kernels (wasm `simd128` lanes) against ml_dtypes' casts; see
+/// `tests/shared/small_float_casts.rs`.
+#[wasm_bindgen_test]
+fn small_float_casts_match_ml_dtypes_in_wasm() {
+    small_float_casts::check_small_float_casts(include_str!("../fixtures/manifest.json"));
+}
+
 #[wasm_bindgen_test]
 fn the_boundary_runs_a_recipe_and_hands_out_typed_arrays() {
     let defaults = recipe_defaults().unwrap();

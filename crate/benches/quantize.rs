@@ -95,13 +95,18 @@ fn awq_4096x4096_512_tokens_int4_g128(bencher: divan::Bencher) {
     bencher.bench(|| bitloupe::analyze_with(&tensor, &recipe, Some(&calib), &mut |_, _| {}).unwrap());
 }
 
-/// Every format on the 4096 × 4096 tensor with its default recipe (compare with
-/// `analyze_4096x4096_int4_g128`); the codebook fits 16 levels to each of the 4096 rows.
-#[divan::bench(sample_count = 5, args = ["nf4", "e2m1", "e2m3", "e3m2", "e4m3", "e5m2", "mxfp4", "mxfp6e2m3", "mxfp6e3m2", "mxfp8e4m3", "mxfp8e5m2", "mxint8", "codebook"])]
+/// Every format on the 4096 × 4096 tensor with its default recipe, single-threaded (compare with
+/// `analyze_4096x4096_int4_g128`, and for the formats in groups of 32 with `int4_g32`); the
+/// codebook fits 16 levels to each of the 4096 rows.
+#[divan::bench(sample_count = 5, args = ["int4_g32", "nf4", "e2m1", "e2m3", "e3m2", "e4m3", "e5m2", "mxfp4", "mxfp6e2m3", "mxfp6e3m2", "mxfp8e4m3", "mxfp8e5m2", "mxint8", "codebook"])]
 fn format_4096x4096(bencher: divan::Bencher, format: &str) {
     let tensor = gaussian(4096, 4096);
-    let recipe = Recipe::for_format(format.parse().unwrap());
+    let recipe = match format {
+        "int4_g32" => Recipe { granularity: bitloupe::recipe::Granularity::Group(32), ..Recipe::default() },
+        name => Recipe::for_format(name.parse().unwrap()),
+    };
+    let one = rayon::ThreadPoolBuilder::new().num_threads(1).build().unwrap();
     bencher
         .counter(ItemsCount::new(tensor.values.len()))
-        .bench(|| analyze(divan::black_box(&tensor), &recipe).unwrap());
+        .bench(|| one.install(|| analyze(divan::black_box(&tensor), &recipe).unwrap()));
 }

@@ -13,7 +13,7 @@
 
 use crate::error::Error;
 use crate::recipe::{Recipe, ScaleDType};
-use crate::simd::{as_places, larger, quads, quads_mut, smaller, F32x4};
+use crate::simd::{as_places, larger, map_lanes, smaller, F32x4};
 use std::mem::MaybeUninit;
 
 /// The fitted parameters of one group.
@@ -81,16 +81,10 @@ impl IntGrid {
     pub(crate) fn write_quantized(&self, p: GroupParams, x: &[f32], out: &mut [MaybeUninit<f32>]) {
         let (scale, zero) = (F32x4::splat(p.scale), F32x4::splat(p.zero));
         let (qmin, qmax) = (F32x4::splat(self.qmin), F32x4::splat(self.qmax));
-        let (low, high, magic) = (F32x4::splat(-ROUNDING_LIMIT), F32x4::splat(ROUNDING_LIMIT), F32x4::splat(ROUNDING_MAGIC));
-        let ((xs, x_rest), (outs, out_rest)) = (quads(x), quads_mut(out));
-        for (o, v) in outs.iter_mut().zip(xs) {
-            let y = (F32x4::load(v) / scale).max(low).min(high);
-            let q = (y + magic - magic + zero).max(qmin).min(qmax);
-            ((q - zero) * scale).write(o);
-        }
-        for (o, &v) in out_rest.iter_mut().zip(x_rest) {
-            o.write(self.dequantize_one(p, v));
-        }
+        map_lanes(x, out, |v| {
+            let q = (round_half_even_lanes(v / scale) + zero).max(qmin).min(qmax);
+            (q - zero) * scale
+        });
     }
 
     /// Quantize and dequantize one value.
@@ -140,6 +134,13 @@ const ROUNDING_LIMIT: f32 = 1_048_576.0;
 #[inline(always)]
 pub(crate) fn round_half_even_small(y: f32) -> f32 {
     (y.clamp(-ROUNDING_LIMIT, ROUNDING_LIMIT) + ROUNDING_MAGIC) - ROUNDING_MAGIC
+}
+
+/// [`round_half_even_small`] on four lanes.
+#[inline(always)]
+pub(crate) fn round_half_even_lanes(y: F32x4) -> F32x4 {
+    let magic = F32x4::splat(ROUNDING_MAGIC);
+    (y.max(F32x4::splat(-ROUNDING_LIMIT)).min(F32x4::splat(ROUNDING_LIMIT)) + magic) - magic
 }
 
 #[cfg(test)]

@@ -17,6 +17,9 @@ pub struct F32x4(imp::Lanes);
 /// Lanes per vector.
 pub const LANES: usize = 4;
 
+/// The exponent field of an f32 (IEEE 754 binary32: bits 23..31).
+const EXPONENT_BITS: u32 = 0x7f80_0000;
+
 /// max for values known not to be NaN. Unlike `f32::max`, whose NaN rule WebAssembly's own
 /// instruction does not share (so it becomes a library call there), this is one instruction
 /// everywhere.
@@ -41,6 +44,24 @@ pub fn quads(s: &[f32]) -> (&[[f32; 4]], &[f32]) {
 #[inline(always)]
 pub fn quads_mut(s: &mut [MaybeUninit<f32>]) -> (&mut [[MaybeUninit<f32>; 4]], &mut [MaybeUninit<f32>]) {
     s.as_chunks_mut::<4>()
+}
+
+/// Write `f` of every value of `x` to the places of `out` (as many), four lanes at a time. The
+/// last one to three values go through the same vector code, padded with zeros, so every value
+/// gets the same arithmetic whatever its position.
+#[inline(always)]
+pub(crate) fn map_lanes(x: &[f32], out: &mut [MaybeUninit<f32>], f: impl Fn(F32x4) -> F32x4) {
+    let ((xs, x_rest), (outs, out_rest)) = (quads(x), quads_mut(out));
+    for (o, v) in outs.iter_mut().zip(xs) {
+        f(F32x4::load(v)).write(o);
+    }
+    if !x_rest.is_empty() {
+        let mut tail = [0f32; LANES];
+        tail[..x_rest.len()].copy_from_slice(x_rest);
+        for (o, v) in out_rest.iter_mut().zip(f(F32x4::load(&tail)).to_array()) {
+            o.write(v);
+        }
+    }
 }
 
 /// Initialised values seen as places to write: for kernels that write into fresh output
@@ -87,6 +108,22 @@ impl F32x4 {
     #[inline(always)]
     pub fn abs(self) -> Self {
         F32x4(imp::abs(self.0))
+    }
+    /// Lane-wise power of two of each value's binade, 2^⌊log2 |x|⌋: only the exponent bits of
+    /// each lane kept (so 0 for zeros and subnormals).
+    #[inline(always)]
+    pub fn binade(self) -> Self {
+        F32x4(imp::binade(self.0))
+    }
+    /// Lane-wise |self| with the sign bit of `sign`.
+    #[inline(always)]
+    pub fn with_sign_of(self, sign: Self) -> Self {
+        F32x4(imp::with_sign_of(self.0, sign.0))
+    }
+    /// Lane-wise `if self > threshold { then } else { otherwise }`.
+    #[inline(always)]
+    pub fn above(self, threshold: Self, then: Self, otherwise: Self) -> Self {
+        F32x4(imp::above(self.0, threshold.0, then.0, otherwise.0))
     }
     /// The lanes as an array.
     #[inline(always)]
@@ -162,6 +199,24 @@ mod imp {
     pub fn abs(a: Lanes) -> Lanes {
         unsafe { _mm_andnot_ps(_mm_set1_ps(-0.0), a) }
     }
+    #[inline(always)]
+    pub fn binade(a: Lanes) -> Lanes {
+        unsafe { _mm_and_ps(a, _mm_castsi128_ps(_mm_set1_epi32(super::EXPONENT_BITS as i32))) }
+    }
+    #[inline(always)]
+    pub fn with_sign_of(a: Lanes, sign: Lanes) -> Lanes {
+        unsafe {
+            let bit = _mm_set1_ps(-0.0);
+            _mm_or_ps(_mm_andnot_ps(bit, a), _mm_and_ps(bit, sign))
+        }
+    }
+    #[inline(always)]
+    pub fn above(a: Lanes, threshold: Lanes, then: Lanes, otherwise: Lanes) -> Lanes {
+        unsafe {
+            let mask = _mm_cmpgt_ps(a, threshold);
+            _mm_or_ps(_mm_and_ps(mask, then), _mm_andnot_ps(mask, otherwise))
+        }
+    }
 }
 
 #[cfg(all(target_arch = "wasm32", target_feature = "simd128"))]
@@ -213,6 +268,18 @@ mod imp {
     pub fn abs(a: Lanes) -> Lanes {
         f32x4_abs(a)
     }
+    #[inline(always)]
+    pub fn binade(a: Lanes) -> Lanes {
+        v128_and(a, u32x4_splat(super::EXPONENT_BITS))
+    }
+    #[inline(always)]
+    pub fn with_sign_of(a: Lanes, sign: Lanes) -> Lanes {
+        v128_bitselect(sign, a, f32x4_splat(-0.0))
+    }
+    #[inline(always)]
+    pub fn above(a: Lanes, threshold: Lanes, then: Lanes, otherwise: Lanes) -> Lanes {
+        v128_bitselect(then, otherwise, f32x4_gt(a, threshold))
+    }
 }
 
 #[cfg(not(any(target_arch = "x86_64", all(target_arch = "wasm32", target_feature = "simd128"))))]
@@ -254,6 +321,15 @@ mod imp {
     pub fn abs(a: Lanes) -> Lanes {
         a.map(f32::abs)
     }
+    pub fn binade(a: Lanes) -> Lanes {
+        a.map(|x| f32::from_bits(x.to_bits() & super::EXPONENT_BITS))
+    }
+    pub fn with_sign_of(a: Lanes, sign: Lanes) -> Lanes {
+        each(a, sign, f32::copysign)
+    }
+    pub fn above(a: Lanes, threshold: Lanes, then: Lanes, otherwise: Lanes) -> Lanes {
+        core::array::from_fn(|i| if a[i] > threshold[i] { then[i] } else { otherwise[i] })
+    }
 }
 
 #[cfg(test)]
@@ -273,6 +349,12 @@ mod tests {
         assert_eq!(va.max(vb).to_array(), each(|x, y| if y > x { y } else { x }));
         assert_eq!(va.min(vb).to_array(), each(|x, y| if y < x { y } else { x }));
         assert_eq!(va.abs().to_array(), a.map(f32::abs));
+        // Binades of 1.5, −2, 3.25, −0: 1, 2, 2, 0 (with the sign bit cleared).
+        assert_eq!(va.binade().to_array().map(f32::to_bits), [1.0f32, 2.0, 2.0, 0.0].map(f32::to_bits));
+        assert_eq!(F32x4::splat(1e-40).binade().to_array(), [0.0; 4], "subnormals have binade 0");
+        assert_eq!(va.with_sign_of(vb).to_array().map(f32::to_bits), each(f32::copysign).map(f32::to_bits));
+        assert_eq!(va.above(vb, F32x4::splat(1.0), F32x4::splat(2.0)).to_array(), each(|x, y| if x > y { 1.0 } else { 2.0 }));
+        assert_eq!(F32x4::splat(f32::NAN).above(vb, F32x4::splat(1.0), F32x4::splat(2.0)).to_array(), [2.0; 4], "NaN is above nothing");
         let mut out = [0f32; 4];
         F32x4::splat(2.5).store(&mut out);
         assert_eq!(out, [2.5; 4]);

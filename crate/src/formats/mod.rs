@@ -17,7 +17,8 @@ pub mod codebook;
 pub mod minifloat;
 
 use crate::error::{Error, Result};
-use crate::grid::{min_max, round_half_even_small, GroupParams, IntGrid, ScaleOverflow};
+use crate::grid::{min_max, round_half_even_lanes, GroupParams, IntGrid, ScaleOverflow};
+use crate::simd::{map_lanes, F32x4};
 use crate::recipe::{Granularity, Recipe, ScaleDType};
 use minifloat::{MiniFloat, E2M1, E2M3, E3M2, E4M3, E5M2};
 use serde::{Deserialize, Serialize};
@@ -240,33 +241,29 @@ impl Grid {
 
     /// [`Grid::quantize_into`] into fresh memory: writes every place of `out`.
     pub(crate) fn write_quantized(&self, p: GroupParams, x: &[f32], out: &mut [std::mem::MaybeUninit<f32>]) {
-        let s = p.scale;
-        let pairs = out.iter_mut().zip(x);
+        let s = F32x4::splat(p.scale);
         match *self {
             Grid::Int(g) => g.write_quantized(p, x, out),
             Grid::Scaled { format: Format::Nf4, .. } => {
+                // The nearest level is the one past the last midpoint below u (ties go down):
+                // a select per midpoint, in ascending order, keeps the kernel free of lookups.
                 let mids = midpoints(&NF4_LEVELS);
-                for (o, &v) in pairs {
-                    // A branch-free binary search over the 15 midpoints: the index of the
-                    // nearest level (ties go down).
+                map_lanes(x, out, |v| {
                     let u = v / s;
-                    let mut index = 0;
-                    for step in [8, 4, 2, 1] {
-                        index += step * usize::from(u > mids[index + step - 1]);
-                    }
-                    o.write(NF4_LEVELS[index] * s);
-                }
+                    let level = mids.iter().zip(&NF4_LEVELS[1..]).fold(F32x4::splat(NF4_LEVELS[0]), |level, (&mid, &next)| {
+                        u.above(F32x4::splat(mid), F32x4::splat(next), level)
+                    });
+                    level * s
+                });
             }
             Grid::Mx(Format::Mxint8) => {
-                for (o, &v) in pairs {
-                    o.write(round_half_even_small(v / s * 64.0).clamp(-128.0, 127.0) / 64.0 * s);
-                }
+                // Codes −128..=127 in steps of 1/64 (OCP MX v1.0, MXINT8), rounded half to even.
+                let (step, low, high) = (F32x4::splat(64.0), F32x4::splat(-128.0), F32x4::splat(127.0));
+                map_lanes(x, out, |v| round_half_even_lanes(v / s * step).max(low).min(high) / step * s);
             }
             Grid::Scaled { format, .. } | Grid::Mx(format) => {
                 let element = format.element().expect("a small float");
-                for (o, &v) in pairs {
-                    o.write(element.round_fast(v / s) * s);
-                }
+                map_lanes(x, out, |v| element.round_lanes(v / s) * s);
             }
         }
     }
@@ -395,6 +392,36 @@ mod tests {
         let probes: Vec<f32> = (-1100..=1100).map(|i| i as f32 / 1000.0).chain(mids.iter().copied()).collect();
         for u in probes {
             assert_eq!(nf4.dequantize_one(unit, u), nearest_level(&NF4_LEVELS, &mids, u), "{u}");
+        }
+    }
+
+    /// The four-lane kernels against plain scalar definitions, over lengths that leave every
+    /// possible tail (0–3 values past the last whole vector), including 0.
+    #[test]
+    fn format_kernels_match_the_scalar_definitions_over_odd_lengths() {
+        let mut rng = crate::demo::Rng::new(11);
+        let mids = midpoints(&NF4_LEVELS);
+        for name in Format::NAMES.split(", ").filter(|&n| n != "int" && n != "codebook") {
+            let format: Format = name.parse().unwrap();
+            let grid = Grid::new(&Recipe::for_format(format));
+            let reference = |p: GroupParams, v: f32| -> f32 {
+                let u = v / p.scale;
+                match format {
+                    Format::Nf4 => nearest_level(&NF4_LEVELS, &mids, u) * p.scale,
+                    // OCP MX v1.0: MXINT8 elements are 8-bit two's complement codes times 2⁻⁶.
+                    Format::Mxint8 => (u * 64.0).round_ties_even().clamp(-128.0, 127.0) / 64.0 * p.scale,
+                    f => f.element().unwrap().round(u) * p.scale,
+                }
+            };
+            for len in [0usize, 1, 2, 3, 4, 5, 31, 32, 33, 130] {
+                let x: Vec<f32> = (0..len).map(|_| rng.normal() as f32 * 0.3).collect();
+                let p = grid.fit(&x).unwrap();
+                let mut out = vec![f32::NAN; len];
+                grid.quantize_into(p, &x, &mut out);
+                for (i, (&v, &o)) in x.iter().zip(&out).enumerate() {
+                    assert_eq!(o.to_bits(), reference(p, v).to_bits(), "{name}, length {len}, value {i} ({v})");
+                }
+            }
         }
     }
 }
