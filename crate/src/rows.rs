@@ -25,33 +25,13 @@ pub fn block_count(rows: usize) -> usize {
     rows.div_ceil(ROW_BLOCK)
 }
 
-/// Progress reports per run at most: each ends a wave of blocks, and every wave wakes the pool's
-/// threads again, which costs far more in a browser's web workers than natively.
-const WAVES: usize = 8;
-
-/// Blocks handed out at once, out of `blocks`: a whole number per thread and at most [`WAVES`]
-/// waves, so that progress can be reported between waves from the calling thread (a progress
-/// callback need not be shareable across threads).
-fn blocks_per_wave(blocks: usize) -> usize {
-    let threads = threads();
-    blocks.div_ceil(WAVES).div_ceil(threads).max(1) * threads
-}
-
-/// Threads that take blocks.
-fn threads() -> usize {
-    #[cfg(any(not(target_arch = "wasm32"), target_feature = "atomics"))]
-    {
-        rayon::current_num_threads().max(1)
-    }
-    #[cfg(all(target_arch = "wasm32", not(target_feature = "atomics")))]
-    {
-        1
-    }
-}
+/// How often the calling thread reports progress while the pool works.
+#[cfg(any(not(target_arch = "wasm32"), target_feature = "atomics"))]
+const PROGRESS_EVERY: std::time::Duration = std::time::Duration::from_millis(40);
 
 /// Apply `work(first_row, rows_of_out)` to every block of a row-major `[rows, cols]` buffer,
-/// returning the blocks' results in row order and calling `progress(rows done, rows)` between
-/// waves of blocks.
+/// returning the blocks' results in row order and calling `progress(rows done, rows)` now and
+/// then, from the calling thread.
 pub fn map_blocks_mut<T: Send, R: Send>(
     out: &mut [T],
     cols: usize,
@@ -75,23 +55,96 @@ pub fn map_chunks_mut<T: Send, R: Send>(
     }
     let rows = out.len() / cols;
     let chunk = chunk_rows * cols;
-    let per_wave = blocks_per_wave(rows.div_ceil(chunk_rows));
-    let mut results = Vec::with_capacity(rows.div_ceil(chunk_rows));
-    for (w, wave_rows) in out.chunks_mut(chunk * per_wave).enumerate() {
-        let first = w * per_wave * chunk_rows;
-        let done = first + wave_rows.len() / cols;
-        #[cfg(any(not(target_arch = "wasm32"), target_feature = "atomics"))]
-        {
-            use rayon::prelude::*;
-            let wave_results: Vec<R> =
-                wave_rows.par_chunks_mut(chunk).enumerate().map(|(i, block)| work(first + i * chunk_rows, block)).collect();
-            results.extend(wave_results);
+    #[cfg(any(not(target_arch = "wasm32"), target_feature = "atomics"))]
+    {
+        use rayon::prelude::*;
+        use std::sync::atomic::{AtomicUsize, Ordering};
+        let rows_done = AtomicUsize::new(0);
+        let all = |out: &mut [T]| -> Vec<R> {
+            let each = |(i, block): (usize, &mut [T])| {
+                let result = work(i * chunk_rows, block);
+                rows_done.fetch_add(block.len() / cols, Ordering::Relaxed);
+                result
+            };
+            out.par_chunks_mut(chunk).enumerate().map(each).collect()
+        };
+        if rayon::current_thread_index().is_some() {
+            // Already on a pool thread (one item of a sweep or a checkpoint report): waiting here
+            // would hold a thread the blocks may need.
+            let results = all(out);
+            progress(rows, rows);
+            return results;
         }
-        #[cfg(all(target_arch = "wasm32", not(target_feature = "atomics")))]
-        results.extend(wave_rows.chunks_mut(chunk).enumerate().map(|(i, block)| work(first + i * chunk_rows, block)));
-        progress(done, rows);
+        // The blocks go to the pool as one job while this thread, which owns the progress
+        // callback, reports how far they got; no block ever waits for a report.
+        let finished = Finished::default();
+        rayon::in_place_scope(|scope| {
+            scope.spawn(|_| {
+                let _ended = finished.on_drop();
+                *finished.results.lock().expect("not poisoned") = Some(all(out));
+            });
+            let mut reported = 0;
+            while !finished.wait(PROGRESS_EVERY) {
+                let done = rows_done.load(Ordering::Relaxed);
+                if done > reported {
+                    progress(done, rows);
+                    reported = done;
+                }
+            }
+        });
+        // A block that panicked was re-raised by the scope above, so the results are here.
+        let results = finished.results.into_inner().expect("not poisoned").expect("the job finished");
+        progress(rows, rows);
+        results
     }
-    results
+    #[cfg(all(target_arch = "wasm32", not(target_feature = "atomics")))]
+    {
+        let mut results = Vec::with_capacity(rows.div_ceil(chunk_rows));
+        for (i, block) in out.chunks_mut(chunk).enumerate() {
+            results.push(work(i * chunk_rows, block));
+            progress((i * chunk_rows + block.len() / cols).min(rows), rows);
+        }
+        results
+    }
+}
+
+/// The end of a job handed to the pool, and its results.
+#[cfg(any(not(target_arch = "wasm32"), target_feature = "atomics"))]
+struct Finished<R> {
+    results: std::sync::Mutex<Option<R>>,
+    ended: std::sync::Mutex<bool>,
+    signal: std::sync::Condvar,
+}
+
+#[cfg(any(not(target_arch = "wasm32"), target_feature = "atomics"))]
+impl<R> Default for Finished<R> {
+    fn default() -> Self {
+        Finished { results: std::sync::Mutex::new(None), ended: std::sync::Mutex::new(false), signal: std::sync::Condvar::new() }
+    }
+}
+
+#[cfg(any(not(target_arch = "wasm32"), target_feature = "atomics"))]
+impl<R> Finished<R> {
+    /// Marks the job ended when dropped, also when the job panics, so the waiter never hangs.
+    fn on_drop(&self) -> impl Drop + '_ {
+        struct Ends<'a>(&'a std::sync::Mutex<bool>, &'a std::sync::Condvar);
+        impl Drop for Ends<'_> {
+            fn drop(&mut self) {
+                *self.0.lock().unwrap_or_else(|e| e.into_inner()) = true;
+                self.1.notify_all();
+            }
+        }
+        Ends(&self.ended, &self.signal)
+    }
+
+    /// Whether the job has ended, after waiting at most `timeout` for it.
+    fn wait(&self, timeout: std::time::Duration) -> bool {
+        let ended = self.ended.lock().unwrap_or_else(|e| e.into_inner());
+        if *ended {
+            return true;
+        }
+        *self.signal.wait_timeout(ended, timeout).unwrap_or_else(|e| e.into_inner()).0
+    }
 }
 
 /// Apply `work(rows)` to every block of `rows` rows, returning the results in row order.
@@ -135,5 +188,18 @@ mod tests {
         assert_eq!(reported.last(), Some(&(130, 130)));
         assert!(reported.windows(2).all(|w| w[0].0 < w[1].0));
         assert_eq!((out[0], out[64 * 3], out[129 * 3 + 2]), (0.0, 64.0, 128.0));
+    }
+
+    /// A block that panics reaches the caller as that panic; the caller does not wait forever
+    /// for a job that ended without its results.
+    #[test]
+    fn a_panicking_block_reaches_the_caller() {
+        let mut out = vec![0f32; 300 * 2];
+        let outcome = std::panic::catch_unwind(std::panic::AssertUnwindSafe(|| {
+            map_blocks_mut(&mut out, 2, &mut |_, _| {}, |first, _| assert!(first != 128, "block at row 128"))
+        }));
+        let message = outcome.expect_err("the panic is re-raised");
+        let text = message.downcast_ref::<&str>().copied().or_else(|| message.downcast_ref::<String>().map(String::as_str));
+        assert_eq!(text, Some("block at row 128"));
     }
 }
