@@ -23,6 +23,15 @@ async function blankSelects(page) {
   return page.$$eval('select', (all) => all.filter((s) => s.options.length > 0 && s.selectedIndex < 0).map((s) => s.id));
 }
 
+/** No list left blank, the demo analysed with the recipe on screen (`label`), no page error. */
+async function runsTheDemo({ context, page, errors }, label) {
+  assert.deepEqual(await blankSelects(page), []);
+  await page.click('#load-demo-big');
+  assert.match(await waitForAnalysis(page), label);
+  assert.deepEqual(errors, []);
+  await context.close();
+}
+
 const refused = [
   // A link cut short while being copied: the recipe's JSON ends in the middle.
   { why: 'cut short', recipe: '{"bits":3,"granularity":{"gro', message: /^The link's recipe was not applied \(invalid recipe: EOF while parsing .*\); the defaults are shown\.$/ },
@@ -45,11 +54,7 @@ for (const { why, recipe, message } of refused) {
     assert.equal(await page.inputValue('#format'), 'int');
     assert.equal(await page.inputValue('#granularity'), '128');
     assert.equal(await page.inputValue('#damp'), '0.01');
-    assert.deepEqual(await blankSelects(page), []);
-    await page.click('#load-demo-big');
-    assert.match(await waitForAnalysis(page), /int4 asym g128 f16 on demo/);
-    assert.deepEqual(errors, []);
-    await context.close();
+    await runsTheDemo({ context, page, errors }, /int4 asym g128 f16 on demo/);
   });
 }
 
@@ -58,9 +63,5 @@ test('a link with a group size the list lacks adds it to the list and runs it', 
   assert.equal(await page.isHidden('#recipe-message'), true);
   assert.equal(await page.inputValue('#granularity'), '96');
   assert.equal(await page.inputValue('#bits'), '3');
-  assert.deepEqual(await blankSelects(page), []);
-  await page.click('#load-demo-big');
-  assert.match(await waitForAnalysis(page), /int3 asym g96 f16 on demo/);
-  assert.deepEqual(errors, []);
-  await context.close();
+  await runsTheDemo({ context, page, errors }, /int3 asym g96 f16 on demo/);
 });
