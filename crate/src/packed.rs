@@ -19,8 +19,8 @@
 //!
 //! Metadata: `bitloupe.packed` = "1", `recipe` (JSON), `shape` (JSON of the source shape).
 //!
-//! Packing checks itself: it decodes what it is about to write and refuses to write unless the
-//! result equals the analysis's Ŵ bit for bit.
+//! Packing checks itself: it reads back the bytes it is about to return and refuses unless they
+//! decode to the analysis's Ŵ bit for bit.
 
 use crate::analysis::Analysis;
 use crate::error::{Error, Result};
@@ -252,7 +252,7 @@ pub fn pack(analysis: &Analysis, shape: &[usize]) -> Result<Vec<u8>> {
         }
     }
 
-    let mut tensors = vec![Outgoing { name: "codes", dtype: "U8", shape: vec![codes.len()], data: codes.clone() }];
+    let mut tensors = vec![Outgoing { name: "codes", dtype: "U8", shape: vec![codes.len()], data: codes }];
     let scales: Vec<f32> = analysis.params.iter().map(|p| p.scale).collect();
     match (&analysis.double_quant, recipe.format) {
         (_, Format::Codebook) => {
@@ -301,26 +301,18 @@ pub fn pack(analysis: &Analysis, shape: &[usize]) -> Result<Vec<u8>> {
         tensors.push(Outgoing { name: "column_factors", dtype: "F32", shape: vec![s.len()], data: f32_bytes(s) });
     }
 
-    // Check before writing: what a reader will decode must be Ŵ, bit for bit.
-    let parts = Parts {
-        recipe,
-        rows,
-        cols,
-        params: &analysis.params,
-        codebooks: &analysis.codebooks,
-        column_factors: analysis.column_factors.as_deref(),
-        kept_positions,
-        kept_values: &kept_values,
-    };
-    let decoded = decode_all(&parts, &codes)?;
-    if decoded.iter().zip(analysis.dequantized.iter()).any(|(a, b)| a.to_bits() != b.to_bits()) {
-        return Err(bad("the packed form would not reproduce the dequantized tensor exactly; nothing was written"));
-    }
     let mut metadata = BTreeMap::new();
     metadata.insert("bitloupe.packed".to_string(), LAYOUT.to_string());
     metadata.insert("recipe".to_string(), serde_json::to_string(&recipe).expect("plain data"));
     metadata.insert("shape".to_string(), serde_json::to_string(shape).expect("plain data"));
-    Ok(write(&tensors, &metadata))
+    let bytes = write(&tensors, &metadata);
+    // Check the bytes themselves, read back as any reader would: scales stored in a narrower
+    // type, a bit stream or the metadata could otherwise differ from the analysis unnoticed.
+    let (_, decoded) = unpack(&bytes[..]).map_err(|e| bad(format!("the packed form does not read back ({e}); nothing was written")))?;
+    if decoded.iter().zip(analysis.dequantized.iter()).any(|(a, b)| a.to_bits() != b.to_bits()) {
+        return Err(bad("the packed form would not reproduce the dequantized tensor exactly; nothing was written"));
+    }
+    Ok(bytes)
 }
 
 /// Read a packed file back: the source shape and the dequantized tensor in its 2-D view.
@@ -329,7 +321,7 @@ pub fn unpack<S: ByteSource + ?Sized>(src: &S) -> Result<(Vec<usize>, Array2<f32
     if metadata.get("bitloupe.packed").map(String::as_str) != Some(LAYOUT) {
         return Err(bad("the file has no bitloupe.packed/1 metadata"));
     }
-    let recipe: Recipe = serde_json::from_str(metadata.get("recipe").ok_or_else(|| bad("no recipe in the metadata"))?)
+    let recipe = Recipe::from_json(metadata.get("recipe").ok_or_else(|| bad("no recipe in the metadata"))?)
         .map_err(|e| bad(format!("the recipe in the metadata is not valid ({e})")))?;
     recipe.validate()?;
     let shape: Vec<usize> = serde_json::from_str(metadata.get("shape").ok_or_else(|| bad("no shape in the metadata"))?)
