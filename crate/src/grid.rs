@@ -115,8 +115,8 @@ pub fn min_max(x: &[f32]) -> (f32, f32) {
             hi[half] = hi[half].max(v);
         }
     }
-    let lo = lo[0].min(lo[1]).to_array().into_iter().chain(rest.iter().copied()).fold(0f32, smaller);
-    let hi = hi[0].max(hi[1]).to_array().into_iter().chain(rest.iter().copied()).fold(0f32, larger);
+    let lo = rest.iter().copied().fold(lo[0].min(lo[1]).min_lane(), smaller);
+    let hi = rest.iter().copied().fold(hi[0].max(hi[1]).max_lane(), larger);
     (lo, hi)
 }
 

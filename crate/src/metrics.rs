@@ -21,11 +21,6 @@ pub const OUTLIER_SCORE: f32 = 4.0;
 const SUM_BLOCK: usize = 256;
 
 
-/// Columns `at..at + len` of `c` in groups of eight.
-fn octets(c: &mut [f32], at: usize, len: usize) -> &mut [[f32; 8]] {
-    c[at..at + len].as_chunks_mut::<8>().0
-}
-
 fn lane_sum(low: &[f32; 4], high: &[f32; 4]) -> f64 {
     low.iter().chain(high).map(|&v| f64::from(v)).sum()
 }
@@ -46,19 +41,26 @@ pub struct ErrorSums {
 impl ErrorSums {
     /// Add the elements of `x` and their reconstruction `x_hat` (finite values).
     pub fn add(&mut self, x: &[f32], x_hat: &[f32]) {
-        self.add_measuring::<false>(x, x_hat, &mut [], &mut [], &mut []);
+        self.add_measuring::<false>(x, x_hat, &mut []);
     }
 
     /// [`ErrorSums::add`], also adding each element to its column's sums (element j to column j):
     /// one pass over the data while it is in cache.
     pub fn add_with_columns(&mut self, x: &[f32], x_hat: &[f32], columns: &mut ColumnBlock, first_col: usize) {
-        let span = first_col..first_col + x.len();
-        let (max, sq, err) = (&mut columns.max_abs[span.clone()], &mut columns.sum_sq[span.clone()], &mut columns.sum_sq_err[span]);
-        self.add_measuring::<true>(x, x_hat, max, sq, err);
+        if first_col % 8 == 0 {
+            self.add_measuring::<true>(x, x_hat, &mut columns.octets[first_col / 8..]);
+        } else {
+            // A run that starts inside an octet (a group width that is not a multiple of eight):
+            // the same sums, column by column.
+            self.add_measuring::<false>(x, x_hat, &mut []);
+            for (c, (&a, &h)) in (first_col..).zip(x.iter().zip(x_hat)) {
+                columns.octets[c / 8].add(c % 8, a, a - h);
+            }
+        }
     }
 
     #[inline(always)]
-    fn add_measuring<const COLUMNS: bool>(&mut self, x: &[f32], x_hat: &[f32], col_max: &mut [f32], col_sq: &mut [f32], col_err: &mut [f32]) {
+    fn add_measuring<const COLUMNS: bool>(&mut self, x: &[f32], x_hat: &[f32], columns: &mut [ColumnOctet]) {
         // Eight f32 lanes (two vectors) over blocks of at most 256 elements; each block's lane
         // sums (32 terms at most) then go into the f64 totals, which keeps the relative
         // rounding error of the sums near 1e-6 at worst.
@@ -84,10 +86,9 @@ impl ErrorSums {
                 seen
             };
             if COLUMNS {
-                let columns = octets(col_max, at, whole).iter_mut().zip(octets(col_sq, at, whole)).zip(octets(col_err, at, whole));
-                for ((xo, ho), ((m, sq), e)) in x8.iter().zip(h8).zip(columns) {
+                for ((xo, ho), column) in x8.iter().zip(h8).zip(&mut columns[at / 8..]) {
                     let seen = step(xo, ho);
-                    let (m, sq, e) = (m.as_chunks_mut::<4>().0, sq.as_chunks_mut::<4>().0, e.as_chunks_mut::<4>().0);
+                    let (m, sq, e) = (column.max_abs.as_chunks_mut::<4>().0, column.sum_sq.as_chunks_mut::<4>().0, column.sum_sq_err.as_chunks_mut::<4>().0);
                     for (half, (abs, a2, e2)) in seen.into_iter().enumerate() {
                         F32x4::load(&m[half]).max(abs).store(&mut m[half]);
                         (F32x4::load(&sq[half]) + a2).store(&mut sq[half]);
@@ -99,18 +100,17 @@ impl ErrorSums {
                     step(xo, ho);
                 }
             }
-            let mut lanes = [err[0].to_array(), err[1].to_array(), sig[0].to_array(), sig[1].to_array(), max[0].to_array(), max[1].to_array()];
+            let mut lanes = [err[0].to_array(), err[1].to_array(), sig[0].to_array(), sig[1].to_array()];
+            let mut block_max = max[0].max(max[1]).max_lane();
             for (i, (&a, &h)) in x_rest.iter().zip(h_rest).enumerate() {
                 let e = a - h;
                 let (half, lane) = (i / LANES, i % LANES);
                 lanes[half][lane] += e * e;
                 lanes[2 + half][lane] += a * a;
-                lanes[4 + half][lane] = larger(lanes[4 + half][lane], e.abs());
+                block_max = larger(block_max, e.abs());
                 if COLUMNS {
                     let c = at + whole + i;
-                    col_max[c] = larger(col_max[c], a.abs());
-                    col_sq[c] += a * a;
-                    col_err[c] += e * e;
+                    columns[c / 8].add(c % 8, a, e);
                 }
             }
             let (block_err, block_sig) = (lane_sum(&lanes[0], &lanes[1]), lane_sum(&lanes[2], &lanes[3]));
@@ -126,7 +126,7 @@ impl ErrorSums {
                     self.sum_sq += f64::from(a) * f64::from(a);
                 }
             }
-            self.max_abs_err = lanes[4].iter().chain(&lanes[5]).copied().fold(self.max_abs_err, larger);
+            self.max_abs_err = larger(self.max_abs_err, block_max);
         }
         self.count += x.len();
     }
@@ -209,24 +209,47 @@ impl GroupFigures {
     }
 }
 
+/// The sums of eight adjacent columns, side by side, so that the measuring loop reaches all
+/// three through one pointer (a WebAssembly engine has few registers to spare for more).
+#[derive(Debug, Clone, Copy, Default, PartialEq)]
+struct ColumnOctet {
+    max_abs: [f32; 8],
+    sum_sq: [f32; 8],
+    sum_sq_err: [f32; 8],
+}
+
+impl ColumnOctet {
+    /// Add element `a` with error `e` to the column in `lane`.
+    #[inline(always)]
+    fn add(&mut self, lane: usize, a: f32, e: f32) {
+        self.max_abs[lane] = larger(self.max_abs[lane], a.abs());
+        self.sum_sq[lane] += a * a;
+        self.sum_sq_err[lane] += e * e;
+    }
+}
+
 /// Per-column sums over one block of rows (at most [`crate::rows::ROW_BLOCK`]), taken in f32.
 #[derive(Debug, Clone, PartialEq)]
 pub struct ColumnBlock {
     rows: usize,
-    max_abs: Vec<f32>,
-    sum_sq: Vec<f32>,
-    sum_sq_err: Vec<f32>,
+    cols: usize,
+    octets: Vec<ColumnOctet>,
 }
 
 impl ColumnBlock {
     /// Empty sums for `cols` columns.
     pub fn new(cols: usize) -> Self {
-        ColumnBlock { rows: 0, max_abs: vec![0.0; cols], sum_sq: vec![0.0; cols], sum_sq_err: vec![0.0; cols] }
+        ColumnBlock { rows: 0, cols, octets: vec![ColumnOctet::default(); cols.div_ceil(8)] }
     }
 
     /// Count one more row, once all its groups went through [`ErrorSums::add_with_columns`].
     pub fn end_row(&mut self) {
         self.rows += 1;
+    }
+
+    /// One of the three sums of every column, in column order.
+    fn each(&self, field: fn(&ColumnOctet) -> &[f32; 8]) -> impl Iterator<Item = f32> + '_ {
+        self.octets.iter().flat_map(move |o| *field(o)).take(self.cols)
     }
 }
 
@@ -248,13 +271,13 @@ impl ColumnSums {
 
     /// Add the next block of rows.
     pub fn add_block(&mut self, block: &ColumnBlock) {
-        for (max, &m) in self.max_abs.iter_mut().zip(&block.max_abs) {
+        for (max, m) in self.max_abs.iter_mut().zip(block.each(|o| &o.max_abs)) {
             *max = larger(*max, m);
         }
-        for (total, &b) in self.sum_sq.iter_mut().zip(&block.sum_sq) {
+        for (total, b) in self.sum_sq.iter_mut().zip(block.each(|o| &o.sum_sq)) {
             *total += f64::from(b);
         }
-        for (total, &b) in self.sum_sq_err.iter_mut().zip(&block.sum_sq_err) {
+        for (total, b) in self.sum_sq_err.iter_mut().zip(block.each(|o| &o.sum_sq_err)) {
             *total += f64::from(b);
         }
         self.rows += block.rows;
@@ -386,6 +409,32 @@ mod tests {
         assert_eq!(f.outliers(), vec![2]);
         assert!((f.err_rms[2] - (0.5f32).sqrt()).abs() < 1e-6);
         assert_eq!(ColumnSums::new(3).figures().outlier_score, vec![0.0; 3]);
+    }
+
+    /// Column sums do not depend on how a row is cut into runs: runs that start inside an octet
+    /// of columns take the column-by-column path, runs of whole octets the four-lane one.
+    #[test]
+    fn column_sums_are_the_same_for_any_cut_of_the_rows() {
+        let cols = 45;
+        let rows: Vec<Vec<f32>> = (0..3).map(|r| (0..cols).map(|c| ((r * cols + c) as f32 * 0.37).sin()).collect()).collect();
+        let figures = |width: usize| {
+            let (mut block, mut sums) = (ColumnBlock::new(cols), ErrorSums::default());
+            for row in &rows {
+                let rounded: Vec<f32> = row.iter().map(|v| (v * 8.0).round() / 8.0).collect();
+                for start in (0..cols).step_by(width) {
+                    let end = (start + width).min(cols);
+                    sums.add_with_columns(&row[start..end], &rounded[start..end], &mut block, start);
+                }
+                block.end_row();
+            }
+            let mut c = ColumnSums::new(cols);
+            c.add_block(&block);
+            c.figures()
+        };
+        let whole = figures(cols);
+        for width in [1, 5, 8, 12, 16, 44] {
+            assert_eq!(figures(width), whole, "runs of {width}");
+        }
     }
 
     #[test]

@@ -125,6 +125,19 @@ impl F32x4 {
     pub fn above(self, threshold: Self, then: Self, otherwise: Self) -> Self {
         F32x4(imp::above(self.0, threshold.0, then.0, otherwise.0))
     }
+    /// The largest lane (by [`F32x4::max`], in lanes: no scalar comparisons, which WebAssembly
+    /// engines turn into branches).
+    #[inline(always)]
+    pub fn max_lane(self) -> f32 {
+        let half = self.max(F32x4(imp::swap_halves(self.0)));
+        imp::first(half.max(F32x4(imp::swap_pairs(half.0))).0)
+    }
+    /// The smallest lane (by [`F32x4::min`]).
+    #[inline(always)]
+    pub fn min_lane(self) -> f32 {
+        let half = self.min(F32x4(imp::swap_halves(self.0)));
+        imp::first(half.min(F32x4(imp::swap_pairs(half.0))).0)
+    }
     /// The lanes as an array.
     #[inline(always)]
     pub fn to_array(self) -> [f32; 4] {
@@ -217,6 +230,18 @@ mod imp {
             _mm_or_ps(_mm_and_ps(mask, then), _mm_andnot_ps(mask, otherwise))
         }
     }
+    #[inline(always)]
+    pub fn swap_halves(a: Lanes) -> Lanes {
+        unsafe { _mm_shuffle_ps::<0b01_00_11_10>(a, a) }
+    }
+    #[inline(always)]
+    pub fn swap_pairs(a: Lanes) -> Lanes {
+        unsafe { _mm_shuffle_ps::<0b10_11_00_01>(a, a) }
+    }
+    #[inline(always)]
+    pub fn first(a: Lanes) -> f32 {
+        unsafe { _mm_cvtss_f32(a) }
+    }
 }
 
 #[cfg(all(target_arch = "wasm32", target_feature = "simd128"))]
@@ -280,6 +305,18 @@ mod imp {
     pub fn above(a: Lanes, threshold: Lanes, then: Lanes, otherwise: Lanes) -> Lanes {
         v128_bitselect(then, otherwise, f32x4_gt(a, threshold))
     }
+    #[inline(always)]
+    pub fn swap_halves(a: Lanes) -> Lanes {
+        i32x4_shuffle::<2, 3, 0, 1>(a, a)
+    }
+    #[inline(always)]
+    pub fn swap_pairs(a: Lanes) -> Lanes {
+        i32x4_shuffle::<1, 0, 3, 2>(a, a)
+    }
+    #[inline(always)]
+    pub fn first(a: Lanes) -> f32 {
+        f32x4_extract_lane::<0>(a)
+    }
 }
 
 #[cfg(not(any(target_arch = "x86_64", all(target_arch = "wasm32", target_feature = "simd128"))))]
@@ -330,6 +367,15 @@ mod imp {
     pub fn above(a: Lanes, threshold: Lanes, then: Lanes, otherwise: Lanes) -> Lanes {
         core::array::from_fn(|i| if a[i] > threshold[i] { then[i] } else { otherwise[i] })
     }
+    pub fn swap_halves(a: Lanes) -> Lanes {
+        [a[2], a[3], a[0], a[1]]
+    }
+    pub fn swap_pairs(a: Lanes) -> Lanes {
+        [a[1], a[0], a[3], a[2]]
+    }
+    pub fn first(a: Lanes) -> f32 {
+        a[0]
+    }
 }
 
 #[cfg(test)]
@@ -355,6 +401,11 @@ mod tests {
         assert_eq!(va.with_sign_of(vb).to_array().map(f32::to_bits), each(f32::copysign).map(f32::to_bits));
         assert_eq!(va.above(vb, F32x4::splat(1.0), F32x4::splat(2.0)).to_array(), each(|x, y| if x > y { 1.0 } else { 2.0 }));
         assert_eq!(F32x4::splat(f32::NAN).above(vb, F32x4::splat(1.0), F32x4::splat(2.0)).to_array(), [2.0; 4], "NaN is above nothing");
+        for lanes in [a, b, [3.0, 1.0, 2.0, 0.5], [0.5, 1.0, 2.0, 3.0], [-1.0, -4.0, -2.0, -3.0]] {
+            let v = F32x4::load(&lanes);
+            assert_eq!(v.max_lane(), lanes.into_iter().fold(f32::NEG_INFINITY, f32::max), "{lanes:?}");
+            assert_eq!(v.min_lane(), lanes.into_iter().fold(f32::INFINITY, f32::min), "{lanes:?}");
+        }
         let mut out = [0f32; 4];
         F32x4::splat(2.5).store(&mut out);
         assert_eq!(out, [2.5; 4]);
