@@ -2,6 +2,10 @@
 // `bench_case` example, through the wasm build's own exports. Prints one JSON line: the open
 // time, the median analysis time, and the wasm memory's size after the first analysis
 // (WebAssembly memory only grows, so that is the peak of opening the file and analysing it once).
+// V8 first runs a module's functions as quickly compiled baseline code and swaps in optimised code
+// once they prove hot, for their next call; the analysis is therefore run a few times untimed
+// first, as a native benchmark's warm-up would, so that the median times the optimised code (the
+// code every analysis after the first few runs in the page).
 //
 // Usage: node bench/wasm_case.mjs PKG_DIR FILE [REPEATS]
 // PKG_DIR holds `wasm-bindgen --target nodejs` output of the release wasm.
@@ -14,15 +18,18 @@ const core = createRequire(import.meta.url)(path.resolve(pkgDir, 'bitloupe.js'))
 const repeats = Math.max(1, Number(repeatsArg ?? 5));
 const bytes = readFileSync(file);
 
+/** Untimed analyses before the timed ones. */
+const WARM_UP = 3;
+
 let start = performance.now();
 const tensor = core.openBytes(bytes, undefined, false);
 const openMs = performance.now() - start;
 const times = [];
 let peakBytes;
-for (let i = 0; i < repeats; i++) {
+for (let i = 0; i < WARM_UP + repeats; i++) {
   start = performance.now();
   const analysis = tensor.analyze({}, undefined, undefined);
-  times.push(performance.now() - start);
+  if (i >= WARM_UP) times.push(performance.now() - start);
   analysis.free();
   // After one analysis, like the native runner.
   peakBytes ??= core.memoryBytes();

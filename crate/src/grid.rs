@@ -67,7 +67,7 @@ impl IntGrid {
     pub fn fit_range(&self, lo: f32, hi: f32) -> Result<GroupParams, ScaleOverflow> {
         let raw = if self.symmetric { larger(-lo, hi) / self.qmax } else { (hi - lo) / self.qmax };
         let scale = if raw == 0.0 { 1.0 } else { self.scale_dtype.round(raw).ok_or(ScaleOverflow(raw))? };
-        let zero = if self.symmetric { 0.0 } else { (-lo / scale).round_ties_even().clamp(0.0, self.qmax) };
+        let zero = if self.symmetric { 0.0 } else { smaller(larger((-lo / scale).round_ties_even(), 0.0), self.qmax) };
         Ok(GroupParams { scale, zero })
     }
 

@@ -20,18 +20,19 @@ pub const LANES: usize = 4;
 /// The exponent field of an f32 (IEEE 754 binary32: bits 23..31).
 const EXPONENT_BITS: u32 = 0x7f80_0000;
 
-/// max for values known not to be NaN. Unlike `f32::max`, whose NaN rule WebAssembly's own
-/// instruction does not share (so it becomes a library call there), this is one instruction
-/// everywhere.
+/// `if b > a { b } else { a }`: max for values known not to be NaN. Unlike `f32::max`, whose
+/// NaN rule WebAssembly's own instruction does not share (so it becomes a library call there),
+/// this is one lane instruction on every target: written as a scalar `select`, V8 compiles it
+/// to a branch, which mispredicts on data such as the two ends of a group's range.
 #[inline(always)]
 pub fn larger(a: f32, b: f32) -> f32 {
-    if b > a { b } else { a }
+    F32x4::splat(a).max(F32x4::splat(b)).first()
 }
 
-/// min for values known not to be NaN (see [`larger`]).
+/// `if b < a { b } else { a }`: min for values known not to be NaN (see [`larger`]).
 #[inline(always)]
 pub fn smaller(a: f32, b: f32) -> f32 {
-    if b < a { b } else { a }
+    F32x4::splat(a).min(F32x4::splat(b)).first()
 }
 
 /// `s` as whole vectors of four values and the rest.
@@ -130,13 +131,18 @@ impl F32x4 {
     #[inline(always)]
     pub fn max_lane(self) -> f32 {
         let half = self.max(F32x4(imp::swap_halves(self.0)));
-        imp::first(half.max(F32x4(imp::swap_pairs(half.0))).0)
+        half.max(F32x4(imp::swap_pairs(half.0))).first()
     }
     /// The smallest lane (by [`F32x4::min`]).
     #[inline(always)]
     pub fn min_lane(self) -> f32 {
         let half = self.min(F32x4(imp::swap_halves(self.0)));
-        imp::first(half.min(F32x4(imp::swap_pairs(half.0))).0)
+        half.min(F32x4(imp::swap_pairs(half.0))).first()
+    }
+    /// The first lane.
+    #[inline(always)]
+    pub fn first(self) -> f32 {
+        imp::first(self.0)
     }
     /// The lanes as an array.
     #[inline(always)]
@@ -405,6 +411,10 @@ mod tests {
             let v = F32x4::load(&lanes);
             assert_eq!(v.max_lane(), lanes.into_iter().fold(f32::NEG_INFINITY, f32::max), "{lanes:?}");
             assert_eq!(v.min_lane(), lanes.into_iter().fold(f32::INFINITY, f32::min), "{lanes:?}");
+        }
+        for (x, y) in a.into_iter().zip(b).chain([(0.0, -0.0), (-0.0, 0.0), (1.0, 1.0)]) {
+            assert_eq!(larger(x, y).to_bits(), (if y > x { y } else { x }).to_bits(), "larger({x}, {y})");
+            assert_eq!(smaller(x, y).to_bits(), (if y < x { y } else { x }).to_bits(), "smaller({x}, {y})");
         }
         let mut out = [0f32; 4];
         F32x4::splat(2.5).store(&mut out);
