@@ -1,14 +1,60 @@
 //! One case of the speed table (`bench/compare.py`, run by `cargo xtask bench`): open a tensor
 //! file, then run the default recipe (int4, asymmetric, groups of 128, f16 scales) with every
 //! statistic, several times. Prints one JSON line: the open time, the median analysis time,
-//! the time of a plain copy of the tensor (the memory-traffic floor), and the peak resident
-//! memory of opening the file and analysing it once, above what the process held before.
+//! the time of a plain copy of the tensor (the memory-traffic floor), and the peak memory of
+//! opening the file and analysing it once, above what the process held before: the most heap
+//! bytes live at any one time (counted below), and the peak resident set the system reports
+//! (which also holds the program's own code as it is paged in, and whole 2 MiB pages where the
+//! kernel backs memory with huge pages).
 //!
 //! Usage: bench_case FILE [REPEATS] [THREADS]   (THREADS 1 = single-threaded, 0 = all cores)
 
-// The command's allocator (see crate/src/main.rs).
+use std::alloc::{GlobalAlloc, Layout};
+use std::sync::atomic::{AtomicUsize, Ordering::Relaxed};
+
+/// The command's allocator (see crate/src/main.rs), counting the bytes live and their peak.
+struct Counting;
+
+static LIVE: AtomicUsize = AtomicUsize::new(0);
+static PEAK: AtomicUsize = AtomicUsize::new(0);
+
+fn grew(bytes: usize) {
+    let now = LIVE.fetch_add(bytes, Relaxed) + bytes;
+    PEAK.fetch_max(now, Relaxed);
+}
+
+// SAFETY: every call goes to mimalloc unchanged; the counters only observe.
+unsafe impl GlobalAlloc for Counting {
+    unsafe fn alloc(&self, layout: Layout) -> *mut u8 {
+        let p = mimalloc::MiMalloc.alloc(layout);
+        if !p.is_null() {
+            grew(layout.size());
+        }
+        p
+    }
+    unsafe fn alloc_zeroed(&self, layout: Layout) -> *mut u8 {
+        let p = mimalloc::MiMalloc.alloc_zeroed(layout);
+        if !p.is_null() {
+            grew(layout.size());
+        }
+        p
+    }
+    unsafe fn dealloc(&self, ptr: *mut u8, layout: Layout) {
+        mimalloc::MiMalloc.dealloc(ptr, layout);
+        LIVE.fetch_sub(layout.size(), Relaxed);
+    }
+    unsafe fn realloc(&self, ptr: *mut u8, layout: Layout, new_size: usize) -> *mut u8 {
+        let p = mimalloc::MiMalloc.realloc(ptr, layout, new_size);
+        if !p.is_null() {
+            LIVE.fetch_sub(layout.size(), Relaxed);
+            grew(new_size);
+        }
+        p
+    }
+}
+
 #[global_allocator]
-static ALLOCATOR: mimalloc::MiMalloc = mimalloc::MiMalloc;
+static ALLOCATOR: Counting = Counting;
 
 use bitloupe::tensor::{self, ReadOptions};
 use bitloupe::{analyze, Recipe};
@@ -19,8 +65,10 @@ fn main() -> Result<(), Box<dyn std::error::Error + Send + Sync>> {
     let path = args.get(1).ok_or("usage: bench_case FILE [REPEATS] [THREADS]")?;
     let repeats: usize = args.get(2).map_or(Ok(5), |s| s.parse())?;
     let threads: usize = args.get(3).map_or(Ok(1), |s| s.parse())?;
-    let baseline = resident_bytes("VmRSS:").unwrap_or(0);
     let pool = rayon::ThreadPoolBuilder::new().num_threads(threads).build()?;
+    let baseline = resident_bytes("VmRSS:").unwrap_or(0);
+    let heap_baseline = LIVE.load(Relaxed);
+    PEAK.store(heap_baseline, Relaxed);
     pool.install(|| -> Result<(), Box<dyn std::error::Error + Send + Sync>> {
         let file = std::fs::File::open(path)?;
         let start = Instant::now();
@@ -29,7 +77,7 @@ fn main() -> Result<(), Box<dyn std::error::Error + Send + Sync>> {
         let open_ms = start.elapsed().as_secs_f64() * 1e3;
         let recipe = Recipe::default();
         let mut times = Vec::with_capacity(repeats);
-        let mut peak = None;
+        let (mut peak, mut heap_peak) = (None, None);
         for _ in 0..repeats.max(1) {
             let start = Instant::now();
             std::hint::black_box(analyze(&tensor, &recipe)?);
@@ -37,6 +85,7 @@ fn main() -> Result<(), Box<dyn std::error::Error + Send + Sync>> {
             // The peak of one analysis: later repeats may find the allocator still holding the
             // previous run's freed pages, which says nothing about what one analysis needs.
             peak = peak.or_else(|| resident_bytes("VmHWM:"));
+            heap_peak = heap_peak.or_else(|| Some(PEAK.load(Relaxed) - heap_baseline));
         }
         times.sort_by(f64::total_cmp);
         let median_ms = times[times.len() / 2];
@@ -51,8 +100,9 @@ fn main() -> Result<(), Box<dyn std::error::Error + Send + Sync>> {
         copies.sort_by(f64::total_cmp);
         let copy_ms = copies[copies.len() / 2];
         println!(
-            "{{\"open_ms\": {open_ms:.3}, \"analyze_ms\": {median_ms:.3}, \"copy_ms\": {copy_ms:.3}, \"peak_bytes\": {}, \"elements\": {}}}",
+            "{{\"open_ms\": {open_ms:.3}, \"analyze_ms\": {median_ms:.3}, \"copy_ms\": {copy_ms:.3}, \"peak_bytes\": {}, \"heap_peak_bytes\": {}, \"elements\": {}}}",
             peak.map_or(0, |peak| peak.saturating_sub(baseline)),
+            heap_peak.unwrap_or(0),
             tensor.values.len()
         );
         Ok(())
