@@ -2,7 +2,7 @@
 //! Errors must arrive as JS errors with the core's message, never as panics.
 #![cfg(target_arch = "wasm32")]
 
-use bitloupe::wasm::{calibration_from_bytes, demo_weight, open_bytes, parse_text, recipe_defaults};
+use bitloupe::wasm::{calibration_from_bytes, demo_weight, open_bytes, parse_text, recipe_defaults, warm_up};
 use bitloupe::{analyze, tensor, ReadOptions};
 use wasm_bindgen::prelude::*;
 use wasm_bindgen_test::*;
@@ -48,6 +48,8 @@ fn small_float_casts_match_ml_dtypes_in_wasm() {
 
 #[wasm_bindgen_test]
 fn the_boundary_runs_a_recipe_and_hands_out_typed_arrays() {
+    // The page's first call after start: it must run the default recipe without an error.
+    warm_up().unwrap();
     let defaults = recipe_defaults().unwrap();
     assert_eq!(get(&get(&defaults, "recipe"), "bits").as_f64(), Some(4.0));
     let handle = open_bytes(WEIGHT, None, false).unwrap();

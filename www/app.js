@@ -1164,6 +1164,9 @@ async function start() {
     buildControls(defaults);
     await readLink();
     document.body.dataset.ready = 'true';
+    // In the background: a request made meanwhile waits for it (tens of milliseconds), and a
+    // failure here would show again, and be reported, with the user's own request.
+    bridge.request('warmUp').catch(() => {});
   } catch (err) {
     $('status').textContent = `The page could not start its compute worker: ${err.message}`;
   }

@@ -114,6 +114,11 @@ const handlers = {
     core = wasm_bindgen;
     return { value: { defaults: core.recipeDefaults(), threads: Math.max(1, threads || 0) } };
   },
+  /** Bring the engine's optimised code in before the first real analysis (see the core's warmUp). */
+  warmUp() {
+    core.warmUp();
+    return { value: null };
+  },
   modelSize({ files, pattern, only2d, params, recipe }) {
     return { value: core.modelSize(files, pattern, only2d, params, recipe) };
   },

@@ -232,24 +232,18 @@ impl ColumnOctet {
 #[derive(Debug, Clone, PartialEq)]
 pub struct ColumnBlock {
     rows: usize,
-    cols: usize,
     octets: Vec<ColumnOctet>,
 }
 
 impl ColumnBlock {
     /// Empty sums for `cols` columns.
     pub fn new(cols: usize) -> Self {
-        ColumnBlock { rows: 0, cols, octets: vec![ColumnOctet::default(); cols.div_ceil(8)] }
+        ColumnBlock { rows: 0, octets: vec![ColumnOctet::default(); cols.div_ceil(8)] }
     }
 
     /// Count one more row, once all its groups went through [`ErrorSums::add_with_columns`].
     pub fn end_row(&mut self) {
         self.rows += 1;
-    }
-
-    /// One of the three sums of every column, in column order.
-    fn each(&self, field: fn(&ColumnOctet) -> &[f32; 8]) -> impl Iterator<Item = f32> + '_ {
-        self.octets.iter().flat_map(move |o| *field(o)).take(self.cols)
     }
 }
 
@@ -271,14 +265,17 @@ impl ColumnSums {
 
     /// Add the next block of rows.
     pub fn add_block(&mut self, block: &ColumnBlock) {
-        for (max, m) in self.max_abs.iter_mut().zip(block.each(|o| &o.max_abs)) {
-            *max = larger(*max, m);
-        }
-        for (total, b) in self.sum_sq.iter_mut().zip(block.each(|o| &o.sum_sq)) {
-            *total += f64::from(b);
-        }
-        for (total, b) in self.sum_sq_err.iter_mut().zip(block.each(|o| &o.sum_sq_err)) {
-            *total += f64::from(b);
+        let columns = self.max_abs.chunks_mut(8).zip(self.sum_sq.chunks_mut(8)).zip(self.sum_sq_err.chunks_mut(8));
+        for (((max, sq), err), octet) in columns.zip(&block.octets) {
+            for (max, &m) in max.iter_mut().zip(&octet.max_abs) {
+                *max = larger(*max, m);
+            }
+            for (total, &b) in sq.iter_mut().zip(&octet.sum_sq) {
+                *total += f64::from(b);
+            }
+            for (total, &b) in err.iter_mut().zip(&octet.sum_sq_err) {
+                *total += f64::from(b);
+            }
         }
         self.rows += block.rows;
     }

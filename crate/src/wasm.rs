@@ -314,6 +314,26 @@ pub fn parse_text(text: &str) -> Result<TensorHandle, JsError> {
     Ok(TensorHandle { tensor: tensor::text::parse(text).map_err(js_error)? })
 }
 
+/// Rows and columns of the weight [`warm_up`] analyses: a few hundred thousand values.
+const WARM_UP_SHAPE: (usize, usize) = (256, 1024);
+/// How often [`warm_up`] runs the default recipe.
+const WARM_UP_RUNS: usize = 4;
+
+/// Run the default recipe a few times on a small seeded weight and drop the results. WebAssembly
+/// engines first run a function as quickly compiled baseline code and swap in optimised code for
+/// its next call once it has proved hot (V8's dynamic tiering); the page calls this right after
+/// start, so that the user's first analysis already runs the optimised kernels.
+#[wasm_bindgen(js_name = warmUp)]
+pub fn warm_up() -> Result<(), JsError> {
+    let mut rng = crate::demo::Rng::new(1);
+    let values = ndarray::Array2::from_shape_fn(WARM_UP_SHAPE, |_| (0.02 * rng.normal()) as f32);
+    let weight = Tensor::from_values("warm-up", tensor::DType::F32, values);
+    for _ in 0..WARM_UP_RUNS {
+        analyze_with(&weight, &Recipe::default(), None, &mut |_, _| {}).map_err(js_error)?;
+    }
+    Ok(())
+}
+
 /// The built-in demo weight.
 #[wasm_bindgen(js_name = demoWeight)]
 pub fn demo_weight() -> TensorHandle {
