@@ -3,9 +3,9 @@
 // time, the median analysis time, and the wasm memory's size after the first analysis
 // (WebAssembly memory only grows, so that is the peak of opening the file and analysing it once).
 // V8 first runs a module's functions as quickly compiled baseline code and swaps in optimised code
-// once they prove hot, for their next call; the analysis is therefore run a few times untimed
-// first, as a native benchmark's warm-up would, so that the median times the optimised code (the
-// code every analysis after the first few runs in the page).
+// once they prove hot, for their next call, compiling it in the background; the analysis is
+// therefore run untimed for a while first, as a native benchmark's warm-up would, so that the
+// median times the optimised code (the code the page runs once it has warmed up).
 //
 // Usage: node bench/wasm_case.mjs PKG_DIR FILE [REPEATS]
 // PKG_DIR holds `wasm-bindgen --target nodejs` output of the release wasm.
@@ -39,18 +39,20 @@ globalThis.FileReaderSync = class {
   }
 };
 
-/** Untimed analyses before the timed ones. */
-const WARM_UP = 3;
+/** Untimed analyses before the timed ones: at least this many, for at least WARM_UP_MS. */
+const WARM_UP_RUNS = 8;
+const WARM_UP_MS = 1000;
 
 let start = performance.now();
 const tensor = core.openFile(new RangeBlob(bytes), undefined, false);
 const openMs = performance.now() - start;
 const times = [];
 let peakBytes;
-for (let i = 0; i < WARM_UP + repeats; i++) {
+const warmUpEnds = performance.now() + WARM_UP_MS;
+for (let i = 0; times.length < repeats; i++) {
   start = performance.now();
   const analysis = tensor.analyze({}, undefined, undefined);
-  if (i >= WARM_UP) times.push(performance.now() - start);
+  if (i >= WARM_UP_RUNS && start >= warmUpEnds) times.push(performance.now() - start);
   analysis.free();
   // After one analysis, like the native runner.
   peakBytes ??= core.memoryBytes();
