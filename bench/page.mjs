@@ -56,18 +56,8 @@ function writeNpy(file, rows, cols, data) {
 }
 
 function npyF32(rows, cols, file) {
-  const header = `{'descr': '<f4', 'fortran_order': False, 'shape': (${rows}, ${cols}), }`;
-  const padded = header + ' '.repeat(64 - ((10 + header.length + 1) % 64)) + '\n';
-  const head = Buffer.alloc(10);
-  Buffer.from([0x93, 0x4e, 0x55, 0x4d, 0x50, 0x59, 1, 0]).copy(head);
-  head.writeUInt16LE(padded.length, 8);
-  const data = new Float32Array(rows * cols);
-  let s = 12345;
-  for (let i = 0; i < data.length; i++) {
-    s = (s * 1103515245 + 12345) >>> 0;
-    data[i] = ((s / 2 ** 32) - 0.5) * 0.04;
-  }
-  writeFileSync(file, Buffer.concat([head, Buffer.from(padded), Buffer.from(data.buffer)]));
+  const next = random(12345);
+  writeNpy(file, rows, cols, Float32Array.from({ length: rows * cols }, () => next() * 0.04));
 }
 
 /** One seeded f16 tensor in a `.safetensors` file (bit patterns of magnitudes 2^-10 … 2^-1). */

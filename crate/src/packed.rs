@@ -165,44 +165,10 @@ fn book_of<'a>(recipe: &Recipe, codebooks: &'a [Vec<f32>], r: usize) -> &'a [f32
     }
 }
 
-/// Everything `decode_all` needs besides the codes.
-struct Parts<'a> {
-    recipe: Recipe,
-    rows: usize,
-    cols: usize,
-    params: &'a [GroupParams],
-    codebooks: &'a [Vec<f32>],
-    column_factors: Option<&'a [f32]>,
-    kept_positions: Vec<(usize, usize)>,
-    kept_values: &'a [f32],
-}
-
-fn decode_all(parts: &Parts, codes: &[u8]) -> Result<Array2<f32>> {
-    let Parts { recipe, rows, cols, params, codebooks, column_factors, .. } = parts;
-    let codec = Codec::new(recipe);
-    let width = group_width(recipe.granularity, *cols);
-    let per_row = recipe.granularity.groups_per_row(*cols);
-    let mut out = Array2::<f32>::zeros((*rows, *cols));
-    let mut at = 0;
-    for r in 0..*rows {
-        let book = book_of(recipe, codebooks, r);
-        for c in 0..*cols {
-            let code = read_bits(codes, &mut at, codec.bits)?;
-            let p = if recipe.format == Format::Codebook { GroupParams { scale: 1.0, zero: 0.0 } } else { params_at(params, recipe, per_row, width, r, c) };
-            if recipe.format == Format::Codebook && code as usize >= book.len() {
-                return Err(bad("a code points past its codebook"));
-            }
-            let mut v = codec.decode(code, p, book);
-            if let Some(s) = column_factors {
-                v /= s[c];
-            }
-            out[[r, c]] = v;
-        }
-    }
-    for (&(r, c), &v) in parts.kept_positions.iter().zip(parts.kept_values) {
-        out[[r, c]] = v;
-    }
-    Ok(out)
+/// Where the kept values sit, in the order the file stores them: whole kept columns first (each
+/// from row 0 down), then the single kept elements (row-major indices).
+fn kept_positions(columns: &[usize], elements: &[usize], rows: usize, cols: usize) -> Vec<(usize, usize)> {
+    columns.iter().flat_map(|&c| (0..rows).map(move |r| (r, c))).chain(elements.iter().map(|&i| (i / cols, i % cols))).collect()
 }
 
 /// The packed `.safetensors` bytes of `analysis` (of a tensor of stored `shape`).
@@ -213,12 +179,7 @@ pub fn pack(analysis: &Analysis, shape: &[usize]) -> Result<Vec<u8>> {
     let width = group_width(recipe.granularity, cols);
     let per_row = recipe.granularity.groups_per_row(cols);
     let kept = &analysis.kept;
-    let kept_positions: Vec<(usize, usize)> = kept
-        .columns
-        .iter()
-        .flat_map(|&c| (0..rows).map(move |r| (r, c)))
-        .chain(kept.elements.iter().map(|&i| (i / cols, i % cols)))
-        .collect();
+    let kept_positions = kept_positions(&kept.columns, &kept.elements, rows, cols);
     let kept_values: Vec<f32> = kept_positions.iter().map(|&(r, c)| analysis.dequantized[[r, c]]).collect();
     if kept_values.iter().any(|v| f16::from_f32(*v).to_f32().to_bits() != v.to_bits()) {
         return Err(Error::BadRecipe { detail: "a kept value is not an f16 value here (GPTQ with smoothing), so this result cannot be packed exactly".into() });
@@ -308,7 +269,13 @@ pub fn pack(analysis: &Analysis, shape: &[usize]) -> Result<Vec<u8>> {
     let bytes = write(&tensors, &metadata);
     // Check the bytes themselves, read back as any reader would: scales stored in a narrower
     // type, a bit stream or the metadata could otherwise differ from the analysis unnoticed.
-    let (_, decoded) = unpack(&bytes[..]).map_err(|e| bad(format!("the packed form does not read back ({e}); nothing was written")))?;
+    let (_, decoded) = unpack(&bytes[..]).map_err(|e| {
+        let why = match e {
+            Error::BadFormat { detail, .. } => detail,
+            other => other.to_string(),
+        };
+        bad(format!("the packed form does not read back ({why}); nothing was written"))
+    })?;
     if decoded.iter().zip(analysis.dequantized.iter()).any(|(a, b)| a.to_bits() != b.to_bits()) {
         return Err(bad("the packed form would not reproduce the dequantized tensor exactly; nothing was written"));
     }
@@ -400,23 +367,35 @@ pub fn unpack<S: ByteSource + ?Sized>(src: &S) -> Result<(Vec<usize>, Array2<f32
     if kept_count != Some(kept_values.len()) {
         return Err(bad("kept values and their positions differ in number"));
     }
-    let kept_positions: Vec<(usize, usize)> =
-        kept_columns.iter().flat_map(|&c| (0..rows).map(move |r| (r, c))).chain(kept_index.iter().map(|&i| (i / cols, i % cols))).collect();
+    let kept_positions = kept_positions(&kept_columns, &kept_index, rows, cols);
     let column_factors = raw("column_factors")?.map(|b| scale_values(ScaleDType::F32, &b));
     if column_factors.as_ref().is_some_and(|s| s.len() != cols) {
         return Err(bad("column factors do not match the columns"));
     }
-    let parts = Parts {
-        recipe,
-        rows,
-        cols,
-        params: &params,
-        codebooks: &codebooks,
-        column_factors: column_factors.as_deref(),
-        kept_positions,
-        kept_values: &kept_values,
-    };
-    Ok((shape, decode_all(&parts, &codes)?))
+    let codec = Codec::new(&recipe);
+    let width = group_width(recipe.granularity, cols);
+    let per_row = recipe.granularity.groups_per_row(cols);
+    let mut out = Array2::<f32>::zeros((rows, cols));
+    let mut at = 0;
+    for r in 0..rows {
+        let book = book_of(&recipe, &codebooks, r);
+        for c in 0..cols {
+            let code = read_bits(&codes, &mut at, codec.bits)?;
+            let p = if recipe.format == Format::Codebook { GroupParams { scale: 1.0, zero: 0.0 } } else { params_at(&params, &recipe, per_row, width, r, c) };
+            if recipe.format == Format::Codebook && code as usize >= book.len() {
+                return Err(bad("a code points past its codebook"));
+            }
+            let mut v = codec.decode(code, p, book);
+            if let Some(s) = &column_factors {
+                v /= s[c];
+            }
+            out[[r, c]] = v;
+        }
+    }
+    for (&(r, c), &v) in kept_positions.iter().zip(&kept_values) {
+        out[[r, c]] = v;
+    }
+    Ok((shape, out))
 }
 
 #[cfg(test)]
