@@ -9,8 +9,9 @@
 // 3. GPTQ and AWQ on the same 4096 × 4096 weight with 512 calibration tokens, int4 asym g128:
 //    the time from choosing the method to the drawn result in the page, and the wall time of the
 //    native `bitloupe quantize` command (BITLOUPE_BIN) on the same files, both on all cores.
-// 4. The worker pool: the compute time of round to nearest and of HQQ on the 4096 × 4096 weight
-//    with one pool worker (`?threads=1`) and with one per core, and their ratio.
+// 4. The worker pool: the compute time of round to nearest and of HQQ on the 4096 × 4096 weight,
+//    and of round to nearest on the 4096 × 14336 f16 layer of case 5, with one pool worker
+//    (`?threads=1`) and with one per core, and their ratio.
 // 5. A 4096 × 14336 f16 `.safetensors` file (one tensor): the time from choosing it to the
 //    drawn error map.
 import { mkdirSync, writeFileSync, openSync, ftruncateSync, closeSync, writeSync } from 'node:fs';
@@ -143,25 +144,26 @@ for (const method of ['gptq', 'awq']) {
 }
 await page.selectOption('#method', 'rtn');
 
-// The worker pool: one pool worker against one per core, same file, same recipes.
+// A large f16 layer, as dropped by a user (cases 4 and 5).
+const wideFile = path.join(dir, 'layer-4096x14336-f16.safetensors');
+f16Safetensors(wideFile, 'model.block.0.mlp.down.weight', 4096, 14336);
+
+// The worker pool: one pool worker against one per core, same files, same recipes.
 const poolTimes = {};
 for (const threads of [1, os.cpus().length]) {
   const p = await browser.newPage({ viewport: { width: 1400, height: 1000 } });
   await p.goto(`${URL_UNDER_TEST}?threads=${threads}`);
   await p.waitForSelector('body[data-ready=true]');
   const computes = () => p.evaluate(() => window.bitloupeTimings.filter((t) => t.what === 'recipe-compute').map((t) => t.ms));
-  await p.setInputFiles('#file-input', weightFile);
-  await p.waitForFunction(() => window.bitloupeTimings.some((t) => t.what === 'open-to-drawn'), null, { timeout: 120_000 });
-  const times = { rtn: [], hqq: [] };
-  // Untimed runs first: V8 swaps optimised code in for a function's next call once it proves
-  // hot, and a round-to-nearest run is short enough for the first few to run the baseline code
-  // (HQQ's runs are seconds long, and its kernels are the same ones, already hot).
-  for (const [method, runs, warmUp] of [['rtn', 7, 3], ['hqq', 3, 0]]) {
-    if (method === 'hqq') {
-      const n = (await computes()).length;
-      await p.selectOption('#method', 'hqq');
-      await p.waitForFunction((k) => window.bitloupeTimings.filter((t) => t.what === 'recipe-compute').length > k, n, { timeout: 300_000 });
-    }
+  const opened = () => p.evaluate(() => window.bitloupeTimings.filter((t) => t.what === 'open-to-drawn').length);
+  const open = async (file) => {
+    const n = await opened();
+    await p.setInputFiles('#file-input', file);
+    await p.waitForFunction((k) => window.bitloupeTimings.filter((t) => t.what === 'open-to-drawn').length > k, n, { timeout: 120_000 });
+  };
+  /** Compute times of `runs` recipe changes (3-bit and 4-bit in turn) after `warmUp` untimed ones. */
+  const recipeChanges = async (runs, warmUp) => {
+    const times = [];
     for (let i = 0; i < warmUp + runs; i++) {
       // Each change waits until the last result is drawn and its histogram is in, so the page's
       // own thread does not compete with the pool for the cores while it computes.
@@ -169,16 +171,27 @@ for (const threads of [1, os.cpus().length]) {
       await p.waitForTimeout(300);
       await p.selectOption('#bits', i % 2 ? '4' : '3');
       await p.waitForFunction((k) => window.bitloupeTimings.filter((t) => t.what === 'recipe-to-drawn').length > k, n, { timeout: 300_000 });
-      if (i >= warmUp) times[method].push((await computes()).at(-1));
+      if (i >= warmUp) times.push((await computes()).at(-1));
     }
-  }
-  poolTimes[threads] = { rtn: median(times.rtn), hqq: median(times.hqq) };
+    return median(times);
+  };
+  await open(weightFile);
+  // Untimed runs first: V8 swaps optimised code in for a function's next call once it proves
+  // hot, and a round-to-nearest run is short enough for the first few to run the baseline code
+  // (HQQ's runs are seconds long, and its kernels are the same ones, already hot).
+  const rtn = await recipeChanges(7, 3);
+  const n = (await computes()).length;
+  await p.selectOption('#method', 'hqq');
+  await p.waitForFunction((k) => window.bitloupeTimings.filter((t) => t.what === 'recipe-compute').length > k, n, { timeout: 300_000 });
+  const hqq = await recipeChanges(3, 0);
+  await p.selectOption('#method', 'rtn');
+  await open(wideFile);
+  const rtnWide = await recipeChanges(5, 1);
+  poolTimes[threads] = { rtn, hqq, rtnWide };
   await p.close();
 }
 
-// A large f16 layer from a dropped file: choose it → drawn error map.
-const wideFile = path.join(dir, 'layer-4096x14336-f16.safetensors');
-f16Safetensors(wideFile, 'model.block.0.mlp.down.weight', 4096, 14336);
+// The large f16 layer from a dropped file: choose it → drawn error map.
 const wideRuns = [];
 for (let i = 0; i < 3; i++) {
   const done = (await timings()).filter((t) => t.what === 'open-to-drawn').length;
@@ -215,6 +228,7 @@ console.log(`| 4096×4096 f32, 48-recipe round-to-nearest sweep (click → last 
 const cores = Object.keys(poolTimes).map(Number).sort((a, b) => a - b);
 const [one, all] = [poolTimes[cores[0]], poolTimes[cores[cores.length - 1]]];
 console.log(`| worker pool, 4096×4096 f32, round to nearest compute: 1 pool worker → ${cores.at(-1)} | ${one.rtn.toFixed(0)} ms → ${all.rtn.toFixed(0)} ms (${(one.rtn / all.rtn).toFixed(2)}×) | 7 each |`);
+console.log(`| worker pool, 4096×14336 f16, round to nearest compute: 1 pool worker → ${cores.at(-1)} | ${one.rtnWide.toFixed(0)} ms → ${all.rtnWide.toFixed(0)} ms (${(one.rtnWide / all.rtnWide).toFixed(2)}×) | 5 each |`);
 console.log(`| worker pool, 4096×4096 f32, HQQ compute: 1 pool worker → ${cores.at(-1)} | ${(one.hqq / 1000).toFixed(2)} s → ${(all.hqq / 1000).toFixed(2)} s (${(one.hqq / all.hqq).toFixed(2)}×) | 3 each |`);
 console.log(`| 4096×14336 f16 .safetensors, choose file → error map drawn | ${median(wideRuns).toFixed(0)} ms | ${wideRuns.map((x) => x.toFixed(0)).join(', ')} |`);
 for (const method of ['gptq', 'awq']) {

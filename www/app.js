@@ -80,11 +80,15 @@ let running = 0;
  * `onItem` receives partial results that arrive with the progress. */
 async function task(label, type, payload, remember, onItem = null) {
   running += 1;
-  $('status').textContent = `${label}…`;
   const progress = $('progress');
   progress.removeAttribute('value');
   clearTimeout(busyTimer);
-  busyTimer = setTimeout(() => { $('busy').hidden = false; }, SHOW_PROGRESS_AFTER_MS);
+  // The status line changes only once the run proves slow: a change redraws the page, and on a
+  // machine with few cores that frame takes its time from the workers computing the result.
+  busyTimer = setTimeout(() => {
+    $('status').textContent = `${label}…`;
+    $('busy').hidden = false;
+  }, SHOW_PROGRESS_AFTER_MS);
   const started = performance.now();
   try {
     const result = await bridge.request(type, payload, {

@@ -129,6 +129,9 @@ struct Measure {
 struct BlockSums {
     /// Per group of the block's rows, row-major (one for a per-tensor recipe).
     groups: Vec<ErrorSums>,
+    /// The figures of those groups, once the block is complete (not for a per-tensor recipe,
+    /// whose one group spans every block).
+    figures: Option<GroupFigures>,
     columns: Option<ColumnBlock>,
 }
 
@@ -155,28 +158,24 @@ impl Measure {
                 self.groups(&mut block, r, 0, &x[r * cols..(r + 1) * cols], &x_hat[r * cols..(r + 1) * cols]);
                 self.end_row(&mut block, r);
             }
+            self.end_block(&mut block);
             block
         })
     }
 
     fn finish(&self, recipe: &Recipe, blocks: Vec<BlockSums>) -> (ErrorFigures, GroupFigures, ColumnFigures) {
-        let mut columns = ColumnSums::new(if self.columns { self.cols } else { 0 });
-        let mut sums = if self.whole_tensor { vec![ErrorSums::default()] } else { Vec::new() };
-        for block in blocks {
-            if let Some(c) = &block.columns {
-                columns.add_block(c);
-            }
-            if self.whole_tensor {
-                block.groups.iter().for_each(|g| sums[0].merge(g));
-            } else {
-                sums.extend(block.groups);
-            }
-        }
         let mut total = ErrorSums::default();
-        sums.iter().for_each(|s| total.merge(s));
+        blocks.iter().flat_map(|b| &b.groups).for_each(|g| total.merge(g));
+        let column_blocks: Vec<&ColumnBlock> = blocks.iter().filter_map(|b| b.columns.as_ref()).collect();
+        let columns = ColumnSums::of_blocks(if self.columns { self.cols } else { 0 }, &column_blocks);
         let group_size = matches!(recipe.granularity, Granularity::Group(_)).then_some(self.width);
-        let grid_rows = sums.len() / self.per_row;
-        (total.figures(), GroupFigures::from_sums(grid_rows, self.per_row, group_size, &sums), columns.figures())
+        let groups = if self.whole_tensor {
+            GroupFigures::from_sums(1, 1, group_size, std::slice::from_ref(&total))
+        } else {
+            let parts = blocks.into_iter().map(|b| b.figures.expect("every block was ended")).collect();
+            GroupFigures::concat(self.per_row, group_size, parts)
+        };
+        (total.figures(), groups, columns.figures())
     }
 }
 
@@ -185,7 +184,7 @@ impl RowObserver for Measure {
 
     fn start(&self, _: usize, rows: usize) -> BlockSums {
         let groups = if self.whole_tensor { 1 } else { rows * self.per_row };
-        BlockSums { groups: vec![ErrorSums::default(); groups], columns: self.columns.then(|| ColumnBlock::new(self.cols)) }
+        BlockSums { groups: vec![ErrorSums::default(); groups], figures: None, columns: self.columns.then(|| ColumnBlock::new(self.cols)) }
     }
 
     fn groups(&self, block: &mut BlockSums, r: usize, first_col: usize, x: &[f32], x_hat: &[f32]) {
@@ -202,6 +201,13 @@ impl RowObserver for Measure {
     fn end_row(&self, block: &mut BlockSums, _: usize) {
         if let Some(columns) = &mut block.columns {
             columns.end_row();
+        }
+    }
+
+    fn end_block(&self, block: &mut BlockSums) {
+        if !self.whole_tensor {
+            let rows = block.groups.len() / self.per_row;
+            block.figures = Some(GroupFigures::from_sums(rows, self.per_row, None, &block.groups));
         }
     }
 }

@@ -207,6 +207,26 @@ impl GroupFigures {
             rel_err: sums.iter().map(|s| s.rel_err() as f32).collect(),
         }
     }
+
+    /// The figures of `parts`, consecutive rows of one grid, in order.
+    pub fn concat(per_row: usize, group_size: Option<usize>, parts: Vec<GroupFigures>) -> Self {
+        let groups = parts.iter().map(|p| p.mse.len()).sum();
+        let mut all = GroupFigures {
+            rows: 0,
+            per_row,
+            group_size,
+            mse: Vec::with_capacity(groups),
+            max_abs_err: Vec::with_capacity(groups),
+            rel_err: Vec::with_capacity(groups),
+        };
+        for part in parts {
+            all.rows += part.rows;
+            all.mse.extend(part.mse);
+            all.max_abs_err.extend(part.max_abs_err);
+            all.rel_err.extend(part.rel_err);
+        }
+        all
+    }
 }
 
 /// The sums of eight adjacent columns, side by side, so that the measuring loop reaches all
@@ -263,10 +283,39 @@ impl ColumnSums {
         ColumnSums { rows: 0, max_abs: vec![0.0; cols], sum_sq: vec![0.0; cols], sum_sq_err: vec![0.0; cols] }
     }
 
-    /// Add the next block of rows.
-    pub fn add_block(&mut self, block: &ColumnBlock) {
+    /// The sums of `blocks`, in row order, with the columns shared out among threads: each
+    /// column still adds its blocks one after another in row order, so the sums are those of one
+    /// pass over the blocks, bit for bit, whatever the number of threads.
+    pub fn of_blocks(cols: usize, blocks: &[&ColumnBlock]) -> Self {
+        /// Octets of columns per task (1024 columns: a few KiB of each block's sums).
+        const OCTETS_PER_TASK: usize = 128;
+        let octets = cols.div_ceil(8);
+        let parts = crate::rows::map_items(octets.div_ceil(OCTETS_PER_TASK), |k| {
+            let range = k * OCTETS_PER_TASK..((k + 1) * OCTETS_PER_TASK).min(octets);
+            let mut part = ColumnSums::new((range.end * 8).min(cols) - range.start * 8);
+            for block in blocks {
+                part.add_octets(&block.octets[range.clone()]);
+            }
+            part
+        });
+        let mut all = ColumnSums {
+            rows: blocks.iter().map(|b| b.rows).sum(),
+            max_abs: Vec::with_capacity(cols),
+            sum_sq: Vec::with_capacity(cols),
+            sum_sq_err: Vec::with_capacity(cols),
+        };
+        for part in parts {
+            all.max_abs.extend(part.max_abs);
+            all.sum_sq.extend(part.sum_sq);
+            all.sum_sq_err.extend(part.sum_sq_err);
+        }
+        all
+    }
+
+    /// Add the sums of one block's `octets`, the first of which holds this set's column 0.
+    fn add_octets(&mut self, octets: &[ColumnOctet]) {
         let columns = self.max_abs.chunks_mut(8).zip(self.sum_sq.chunks_mut(8)).zip(self.sum_sq_err.chunks_mut(8));
-        for (((max, sq), err), octet) in columns.zip(&block.octets) {
+        for (((max, sq), err), octet) in columns.zip(octets) {
             for (max, &m) in max.iter_mut().zip(&octet.max_abs) {
                 *max = larger(*max, m);
             }
@@ -277,7 +326,6 @@ impl ColumnSums {
                 *total += f64::from(b);
             }
         }
-        self.rows += block.rows;
     }
 
     /// The finished figures.
@@ -398,9 +446,7 @@ mod tests {
         sums.add_with_columns(&[-1.0, 0.5, 2.0, 1.0, 0.0], &[-1.0, 0.5, 2.0, 1.0, 0.0], &mut block, 0);
         block.end_row();
         assert_eq!(sums.count, 10);
-        let mut c = ColumnSums::new(5);
-        c.add_block(&block);
-        let f = c.figures();
+        let f = ColumnSums::of_blocks(5, &[&block]).figures();
         assert_eq!(f.max_abs, vec![1.0, 1.0, 10.0, 1.0, 1.0]);
         assert_eq!(f.outlier_score[2], 10.0);
         assert_eq!(f.outliers(), vec![2]);
@@ -424,13 +470,39 @@ mod tests {
                 }
                 block.end_row();
             }
-            let mut c = ColumnSums::new(cols);
-            c.add_block(&block);
-            c.figures()
+            ColumnSums::of_blocks(cols, &[&block]).figures()
         };
         let whole = figures(cols);
         for width in [1, 5, 8, 12, 16, 44] {
             assert_eq!(figures(width), whole, "runs of {width}");
+        }
+    }
+
+    /// Sharing the columns out among tasks gives the sums of one pass over all columns, for
+    /// column counts below, at and across the task width (1024) and not multiples of 8.
+    #[test]
+    fn column_sums_of_blocks_match_one_pass_for_odd_widths() {
+        for cols in [0usize, 1, 7, 8, 1023, 1024, 1025, 3001] {
+            let blocks: Vec<ColumnBlock> = (0..3)
+                .map(|b| {
+                    let mut block = ColumnBlock::new(cols);
+                    for r in 0..2 {
+                        let row: Vec<f32> = (0..cols).map(|c| ((b * 7 + r * 3 + c) as f32 * 0.61).sin() * 3.0).collect();
+                        let rounded: Vec<f32> = row.iter().map(|v| v.round()).collect();
+                        ErrorSums::default().add_with_columns(&row, &rounded, &mut block, 0);
+                        block.end_row();
+                    }
+                    block
+                })
+                .collect();
+            let mut one_pass = ColumnSums::new(cols);
+            for block in &blocks {
+                one_pass.add_octets(&block.octets);
+                one_pass.rows += block.rows;
+            }
+            let shared = ColumnSums::of_blocks(cols, &blocks.iter().collect::<Vec<_>>());
+            assert_eq!(shared, one_pass, "{cols} columns");
+            assert_eq!(shared.rows, 6);
         }
     }
 

@@ -235,6 +235,9 @@ pub(crate) trait RowObserver: Sync {
     fn groups(&self, block: &mut Self::Block, r: usize, first_col: usize, x: &[f32], x_hat: &[f32]);
     /// Row `r` is complete.
     fn end_row(&self, block: &mut Self::Block, r: usize);
+    /// Every row of the block is complete (work that belongs to the block goes here, on the
+    /// thread that computed it, rather than after all blocks on one thread).
+    fn end_block(&self, _block: &mut Self::Block) {}
 }
 
 /// Observes nothing.
@@ -332,6 +335,7 @@ pub(crate) fn quantize_groups<T: Send, O: RowObserver>(
             }
             observer.end_row(&mut seen, r);
         }
+        observer.end_block(&mut seen);
         Ok::<_, Error>((params, block_notes, seen))
     });
     let mut params = Vec::with_capacity(recipe.granularity.group_count(rows, cols));
