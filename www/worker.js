@@ -216,9 +216,21 @@ self.onmessage = (event) => {
   queue = queue.then(() => handle(event));
 };
 
+/**
+ * Progress without a partial result goes out at most this often: each message makes the page
+ * draw a frame, and on a machine with few cores that frame takes its time from the computation.
+ */
+const PROGRESS_EVERY_MS = 100;
+
 async function handle(event) {
   const { id, type, ...args } = event.data;
-  const progress = (done, total, item) => self.postMessage({ id, progress: [done, total], item });
+  let lastProgress = -Infinity;
+  const progress = (done, total, item) => {
+    const now = performance.now();
+    if (item === undefined && done < total && now - lastProgress < PROGRESS_EVERY_MS) return;
+    lastProgress = now;
+    self.postMessage({ id, progress: [done, total], item });
+  };
   try {
     const handler = handlers[type];
     if (!handler) throw new Error(`unknown request ${type}`);

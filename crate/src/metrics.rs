@@ -47,7 +47,7 @@ impl ErrorSums {
     /// [`ErrorSums::add`], also adding each element to its column's sums (element j to column j):
     /// one pass over the data while it is in cache.
     pub fn add_with_columns(&mut self, x: &[f32], x_hat: &[f32], columns: &mut ColumnBlock, first_col: usize) {
-        if first_col % 8 == 0 {
+        if first_col.is_multiple_of(8) {
             self.add_measuring::<true>(x, x_hat, &mut columns.octets[first_col / 8..]);
         } else {
             // A run that starts inside an octet (a group width that is not a multiple of eight):
