@@ -103,8 +103,13 @@ const browser = await launch();
 const page = await browser.newPage({ viewport: { width: 1400, height: 1000 } });
 await page.goto(URL_UNDER_TEST);
 await page.waitForSelector('body[data-ready=true]');
+/** Page `p`'s timings named `what`, in milliseconds, oldest first. */
+const timesOf = (p, what) => p.evaluate((w) => window.bitloupeTimings.filter((t) => t.what === w).map((t) => t.ms), what);
+/** Wait until page `p` has recorded at least `count` timings named `what`. */
+const waitForTiming = (p, what, count, timeout = 120_000) =>
+  p.waitForFunction(([w, n]) => window.bitloupeTimings.filter((t) => t.what === w).length >= n, [what, count], { timeout });
 const timings = () => page.evaluate(() => window.bitloupeTimings.slice());
-const waitFor = async (what, count) => page.waitForFunction(([w, n]) => window.bitloupeTimings.filter((t) => t.what === w).length >= n, [what, count], { timeout: 120_000 });
+const waitFor = (what, count) => waitForTiming(page, what, count);
 
 await page.setInputFiles('#file-input', weightFile);
 await waitFor('open-to-drawn', 1);
@@ -154,12 +159,11 @@ for (const threads of [1, os.cpus().length]) {
   const p = await browser.newPage({ viewport: { width: 1400, height: 1000 } });
   await p.goto(`${URL_UNDER_TEST}?threads=${threads}`);
   await p.waitForSelector('body[data-ready=true]');
-  const computes = () => p.evaluate(() => window.bitloupeTimings.filter((t) => t.what === 'recipe-compute').map((t) => t.ms));
-  const opened = () => p.evaluate(() => window.bitloupeTimings.filter((t) => t.what === 'open-to-drawn').length);
+  const computes = () => timesOf(p, 'recipe-compute');
   const open = async (file) => {
-    const n = await opened();
+    const n = (await timesOf(p, 'open-to-drawn')).length;
     await p.setInputFiles('#file-input', file);
-    await p.waitForFunction((k) => window.bitloupeTimings.filter((t) => t.what === 'open-to-drawn').length > k, n, { timeout: 120_000 });
+    await waitForTiming(p, 'open-to-drawn', n + 1);
   };
   /** Compute times of `runs` recipe changes (3-bit and 4-bit in turn) after `warmUp` untimed ones. */
   const recipeChanges = async (runs, warmUp) => {
@@ -170,7 +174,7 @@ for (const threads of [1, os.cpus().length]) {
       const n = (await computes()).length;
       await p.waitForTimeout(300);
       await p.selectOption('#bits', i % 2 ? '4' : '3');
-      await p.waitForFunction((k) => window.bitloupeTimings.filter((t) => t.what === 'recipe-to-drawn').length > k, n, { timeout: 300_000 });
+      await waitForTiming(p, 'recipe-to-drawn', n + 1, 300_000);
       if (i >= warmUp) times.push((await computes()).at(-1));
     }
     return median(times);
@@ -182,7 +186,7 @@ for (const threads of [1, os.cpus().length]) {
   const rtn = await recipeChanges(7, 3);
   const n = (await computes()).length;
   await p.selectOption('#method', 'hqq');
-  await p.waitForFunction((k) => window.bitloupeTimings.filter((t) => t.what === 'recipe-compute').length > k, n, { timeout: 300_000 });
+  await waitForTiming(p, 'recipe-compute', n + 1, 300_000);
   const hqq = await recipeChanges(3, 0);
   await p.selectOption('#method', 'rtn');
   await open(wideFile);
