@@ -107,7 +107,9 @@ await page.waitForSelector('body[data-ready=true]');
 const timesOf = (p, what) => p.evaluate((w) => window.bitloupeTimings.filter((t) => t.what === w).map((t) => t.ms), what);
 /** Wait until page `p` has recorded at least `count` timings named `what`. */
 const waitForTiming = (p, what, count, timeout = 120_000) =>
-  p.waitForFunction(([w, n]) => window.bitloupeTimings.filter((t) => t.what === w).length >= n, [what, count], { timeout });
+  // Polled on a timer rather than every frame, so that the harness does not make the page draw
+  // frames while it computes.
+  p.waitForFunction(([w, n]) => window.bitloupeTimings.filter((t) => t.what === w).length >= n, [what, count], { timeout, polling: 50 });
 const timings = () => page.evaluate(() => window.bitloupeTimings.slice());
 const waitFor = (what, count) => waitForTiming(page, what, count);
 

@@ -217,17 +217,18 @@ self.onmessage = (event) => {
 };
 
 /**
- * Progress without a partial result goes out at most this often: each message makes the page
- * draw a frame, and on a machine with few cores that frame takes its time from the computation.
+ * Progress without a partial result goes out at most this often, the first once a run has lasted
+ * that long: each message makes the page draw a frame, and on a machine with few cores that frame
+ * takes its time from the computation (a short run sends none; its result follows at once).
  */
 const PROGRESS_EVERY_MS = 100;
 
 async function handle(event) {
   const { id, type, ...args } = event.data;
-  let lastProgress = -Infinity;
+  let lastProgress = performance.now();
   const progress = (done, total, item) => {
     const now = performance.now();
-    if (item === undefined && done < total && now - lastProgress < PROGRESS_EVERY_MS) return;
+    if (item === undefined && now - lastProgress < PROGRESS_EVERY_MS) return;
     lastProgress = now;
     self.postMessage({ id, progress: [done, total], item });
   };
