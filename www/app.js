@@ -105,9 +105,10 @@ async function task(label, type, payload, remember, onItem = null) {
     $('status').textContent = `${label}…`;
     $('busy').hidden = false;
   }, SHOW_PROGRESS_AFTER_MS);
-  const started = performance.now();
   try {
     await afterNextFrame();
+    // The run's time shown to the user starts when it is sent, not with the wait for the frame.
+    const started = performance.now();
     const result = await bridge.request(type, payload, {
       remember,
       onProgress: (done, total, item) => {
