@@ -9,11 +9,15 @@
 // 3. GPTQ and AWQ on the same 4096 × 4096 weight with 512 calibration tokens, int4 asym g128:
 //    the time from choosing the method to the drawn result in the page, and the wall time of the
 //    native `bitloupe quantize` command (BITLOUPE_BIN) on the same files, both on all cores.
-// 4. The worker pool: the compute time of round to nearest and of HQQ on the 4096 × 4096 weight,
-//    and of round to nearest on the 4096 × 14336 f16 layer of case 5, with one pool worker
-//    (`?threads=1`) and with one per core, and their ratio.
+// 4. The worker pool: the compute time of round to nearest (per recipe change and in a sweep) and
+//    of HQQ on the 4096 × 4096 weight, and of round to nearest on the 4096 × 14336 f16 layer of
+//    case 5, with one pool worker and with one per core, and their ratio.
 // 5. A 4096 × 14336 f16 `.safetensors` file (one tensor): the time from choosing it to the
 //    drawn error map.
+// 6. The control for case 4, after the browser has closed: the native `bench_case` example
+//    (BENCH_CASE) on the 4096 × 4096 weight, one thread and all cores, back to back and with the
+//    page's pause before each run, in the same rounds; so the table shows how much of the pool's
+//    figures is the machine rather than the browser.
 import { mkdirSync, writeFileSync, openSync, ftruncateSync, closeSync, writeSync } from 'node:fs';
 import { execFileSync } from 'node:child_process';
 import os from 'node:os';
@@ -155,46 +159,68 @@ await page.selectOption('#method', 'rtn');
 const wideFile = path.join(dir, 'layer-4096x14336-f16.safetensors');
 f16Safetensors(wideFile, 'model.block.0.mlp.down.weight', 4096, 14336);
 
-// The worker pool: one pool worker against one per core, same files, same recipes.
-const poolTimes = {};
-for (const threads of [1, os.cpus().length]) {
+// The worker pool: one pool worker against one per core, on the same files and recipes, in the
+// page as a user works it. Per change: the compute time of a recipe change (a pause, the change,
+// the frame answering it, the run). In a sweep: the compute time of the 48-recipe sweep of case
+// 1, whose recipes run one after another inside one request. Between a user's changes the pool
+// sleeps, and on some machines a short run that follows an idle pause gains less from a second
+// thread, natively too: case 6 measures the same core natively with and without the pause. The
+// pool sizes take turns round by round, so that a slow spell of the machine falls on both alike.
+const cores = [1, os.cpus().length];
+/** The pause before each recipe change, as a user's. */
+const PAUSE_MS = 300;
+const poolTimes = Object.fromEntries(cores.map((threads) => [threads, { rtn: [], sweep: [], hqq: [], rtnWide: [] }]));
+
+/** Compute times of `runs` recipe changes in page `p` (3-bit and 4-bit in turn), after `warmUp` untimed ones. */
+async function recipeChanges(p, runs, warmUp) {
+  const times = [];
+  for (let i = 0; i < warmUp + runs; i++) {
+    // Each change waits until the last result is drawn and its histogram is in, so the page's
+    // own thread does not compete with the pool for the cores while it computes.
+    const n = (await timesOf(p, 'recipe-compute')).length;
+    await p.waitForTimeout(PAUSE_MS);
+    await p.selectOption('#bits', i % 2 ? '4' : '3');
+    await waitForTiming(p, 'recipe-to-drawn', n + 1, 300_000);
+    if (i >= warmUp) times.push((await timesOf(p, 'recipe-compute')).at(-1));
+  }
+  return times;
+}
+
+/** One round of the pool's cases in a fresh page with `threads` pool workers. */
+async function poolRound(threads) {
   const p = await browser.newPage({ viewport: { width: 1400, height: 1000 } });
   await p.goto(`${URL_UNDER_TEST}?threads=${threads}`);
   await p.waitForSelector('body[data-ready=true]');
-  const computes = () => timesOf(p, 'recipe-compute');
   const open = async (file) => {
     const n = (await timesOf(p, 'open-to-drawn')).length;
     await p.setInputFiles('#file-input', file);
     await waitForTiming(p, 'open-to-drawn', n + 1);
   };
-  /** Compute times of `runs` recipe changes (3-bit and 4-bit in turn) after `warmUp` untimed ones. */
-  const recipeChanges = async (runs, warmUp) => {
-    const times = [];
-    for (let i = 0; i < warmUp + runs; i++) {
-      // Each change waits until the last result is drawn and its histogram is in, so the page's
-      // own thread does not compete with the pool for the cores while it computes.
-      const n = (await computes()).length;
-      await p.waitForTimeout(300);
-      await p.selectOption('#bits', i % 2 ? '4' : '3');
-      await waitForTiming(p, 'recipe-to-drawn', n + 1, 300_000);
-      if (i >= warmUp) times.push((await computes()).at(-1));
-    }
-    return median(times);
-  };
+  const into = poolTimes[threads];
   await open(weightFile);
   // Untimed runs first: V8 swaps optimised code in for a function's next call once it proves
-  // hot, and a round-to-nearest run is short enough for the first few to run the baseline code
-  // (HQQ's runs are seconds long, and its kernels are the same ones, already hot).
-  const rtn = await recipeChanges(7, 3);
-  const n = (await computes()).length;
+  // hot, and a round-to-nearest run is short enough for the first few to run the baseline code.
+  into.rtn.push(...await recipeChanges(p, 4, 3));
+  await p.uncheck('input[name=sweep-format][value=nf4]');
+  await p.uncheck('input[name=sweep-format][value=mxfp4]');
+  await p.check('input[name=sweep-scale][value=bf16]');
+  await p.check('input[name=sweep-scale][value=f32]');
+  await p.click('#sweep-run');
+  await waitForTiming(p, 'sweep-compute', 1, 300_000);
+  into.sweep.push((await timesOf(p, 'sweep-compute'))[0]);
+  // HQQ's runs are seconds long, and its kernels are the round-to-nearest ones, already hot.
+  const n = (await timesOf(p, 'recipe-compute')).length;
   await p.selectOption('#method', 'hqq');
   await waitForTiming(p, 'recipe-compute', n + 1, 300_000);
-  const hqq = await recipeChanges(3, 0);
+  into.hqq.push((await timesOf(p, 'recipe-compute')).at(-1), ...await recipeChanges(p, 1, 0));
   await p.selectOption('#method', 'rtn');
   await open(wideFile);
-  const rtnWide = await recipeChanges(5, 1);
-  poolTimes[threads] = { rtn, hqq, rtnWide };
+  into.rtnWide.push(...await recipeChanges(p, 3, 1));
   await p.close();
+}
+
+for (let round = 0; round < 2; round++) {
+  for (const threads of round % 2 ? [...cores].reverse() : cores) await poolRound(threads);
 }
 
 // The large f16 layer from a dropped file: choose it → drawn error map.
@@ -216,6 +242,21 @@ await browser.close();
 
 // The native command runs after the browser has closed, so the two never share the cores.
 const native = {};
+const nativePool = Object.fromEntries(cores.map((threads) => [threads, { backToBack: [], perChange: [] }]));
+if (process.env.BENCH_CASE) {
+  for (let round = 0; round < 2; round++) {
+    for (const threads of cores) {
+      for (const [pause, into] of [[0, 'backToBack'], [PAUSE_MS, 'perChange']]) {
+        // The allocator keeps freed pages (as a wasm memory does), so that the pause costs no
+        // fresh page faults: what remains is the machine waking from idle.
+        const out = execFileSync(process.env.BENCH_CASE, [weightFile, '20', threads === 1 ? '1' : '0', String(pause)], {
+          env: { ...process.env, MIMALLOC_PURGE_DELAY: '-1' },
+        });
+        nativePool[threads][into].push(JSON.parse(out).analyze_ms);
+      }
+    }
+  }
+}
 if (process.env.BITLOUPE_BIN) {
   for (const method of ['gptq', 'awq']) {
     const start = performance.now();
@@ -231,11 +272,22 @@ console.log(`| 4096×4096 f32, recipe change to int4 asym g128 f16 → drawn | $
 console.log(`| 4096×4096 f32, open file → first drawn result | ${openRun.toFixed(0)} ms | 1 |`);
 console.log(`| 2 GiB .safetensors (128 tensors), choose file → list drawn | ${median(listRuns).toFixed(0)} ms | ${listRuns.map((x) => x.toFixed(0)).join(', ')} |`);
 console.log(`| 4096×4096 f32, 48-recipe round-to-nearest sweep (click → last row drawn) | ${(sweepMs / 1000).toFixed(2)} s | 1 |`);
-const cores = Object.keys(poolTimes).map(Number).sort((a, b) => a - b);
-const [one, all] = [poolTimes[cores[0]], poolTimes[cores[cores.length - 1]]];
-console.log(`| worker pool, 4096×4096 f32, round to nearest compute: 1 pool worker → ${cores.at(-1)} | ${one.rtn.toFixed(0)} ms → ${all.rtn.toFixed(0)} ms (${(one.rtn / all.rtn).toFixed(2)}×) | 7 each |`);
-console.log(`| worker pool, 4096×14336 f16, round to nearest compute: 1 pool worker → ${cores.at(-1)} | ${one.rtnWide.toFixed(0)} ms → ${all.rtnWide.toFixed(0)} ms (${(one.rtnWide / all.rtnWide).toFixed(2)}×) | 5 each |`);
-console.log(`| worker pool, 4096×4096 f32, HQQ compute: 1 pool worker → ${cores.at(-1)} | ${(one.hqq / 1000).toFixed(2)} s → ${(all.hqq / 1000).toFixed(2)} s (${(one.hqq / all.hqq).toFixed(2)}×) | 3 each |`);
+/** One table row: the medians with one pool worker and with one per core, and their ratio. */
+function poolRow(label, times, { unit = 'ms', of = 'pool worker' } = {}) {
+  const [one, all] = cores.map((threads) => median(times[threads]));
+  const shown = (ms) => (unit === 's' ? `${(ms / 1000).toFixed(2)} s` : `${ms.toFixed(1)} ms`);
+  console.log(`| ${label}: 1 ${of} → ${cores[1]} | ${shown(one)} → ${shown(all)} (${(one / all).toFixed(2)}×) | ${times[cores[0]].length} each |`);
+}
+const pick = (table, name) => Object.fromEntries(cores.map((threads) => [threads, table[threads][name]]));
+poolRow('worker pool, 4096×4096 f32, round to nearest, per recipe change', pick(poolTimes, 'rtn'));
+poolRow('worker pool, 4096×4096 f32, 48-recipe round-to-nearest sweep', pick(poolTimes, 'sweep'), { unit: 's' });
+poolRow('worker pool, 4096×14336 f16, round to nearest, per recipe change', pick(poolTimes, 'rtnWide'));
+poolRow('worker pool, 4096×4096 f32, HQQ', pick(poolTimes, 'hqq'), { unit: 's' });
+if (process.env.BENCH_CASE) {
+  const natively = { of: 'thread' };
+  poolRow('control: native, 4096×4096 f32, round to nearest, back to back (medians of 20 runs)', pick(nativePool, 'backToBack'), natively);
+  poolRow(`control: native, same, after a ${PAUSE_MS} ms pause each (medians of 20 runs)`, pick(nativePool, 'perChange'), natively);
+}
 console.log(`| 4096×14336 f16 .safetensors, choose file → error map drawn | ${median(wideRuns).toFixed(0)} ms | ${wideRuns.map((x) => x.toFixed(0)).join(', ')} |`);
 for (const method of ['gptq', 'awq']) {
   const t = methodTimes[method];

@@ -936,6 +936,7 @@ $('sweep-run').addEventListener('click', async () => {
       $('sweep-status').textContent = `Cancelled after ${sweep.rows.length} recipes.`;
       return;
     }
+    timings.push({ what: 'sweep-compute', ms: bridge.lastComputeMs });
     sweep.rows = result.rows;
     drawSweep();
     $('sweep-status').textContent = `${fmt.plural(result.rows.length, 'recipe')} run, ${result.rows.filter((r) => r.pareto).length} on the front, ${result.skipped} combinations skipped as meaningless.`;

@@ -553,6 +553,7 @@ fn bench() -> Result {
         .arg(root.join("bench/page.mjs"))
         .env("BITLOUPE_URL", format!("http://127.0.0.1:{port}/"))
         .env("BITLOUPE_BIN", root.join("target/release/bitloupe"))
+        .env("BENCH_CASE", root.join("target/release/examples/bench_case"))
         .env("BITLOUPE_CHROMIUM", CHROMIUM)
         .current_dir(&root))
 }
