@@ -93,8 +93,8 @@ let busyTimer = null;
 let running = 0;
 
 /** Run one request with the progress bar and cancel button; returns null when cancelled.
- * `onItem` receives partial results that arrive with the progress. */
-async function task(label, type, payload, remember, onItem = null) {
+ * `onItems` receives the partial results that arrive with each progress message. */
+async function task(label, type, payload, remember, onItems = null) {
   running += 1;
   const progress = $('progress');
   progress.removeAttribute('value');
@@ -111,10 +111,10 @@ async function task(label, type, payload, remember, onItem = null) {
     const started = performance.now();
     const result = await bridge.request(type, payload, {
       remember,
-      onProgress: (done, total, item) => {
+      onProgress: (done, total, items) => {
         progress.max = total;
         progress.value = done;
-        if (onItem) onItem(item, done, total, performance.now() - started);
+        if (onItems) onItems(items, done, total, performance.now() - started);
       },
     });
     result.elapsedMs = performance.now() - started;
@@ -926,11 +926,11 @@ $('sweep-run').addEventListener('click', async () => {
   }
   sweep.rows = [];
   try {
-    const result = await task('Running the sweep', 'sweep', { spec, by: sweep.by }, null, (row, done, total, elapsed) => {
-      if (row) sweep.rows.push(row);
+    const result = await task('Running the sweep', 'sweep', { spec, by: sweep.by }, null, (rows, done, total, elapsed) => {
+      sweep.rows.push(...rows);
       const left = (elapsed / done) * (total - done) / 1000;
       $('sweep-status').textContent = `${done} of ${total} recipes done; about ${Math.ceil(left)} s left.`;
-      if (done % 4 === 0 || done === total) drawSweep();
+      drawSweep();
     });
     if (!result) {
       $('sweep-status').textContent = `Cancelled after ${sweep.rows.length} recipes.`;

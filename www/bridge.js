@@ -61,7 +61,7 @@ export class CoreBridge {
     const entry = this.pending.get(message.id);
     if (!entry) return;
     if (message.progress) {
-      entry.onProgress?.(message.progress[0], message.progress[1], message.item);
+      entry.onProgress?.(message.progress[0], message.progress[1], message.items);
       return;
     }
     this.pending.delete(message.id);

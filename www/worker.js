@@ -170,14 +170,14 @@ const handlers = {
     const rows = [];
     let failed = 0;
     plan.recipes.forEach((recipe, i) => {
+      let row = null;
       try {
-        const row = calib ? tensor.sweepRowWith(recipe, calib) : tensor.sweepRow(recipe);
+        row = calib ? tensor.sweepRowWith(recipe, calib) : tensor.sweepRow(recipe);
         rows.push(row);
-        progress(i + 1, plan.recipes.length, row);
       } catch (err) {
         failed += 1;
-        progress(i + 1, plan.recipes.length, null);
       }
+      progress(i + 1, plan.recipes.length, row);
     });
     return { value: { rows: core.markParetoFront(rows, by), skipped: plan.skipped + failed } };
   },
@@ -217,20 +217,25 @@ self.onmessage = (event) => {
 };
 
 /**
- * Progress without a partial result goes out at most this often, the first once a run has lasted
- * that long: each message makes the page draw a frame, and on a machine with few cores that frame
- * takes its time from the computation (a short run sends none; its result follows at once).
+ * Progress goes out at most this often, the first once a run has lasted that long, with the
+ * partial results (a sweep's rows) gathered since the last: each message makes the page draw a
+ * frame, and on a machine with few cores that frame takes its time from the computation (a sweep
+ * of 48 short runs that sent a row at a time spent a third of a core drawing them). A short run
+ * sends none; its result, which holds every partial result too, follows at once.
  */
-const PROGRESS_EVERY_MS = 100;
+const PROGRESS_EVERY_MS = 200;
 
 async function handle(event) {
   const { id, type, ...args } = event.data;
   let lastProgress = performance.now();
+  let items = [];
   const progress = (done, total, item) => {
+    if (item) items.push(item);
     const now = performance.now();
-    if (item === undefined && now - lastProgress < PROGRESS_EVERY_MS) return;
+    if (now - lastProgress < PROGRESS_EVERY_MS) return;
     lastProgress = now;
-    self.postMessage({ id, progress: [done, total], item });
+    self.postMessage({ id, progress: [done, total], items });
+    items = [];
   };
   try {
     const handler = handlers[type];
