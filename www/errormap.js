@@ -6,6 +6,17 @@ import { DIVERGING, TABLE } from './colors.js';
 
 const MIN_SPAN = 4;
 
+/** A colour table of [r, g, b] as opaque RGBA pixels, in the byte order of an ImageData's
+ * buffer seen as 32-bit words. */
+function packed(table) {
+  const bytes = new Uint8ClampedArray(table.length * 4);
+  table.forEach(([r, g, b], i) => bytes.set([r, g, b, 255], i * 4));
+  return new Uint32Array(bytes.buffer);
+}
+
+const SEQUENTIAL_PIXELS = packed(TABLE);
+const DIVERGING_PIXELS = packed(DIVERGING);
+
 export class ErrorMap {
   constructor(canvas, { onHover = () => {}, onSelect = () => {} } = {}) {
     this.canvas = canvas;
@@ -28,15 +39,16 @@ export class ErrorMap {
     this.data = data;
     let max = 0;
     let minPositive = Infinity;
-    for (const v of data.values) {
-      const a = Math.abs(v);
+    const { values } = data;
+    for (let i = 0; i < values.length; i++) {
+      const a = Math.abs(values[i]);
       if (a > max) max = a;
       if (a > 0 && a < minPositive) minPositive = a;
     }
     // A shared range (for maps shown side by side) overrides the map's own.
     this.max = data.range ? data.range.max : max;
     this.floor = data.range ? data.range.floor : data.log ? Math.max(minPositive, max * 1e-6) : 0;
-    this.table = data.diverging ? DIVERGING : TABLE;
+    this.colours = data.diverging ? DIVERGING_PIXELS : SEQUENTIAL_PIXELS;
     if (!(keepView && sameGrid)) this.reset(false);
     this.draw();
   }
@@ -52,14 +64,16 @@ export class ErrorMap {
     if (redraw) this.draw();
   }
 
+  // A selection is drawn over the last image of the cells, which is not computed again for it:
+  // a recipe change moves the selection twice after the new cells are drawn.
   setSelectedColumn(col) {
     this.selectedColumn = col;
-    this.draw();
+    this.draw({ cellsChanged: false });
   }
 
   setSelectedGroup(index) {
     this.selectedGroup = index;
-    this.draw();
+    this.draw({ cellsChanged: false });
   }
 
   /** Colour position in [0, 1] of one value (diverging maps put 0 at ½). */
@@ -86,7 +100,7 @@ export class ErrorMap {
     return { start, end };
   }
 
-  draw() {
+  draw({ cellsChanged = true } = {}) {
     const { canvas, ctx, data } = this;
     const dpr = window.devicePixelRatio || 1;
     const width = Math.max(1, Math.round(canvas.clientWidth * dpr));
@@ -99,36 +113,50 @@ export class ErrorMap {
       ctx.clearRect(0, 0, width, height);
       return;
     }
+    if (cellsChanged || !this.cells || this.cells.width !== width || this.cells.height !== height) this.cells = this.drawCells(width, height);
+    ctx.putImageData(this.cells, 0, 0);
+    this.drawSelection(width, height, dpr);
+  }
+
+  /** The image of the cells in view, `width` × `height` pixels. */
+  drawCells(width, height) {
+    const { data, colours } = this;
     const { x0, x1, y0, y1 } = this.view;
     const xs = ErrorMap.spans(width, x0, x1, data.perRow);
     const ys = ErrorMap.spans(height, y0, y1, data.rows);
-    const image = ctx.createImageData(width, height);
-    const pixels = image.data;
+    const image = this.ctx.createImageData(width, height);
+    const pixels = new Uint32Array(image.data.buffer);
+    const first = xs.start[0];
+    const last = xs.end[width - 1];
+    // Per pixel row: the value of each cell column in view (the largest magnitude among the rows
+    // the pixel row covers, keeping its sign for diverging maps) and its colour. A pixel that
+    // covers several cell columns takes the colour of the largest among them, so a hot group
+    // never disappears when zoomed out; the colour scale is computed once per cell column, not
+    // once per pixel.
     const colMax = new Float32Array(data.perRow);
+    const colColour = new Uint32Array(data.perRow);
     for (let py = 0; py < height; py++) {
-      colMax.fill(0, xs.start[0], xs.end[width - 1]);
-      // The largest magnitude wins a shared pixel (keeping its sign for diverging maps).
+      const offset = py * width;
+      if (py > 0 && ys.start[py] === ys.start[py - 1] && ys.end[py] === ys.end[py - 1]) {
+        pixels.copyWithin(offset, offset - width, offset);
+        continue;
+      }
+      colMax.fill(0, first, last);
       for (let r = ys.start[py]; r < ys.end[py]; r++) {
         const base = r * data.perRow;
-        for (let c = xs.start[0]; c < xs.end[width - 1]; c++) {
+        for (let c = first; c < last; c++) {
           const v = data.values[base + c];
           if (Math.abs(v) > Math.abs(colMax[c])) colMax[c] = v;
         }
       }
-      let offset = py * width * 4;
+      for (let c = first; c < last; c++) colColour[c] = colours[Math.round(this.position(colMax[c]) * 255)];
       for (let px = 0; px < width; px++) {
-        let v = 0;
-        for (let c = xs.start[px]; c < xs.end[px]; c++) if (Math.abs(colMax[c]) > Math.abs(v)) v = colMax[c];
-        const [r, g, b] = this.table[Math.round(this.position(v) * 255)];
-        pixels[offset] = r;
-        pixels[offset + 1] = g;
-        pixels[offset + 2] = b;
-        pixels[offset + 3] = 255;
-        offset += 4;
+        let best = xs.start[px];
+        for (let c = best + 1; c < xs.end[px]; c++) if (Math.abs(colMax[c]) > Math.abs(colMax[best])) best = c;
+        pixels[offset + px] = colColour[best];
       }
     }
-    ctx.putImageData(image, 0, 0);
-    this.drawSelection(width, height, dpr);
+    return image;
   }
 
   drawSelection(width, height, dpr) {
