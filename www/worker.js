@@ -52,12 +52,22 @@ function openAndAnalyze(open, recipe, progress) {
     calib = replace(calib, null);
     calibDropped = true;
   }
+  // A tensor with NaN or infinite values is refused (the run says where they are) and the one on
+  // screen stays. Any other replaces it whatever the run gives, so the one on screen and its
+  // result give way now, and their memory serves the run: a large layer opened after another
+  // would otherwise hold both layers and both results at once, and fresh memory for the second
+  // run's result took it from 0.1 s to 0.5 s on a 4096 × 14336 layer.
+  const finite = info.nan + info.inf === 0;
+  if (finite) {
+    tensor = replace(tensor, null);
+    analysis = replace(analysis, null);
+  }
   let nextAnalysis = null;
   let recipeError = null;
   try {
     nextAnalysis = run(next, recipe, progress);
   } catch (err) {
-    if (info.nan + info.inf > 0) {
+    if (!finite) {
       next.free();
       throw err;
     }
