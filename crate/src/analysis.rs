@@ -107,10 +107,7 @@ pub fn analyze_measured(
         Err(_) => true,
     };
     if non_finite {
-        let count = tensor.non_finite();
-        if let Some((first_row, first_col)) = count.first {
-            return Err(Error::NonFinite { nan: count.nan, inf: count.inf, first_row, first_col });
-        }
+        tensor.non_finite().check()?;
     }
     run
 }

@@ -382,6 +382,13 @@ impl TensorHandle {
         })
     }
 
+    /// An error naming how many NaN and infinite values there are and where the first is, when
+    /// there is any (no analysis can be made of such a tensor).
+    #[wasm_bindgen(js_name = checkFinite)]
+    pub fn check_finite(&self) -> Result<(), JsError> {
+        self.tensor.non_finite().check().map_err(js_error)
+    }
+
     /// Run a recipe (a plain object with any of the recipe's fields; the rest take defaults),
     /// with optional calibration, calling `progress(done, total)` now and then when it is given.
     pub fn analyze(

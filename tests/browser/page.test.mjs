@@ -157,6 +157,21 @@ test('a NaN tensor is refused with its count and place, and the old one stays', 
   await context.close();
 });
 
+test('a NaN tensor of another width leaves the calibration in place', async () => {
+  const { page, context } = await withDemoCalibration();
+  await page.click('#paste-box summary');
+  await page.fill('#paste', '1 2\nnan 4\n');
+  await page.click('#use-paste');
+  await page.waitForSelector('#input-message:not([hidden])');
+  assert.match(await page.textContent('#input-message'), /1 NaN and 0 infinite values/);
+  // The next run of the demo tensor still measures the output error on the calibration sample.
+  const status = await page.textContent('#status');
+  await page.selectOption('#bits', '4');
+  await waitForAnalysis(page, status);
+  assert.equal(await page.isHidden('#fig-output-card'), false, 'the output error is still measured');
+  await context.close();
+});
+
 test('a long run can be cancelled and the previous results stay', async () => {
   const { page, context } = await withDemo();
   // HQQ's iterations make opening a 4096 × 4096 tensor take seconds, long enough to cancel.

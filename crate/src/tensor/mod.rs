@@ -324,6 +324,16 @@ pub struct NonFiniteCount {
     pub first: Option<(usize, usize)>,
 }
 
+impl NonFiniteCount {
+    /// An error naming the count and the first place, when there is any NaN or infinite value.
+    pub fn check(&self) -> Result<()> {
+        match self.first {
+            Some((first_row, first_col)) => Err(Error::NonFinite { nan: self.nan, inf: self.inf, first_row, first_col }),
+            None => Ok(()),
+        }
+    }
+}
+
 impl Tensor {
     /// Wrap values already in the 2-D view; the stored shape is taken to be that view.
     pub fn from_values(name: impl Into<String>, dtype: DType, values: Array2<f32>) -> Self {
