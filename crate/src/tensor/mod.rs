@@ -27,11 +27,10 @@ pub const MAX_ELEMENTS: usize = 1 << 28;
 #[cfg(not(target_arch = "wasm32"))]
 pub const MAX_ELEMENTS: usize = 1 << 32;
 
-/// Bytes of the file read at a time when loading a tensor. Large, because a browser's ranged
-/// reads cost per range: in Chromium's worker, a 112 MiB file read in ranges of 2 MiB took
-/// 290–460 ms, in ranges of 32 MiB 126–160 ms, whole 129 ms. The raw bytes of one range are all
-/// that sits in memory beside the f32 values.
-const READ_CHUNK_BYTES: usize = 32 << 20;
+/// Elements decoded per read when loading a tensor (4 MiB of f32): their raw bytes are all that
+/// sits in memory beside the f32 values. (The page's file source fetches larger ranges outside
+/// the wasm memory; see `BlobSource` in `wasm.rs`.)
+const READ_CHUNK_ELEMENTS: usize = 1 << 20;
 
 /// Elements per block when a read range is decoded on the pool's threads.
 const DECODE_BLOCK_ELEMENTS: usize = 1 << 16;
@@ -202,18 +201,18 @@ pub fn read<S: ByteSource + ?Sized>(src: &S, entry: &TensorEntry) -> Result<Tens
     if entry.offset.checked_add(entry.bytes).is_none_or(|end| end > available) {
         return Err(Error::Truncated { what: "tensor data", needed: entry.offset.saturating_add(entry.bytes), available });
     }
-    let values = read_values(src, entry.offset, element, count, READ_CHUNK_BYTES)?;
+    let values = read_values(src, entry.offset, element, count, READ_CHUNK_ELEMENTS)?;
     let values = if entry.fortran_order && entry.shape.len() > 1 { fortran_to_c(values, &entry.shape) } else { values };
     let values = Array2::from_shape_vec((rows, cols), values).expect("length checked by view_2d");
     Ok(Tensor { name: entry.name.clone(), dtype: element.dtype, shape: entry.shape.clone(), values })
 }
 
-/// `count` elements stored from byte `offset` of `src`, read `chunk_bytes` at a time (at least one
-/// element) and decoded to f32 on the pool's threads, so that the raw bytes never sit in memory
+/// `count` elements stored from byte `offset` of `src`, read `chunk_elements` (at least one) at a
+/// time and decoded to f32 on the pool's threads, so that the raw bytes never sit in memory
 /// beside the whole f32 copy.
-pub(crate) fn read_values<S: ByteSource + ?Sized>(src: &S, offset: u64, element: Element, count: usize, chunk_bytes: usize) -> Result<Vec<f32>> {
+pub(crate) fn read_values<S: ByteSource + ?Sized>(src: &S, offset: u64, element: Element, count: usize, chunk_elements: usize) -> Result<Vec<f32>> {
     let size = element.dtype.size();
-    let chunk_elements = (chunk_bytes / size).max(1);
+    let chunk_elements = chunk_elements.max(1);
     // Not zeroed first: the decode writes every value, and memory touched only once costs less
     // (zeroing fresh browser memory took up to 0.4 s for a 4096 × 14336 layer).
     let mut values: Vec<f32> = Vec::with_capacity(count);
@@ -437,11 +436,11 @@ mod tests {
             let size = dtype.size();
             for count in [0, 1, 7, DECODE_BLOCK_ELEMENTS + 3] {
                 let bytes: Vec<u8> = (0..count * size).map(|i| (i * 37 % 251) as u8).collect();
-                let want: Vec<f32> = bytes.chunks_exact(size).map(|raw| read_values(raw, 0, element, 1, size).unwrap()[0]).collect();
-                for chunk_bytes in [1, 3 * size, 1000 * size + 1, usize::MAX / 2] {
-                    let got = read_values(&bytes[..], 0, element, count, chunk_bytes).unwrap();
+                let want: Vec<f32> = bytes.chunks_exact(size).map(|raw| read_values(raw, 0, element, 1, 1).unwrap()[0]).collect();
+                for chunk in [0, 3, 1001, usize::MAX / 16] {
+                    let got = read_values(&bytes[..], 0, element, count, chunk).unwrap();
                     let same = got.iter().zip(&want).all(|(a, b)| a.to_bits() == b.to_bits());
-                    assert!(got.len() == count && same, "{dtype}, {count} elements, ranges of {chunk_bytes} bytes");
+                    assert!(got.len() == count && same, "{dtype}, {count} elements, ranges of {chunk} elements");
                 }
             }
         }
