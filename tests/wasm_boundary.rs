@@ -2,7 +2,7 @@
 //! Errors must arrive as JS errors with the core's message, never as panics.
 #![cfg(target_arch = "wasm32")]
 
-use bitloupe::wasm::{calibration_from_bytes, demo_weight, open_bytes, parse_text, recipe_defaults, warm_up};
+use bitloupe::wasm::{calibration_from_bytes, demo_weight, open_bytes, open_file, parse_text, recipe_defaults, warm_up};
 use bitloupe::{analyze, tensor, ReadOptions};
 use wasm_bindgen::prelude::*;
 use wasm_bindgen_test::*;
@@ -68,6 +68,49 @@ fn the_boundary_runs_a_recipe_and_hands_out_typed_arrays() {
     assert_eq!(total, 44.0, "group 4 is the short last group of row 0: 300 - 256 columns");
     let npy = analysis.dequantized_npy();
     assert_eq!(npy.len(), 128 + 37 * 300 * 4);
+}
+
+/// The page's file source (a `Blob` read with `FileReaderSync`; here the stand-ins over bytes in
+/// memory that `bench/wasm_case.mjs` uses) fetches 32 MiB ranges ahead and serves the core's
+/// reads from them: a tensor spanning more than one range reads as the same tensor as
+/// its bytes opened whole, in a few fetches rather than one per read.
+#[wasm_bindgen_test]
+fn a_file_read_through_ranges_fetched_ahead_is_the_same_tensor() {
+    let (rows, cols) = (4200usize, 4096usize); // 33 MiB of f16: one range and part of another
+    let dict = format!("{{'descr': '<f2', 'fortran_order': False, 'shape': ({rows}, {cols}), }}");
+    let header = format!("{dict}{}\n", " ".repeat(63 - (10 + dict.len()) % 64));
+    let mut bytes = b"\x93NUMPY\x01\x00".to_vec();
+    bytes.extend((header.len() as u16).to_le_bytes());
+    bytes.extend(header.as_bytes());
+    let mut s = 2024u32;
+    for _ in 0..rows * cols {
+        s = s.wrapping_mul(1103515245).wrapping_add(12345);
+        // Finite binary16 values of magnitudes 2^-10 … 2^9, both signs.
+        let bits = ((s >> 31) << 15) | ((5 + (s >> 20) % 20) << 10) | (s & 0x3ff);
+        bytes.extend((bits as u16).to_le_bytes());
+    }
+    js_sys::eval(
+        "globalThis.RangeBlob = class RangeBlob {
+           constructor(whole, start = 0, end = whole.length) { Object.assign(this, { whole, start, end }); }
+           get size() { return this.end - this.start; }
+           slice(from, to) { return new RangeBlob(this.whole, this.start + from, this.start + to); }
+         };
+         globalThis.fetches = 0;
+         globalThis.FileReaderSync = class {
+           readAsArrayBuffer(blob) { globalThis.fetches += 1; return blob.whole.slice(blob.start, blob.end).buffer; }
+         };",
+    )
+    .unwrap();
+    let make = js_sys::Function::new_with_args("bytes", "return new RangeBlob(bytes)");
+    let blob = make.call1(&JsValue::NULL, &js_sys::Uint8Array::from(&bytes[..])).unwrap();
+    let from_blob = open_file(blob.unchecked_into(), None, false).unwrap();
+    let fetches = js_sys::Reflect::get(&js_sys::global(), &JsValue::from_str("fetches")).unwrap().as_f64().unwrap();
+    assert!(fetches <= 6.0, "{fetches} fetches for 17 reads of tensor data");
+    let whole = open_bytes(&bytes, None, false).unwrap();
+    let mse = |t: &bitloupe::wasm::TensorHandle| t.analyze(recipe("{}"), None, None).unwrap().group_mse().to_vec();
+    let (a, b) = (mse(&from_blob), mse(&whole));
+    assert_eq!(a.len(), rows * cols / 128);
+    assert!(a.iter().zip(&b).all(|(x, y)| x.to_bits() == y.to_bits()), "the same figures for every group");
 }
 
 #[wasm_bindgen_test]
