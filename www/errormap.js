@@ -50,6 +50,8 @@ export class ErrorMap {
     this.floor = data.range ? data.range.floor : data.log ? Math.max(minPositive, max * 1e-6) : 0;
     this.colours = data.diverging ? DIVERGING_PIXELS : SEQUENTIAL_PIXELS;
     if (!(keepView && sameGrid)) this.reset(false);
+    // A tooltip shown for the old figures would stay until the pointer moved.
+    this.onHover(null);
     this.draw();
   }
 
