@@ -29,7 +29,7 @@ use crate::grid::{GroupParams, IntGrid};
 use crate::methods::group_width;
 use crate::recipe::{Granularity, Method, Recipe, ScaleDType};
 use crate::tensor::safetensors::{read_header, read_metadata, write, Outgoing};
-use crate::tensor::{read_range, ByteSource};
+use crate::tensor::{decode_little_endian, read_range, ByteSource, DType};
 use half::{bf16, f16};
 use ndarray::Array2;
 use std::collections::BTreeMap;
@@ -133,9 +133,9 @@ fn scale_bytes(dtype: ScaleDType, values: &[f32]) -> (&'static str, Vec<u8>) {
 
 fn scale_values(dtype: ScaleDType, bytes: &[u8]) -> Vec<f32> {
     match dtype {
-        ScaleDType::F16 => bytes.chunks_exact(2).map(|b| f16::from_le_bytes([b[0], b[1]]).to_f32()).collect(),
-        ScaleDType::BF16 => bytes.chunks_exact(2).map(|b| bf16::from_le_bytes([b[0], b[1]]).to_f32()).collect(),
-        ScaleDType::F32 => bytes.chunks_exact(4).map(|b| f32::from_le_bytes([b[0], b[1], b[2], b[3]])).collect(),
+        ScaleDType::F16 => decode_little_endian(DType::F16, bytes),
+        ScaleDType::BF16 => decode_little_endian(DType::BF16, bytes),
+        ScaleDType::F32 => decode_little_endian(DType::F32, bytes),
         ScaleDType::E8M0 => bytes.iter().map(|&e| 2f64.powi(i32::from(e) - 127) as f32).collect(),
     }
 }

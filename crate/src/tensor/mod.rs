@@ -207,6 +207,13 @@ pub fn read<S: ByteSource + ?Sized>(src: &S, entry: &TensorEntry) -> Result<Tens
     Ok(Tensor { name: entry.name.clone(), dtype: element.dtype, shape: entry.shape.clone(), values })
 }
 
+/// Little-endian `dtype` values in bytes already in memory (a trailing partial value is ignored),
+/// decoded as a file's tensor data is.
+pub fn decode_little_endian(dtype: DType, bytes: &[u8]) -> Vec<f32> {
+    let count = bytes.len() / dtype.size();
+    read_values(bytes, 0, Element::little(dtype), count, READ_CHUNK_ELEMENTS).expect("bytes in memory are always there to read")
+}
+
 /// `count` elements stored from byte `offset` of `src`, read `chunk_elements` (at least one) at a
 /// time and decoded to f32 on the pool's threads, so that the raw bytes never sit in memory
 /// beside the whole f32 copy.
