@@ -107,7 +107,7 @@ pub fn analyze_measured(
         Err(_) => true,
     };
     if non_finite {
-        tensor.non_finite().check()?;
+        tensor.scan().non_finite.check()?;
     }
     run
 }

@@ -92,7 +92,7 @@ impl Calibration {
         if tensor.values.is_empty() {
             return Err(bad(format!("it is empty (shape {:?})", tensor.shape)));
         }
-        let count = tensor.non_finite();
+        let count = tensor.scan().non_finite;
         if let Some((row, col)) = count.first {
             return Err(bad(format!(
                 "it holds {} NaN and {} infinite values (first at row {row}, column {col})",

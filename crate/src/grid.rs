@@ -13,7 +13,7 @@
 
 use crate::error::Error;
 use crate::recipe::{Recipe, ScaleDType};
-use crate::simd::{as_places, larger, map_lanes, smaller, F32x4};
+use crate::simd::{as_places, extremes, larger, map_lanes, smaller, F32x4};
 use std::mem::MaybeUninit;
 
 /// The fitted parameters of one group.
@@ -100,24 +100,10 @@ impl IntGrid {
     }
 }
 
-/// Smallest and largest value of a slice ((0, 0) for an empty one, which then gets scale 1).
+/// Smallest and largest value of a slice and 0 ((0, 0) for an empty one, which then gets scale 1).
+#[inline(always)]
 pub fn min_max(x: &[f32]) -> (f32, f32) {
-    // Two vectors of lanes keep two independent chains in flight. Every comparison here skips a
-    // NaN (as `f32::min`/`max` would); the tensor's finiteness is checked elsewhere.
-    let zero = F32x4::splat(0.0);
-    let (mut lo, mut hi) = ([zero; 2], [zero; 2]);
-    let (octets, rest) = x.as_chunks::<8>();
-    for octet in octets {
-        let halves = [octet.first_chunk::<4>().expect("8 values"), octet.last_chunk::<4>().expect("8 values")];
-        for (half, values) in halves.into_iter().enumerate() {
-            let v = F32x4::load(values);
-            lo[half] = lo[half].min(v);
-            hi[half] = hi[half].max(v);
-        }
-    }
-    let lo = rest.iter().copied().fold(lo[0].min(lo[1]).min_lane(), smaller);
-    let hi = rest.iter().copied().fold(hi[0].max(hi[1]).max_lane(), larger);
-    (lo, hi)
+    extremes(x, 0.0)
 }
 
 /// 1.5 · 2^23: adding and subtracting it rounds an f32 below 2^22 in magnitude to an integer.

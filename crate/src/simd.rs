@@ -65,6 +65,46 @@ pub(crate) fn map_lanes(x: &[f32], out: &mut [MaybeUninit<f32>], f: impl Fn(F32x
     }
 }
 
+/// Smallest and largest of `seed` and the values of `x`. Every comparison skips a NaN (as
+/// `f32::min`/`max` would); callers check finiteness where it matters.
+#[inline(always)]
+pub fn extremes(x: &[f32], seed: f32) -> (f32, f32) {
+    extremes_checked::<false>(x, seed).0
+}
+
+/// [`extremes`], or `None` when a value of `x` is NaN or infinite.
+#[inline(always)]
+pub fn finite_extremes(x: &[f32], seed: f32) -> Option<(f32, f32)> {
+    let (range, finite) = extremes_checked::<true>(x, seed);
+    finite.then_some(range)
+}
+
+/// The one kernel of [`extremes`] and [`finite_extremes`]. With `CHECK`, every value times 0 is
+/// also added up, which is 0 for finite values and NaN as soon as one is NaN or infinite (IEEE 754:
+/// ∞ · 0 and NaN · 0 are NaN): finiteness in the same pass, with no comparison per value.
+#[inline(always)]
+fn extremes_checked<const CHECK: bool>(x: &[f32], seed: f32) -> ((f32, f32), bool) {
+    // Two vectors of lanes keep two independent chains in flight.
+    let (zero, seed) = (F32x4::splat(0.0), F32x4::splat(seed));
+    let (mut lo, mut hi, mut poison) = ([seed; 2], [seed; 2], [zero; 2]);
+    let (octets, rest) = x.as_chunks::<8>();
+    for octet in octets {
+        let halves = [octet.first_chunk::<4>().expect("8 values"), octet.last_chunk::<4>().expect("8 values")];
+        for (half, values) in halves.into_iter().enumerate() {
+            let v = F32x4::load(values);
+            lo[half] = lo[half].min(v);
+            hi[half] = hi[half].max(v);
+            if CHECK {
+                poison[half] = poison[half] + v * zero;
+            }
+        }
+    }
+    let lo = rest.iter().copied().fold(lo[0].min(lo[1]).min_lane(), smaller);
+    let hi = rest.iter().copied().fold(hi[0].max(hi[1]).max_lane(), larger);
+    let finite = !CHECK || ((poison[0] + poison[1]).to_array().iter().sum::<f32>() + rest.iter().map(|v| v * 0.0).sum::<f32>()) == 0.0;
+    ((lo, hi), finite)
+}
+
 /// Initialised values seen as places to write: for kernels that write into fresh output
 /// (never read before written) and into reused buffers alike.
 #[inline(always)]

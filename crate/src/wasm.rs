@@ -12,7 +12,7 @@ use crate::metrics::Histogram;
 use crate::error::Error;
 use crate::recipe::Recipe;
 use crate::report::Report;
-use crate::tensor::{self, ByteSource, ReadOptions, Tensor};
+use crate::tensor::{self, ByteSource, ReadOptions, Tensor, ValueScan};
 use serde::Serialize;
 use wasm_bindgen::prelude::*;
 
@@ -257,7 +257,7 @@ pub fn list_file(file: web_sys::Blob, raw16_as_bf16: bool) -> Result<JsValue, Js
 #[wasm_bindgen(js_name = openFile)]
 pub fn open_file(file: web_sys::Blob, name: Option<String>, raw16_as_bf16: bool) -> Result<TensorHandle, JsError> {
     let src = BlobSource::new(file)?;
-    open_source(&src, name, raw16_as_bf16)
+    open_source(&src, name, raw16_as_bf16).map(TensorHandle::new)
 }
 
 /// Bytes of WebAssembly memory this instance holds. Its memory only grows, so this is also the
@@ -270,13 +270,13 @@ pub fn memory_bytes() -> f64 {
 /// Read one tensor from bytes already in memory.
 #[wasm_bindgen(js_name = openBytes)]
 pub fn open_bytes(bytes: &[u8], name: Option<String>, raw16_as_bf16: bool) -> Result<TensorHandle, JsError> {
-    open_source(bytes, name, raw16_as_bf16)
+    open_source(bytes, name, raw16_as_bf16).map(TensorHandle::new)
 }
 
-fn open_source<S: ByteSource + ?Sized>(src: &S, name: Option<String>, raw16_as_bf16: bool) -> Result<TensorHandle, JsError> {
+fn open_source<S: ByteSource + ?Sized>(src: &S, name: Option<String>, raw16_as_bf16: bool) -> Result<Tensor, JsError> {
     let listing = tensor::list(src, options(raw16_as_bf16)).map_err(js_error)?;
     let entry = listing.choose(name.as_deref()).map_err(js_error)?;
-    Ok(TensorHandle { tensor: tensor::read(src, entry).map_err(js_error)? })
+    tensor::read(src, entry).map_err(js_error)
 }
 
 /// Calibration data checked against a weight's input width.
@@ -298,13 +298,13 @@ fn calibration(tensor: Tensor, kind: &str, cols: usize) -> Result<CalibrationHan
 #[wasm_bindgen(js_name = calibrationFromFile)]
 pub fn calibration_from_file(file: web_sys::Blob, name: Option<String>, kind: &str, cols: usize, raw16_as_bf16: bool) -> Result<CalibrationHandle, JsError> {
     let src = BlobSource::new(file)?;
-    calibration(open_source(&src, name, raw16_as_bf16)?.tensor, kind, cols)
+    calibration(open_source(&src, name, raw16_as_bf16)?, kind, cols)
 }
 
 /// Calibration from bytes already in memory.
 #[wasm_bindgen(js_name = calibrationFromBytes)]
 pub fn calibration_from_bytes(bytes: &[u8], name: Option<String>, kind: &str, cols: usize) -> Result<CalibrationHandle, JsError> {
-    calibration(open_source(bytes, name, false)?.tensor, kind, cols)
+    calibration(open_source(bytes, name, false)?, kind, cols)
 }
 
 /// The demo activation sample (matched to the demo weight).
@@ -339,7 +339,7 @@ impl CalibrationHandle {
 /// Parse a pasted matrix.
 #[wasm_bindgen(js_name = parseText)]
 pub fn parse_text(text: &str) -> Result<TensorHandle, JsError> {
-    Ok(TensorHandle { tensor: tensor::text::parse(text).map_err(js_error)? })
+    Ok(TensorHandle::new(tensor::text::parse(text).map_err(js_error)?))
 }
 
 /// Rows and columns of the weight [`warm_up`] analyses: a few hundred thousand values.
@@ -365,13 +365,22 @@ pub fn warm_up() -> Result<(), JsError> {
 /// The built-in demo weight.
 #[wasm_bindgen(js_name = demoWeight)]
 pub fn demo_weight() -> TensorHandle {
-    TensorHandle { tensor: crate::demo::weight() }
+    TensorHandle::new(crate::demo::weight())
 }
 
 /// A tensor held in wasm memory.
 #[wasm_bindgen]
 pub struct TensorHandle {
     tensor: Tensor,
+    /// Its range and non-finite values, found once: the tensor never changes.
+    scan: ValueScan,
+}
+
+impl TensorHandle {
+    fn new(tensor: Tensor) -> Self {
+        let scan = tensor.scan();
+        TensorHandle { tensor, scan }
+    }
 }
 
 #[wasm_bindgen]
@@ -393,8 +402,7 @@ impl TensorHandle {
             first_non_finite: Option<(usize, usize)>,
         }
         let t = &self.tensor;
-        let range = t.finite_range();
-        let nf = t.non_finite();
+        let (range, nf) = (self.scan.range, self.scan.non_finite);
         to_js(&Info {
             name: &t.name,
             dtype: t.dtype.name(),
@@ -414,7 +422,7 @@ impl TensorHandle {
     /// there is any (no analysis can be made of such a tensor).
     #[wasm_bindgen(js_name = checkFinite)]
     pub fn check_finite(&self) -> Result<(), JsError> {
-        self.tensor.non_finite().check().map_err(js_error)
+        self.scan.non_finite.check().map_err(js_error)
     }
 
     /// Run a recipe (a plain object with any of the recipe's fields; the rest take defaults),

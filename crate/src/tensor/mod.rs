@@ -14,6 +14,8 @@ pub mod safetensors;
 pub mod text;
 
 use crate::error::{Error, Result};
+use crate::rows;
+use crate::simd::finite_extremes;
 use ndarray::Array2;
 use serde::Serialize;
 
@@ -359,37 +361,61 @@ impl Tensor {
         self.values.ncols()
     }
 
-    /// Count NaN and infinite values.
-    pub fn non_finite(&self) -> NonFiniteCount {
-        let mut count = NonFiniteCount::default();
-        // A branch-free scan first, which vectorises: nearly every tensor is finite.
-        let finite = match self.values.as_slice() {
-            Some(all) => all.chunks(4096).all(|c| c.iter().fold(true, |ok, v| ok & v.is_finite())),
-            None => self.values.iter().all(|v| v.is_finite()),
-        };
-        if finite {
-            return count;
+    /// The finite range and the NaN and infinite values, in one pass over the row blocks (on the
+    /// pool where there is one). A pass of `f32` comparisons per value, as this used to be,
+    /// took 225 ms for a 4096 × 14336 layer in the page's core.
+    pub fn scan(&self) -> ValueScan {
+        let cols = self.cols();
+        let values = self.values.as_standard_layout();
+        let all = values.as_slice().expect("standard layout");
+        let blocks = rows::map_blocks(self.rows(), |r| ValueScan::of(&all[r.start * cols..r.end * cols], r.start, cols));
+        blocks.into_iter().fold(ValueScan::default(), ValueScan::then)
+    }
+}
+
+/// What one pass over a tensor's values finds.
+#[derive(Debug, Clone, Copy, Default, PartialEq)]
+pub struct ValueScan {
+    /// Smallest and largest finite value, or `None` when there is none.
+    pub range: Option<(f32, f32)>,
+    /// The NaN and infinite values.
+    pub non_finite: NonFiniteCount,
+}
+
+impl ValueScan {
+    /// The scan of whole rows `values` of `cols` columns, the first of them row `first_row`.
+    fn of(values: &[f32], first_row: usize, cols: usize) -> Self {
+        // Nearly every tensor is finite: one vector pass then gives the range, and a value at a
+        // time is walked only where that pass finds a NaN or an infinity.
+        let Some(&seed) = values.first() else { return ValueScan::default() };
+        if let Some(range) = finite_extremes(values, seed) {
+            return ValueScan { range: Some(range), non_finite: NonFiniteCount::default() };
         }
-        let cols = self.cols().max(1);
-        for (i, v) in self.values.iter().enumerate() {
-            if !v.is_finite() {
+        let mut scan = ValueScan::default();
+        for (i, &v) in values.iter().enumerate() {
+            if v.is_finite() {
+                scan.range = Some(scan.range.map_or((v, v), |(lo, hi)| (lo.min(v), hi.max(v))));
+            } else {
+                let count = &mut scan.non_finite;
                 if v.is_nan() {
                     count.nan += 1;
                 } else {
                     count.inf += 1;
                 }
-                count.first.get_or_insert((i / cols, i % cols));
+                count.first.get_or_insert((first_row + i / cols, i % cols));
             }
         }
-        count
+        scan
     }
 
-    /// Smallest and largest finite value, or `None` when there is none.
-    pub fn finite_range(&self) -> Option<(f32, f32)> {
-        self.values.iter().filter(|v| v.is_finite()).fold(None, |acc, &v| match acc {
-            None => Some((v, v)),
-            Some((lo, hi)) => Some((lo.min(v), hi.max(v))),
-        })
+    /// This scan followed by the scan of the rows after it.
+    fn then(self, next: ValueScan) -> ValueScan {
+        let range = match (self.range, next.range) {
+            (Some((lo, hi)), Some((l, h))) => Some((lo.min(l), hi.max(h))),
+            (a, b) => a.or(b),
+        };
+        let (a, b) = (self.non_finite, next.non_finite);
+        ValueScan { range, non_finite: NonFiniteCount { nan: a.nan + b.nan, inf: a.inf + b.inf, first: a.first.or(b.first) } }
     }
 }
 
@@ -527,9 +553,30 @@ mod tests {
     fn non_finite_values_are_counted_and_located() {
         let values = Array2::from_shape_vec((2, 3), vec![1.0, 2.0, 3.0, f32::NAN, f32::INFINITY, f32::NAN]).unwrap();
         let t = Tensor::from_values("t", DType::F32, values);
-        let count = t.non_finite();
+        let scan = t.scan();
+        let count = scan.non_finite;
         assert_eq!((count.nan, count.inf, count.first), (2, 1, Some((1, 0))));
-        assert_eq!(t.finite_range(), Some((1.0, 3.0)));
+        assert_eq!(scan.range, Some((1.0, 3.0)));
+    }
+
+    /// The block-wise scan against a plain pass over every value, over shapes with 0 rows, one
+    /// row, rows that are not a multiple of the block, and non-finite values in a late block.
+    #[test]
+    fn the_scan_matches_a_plain_pass() {
+        let mut rng = crate::demo::Rng::new(7);
+        for (rows, cols, bad) in [(0, 5, vec![]), (1, 1, vec![]), (1, 9, vec![]), (65, 3, vec![]), (130, 7, vec![(129, 6, f32::NAN)]), (200, 5, vec![(70, 1, f32::NEG_INFINITY), (3, 4, f32::INFINITY), (199, 0, f32::NAN)]), (64, 1, vec![(0, 0, f32::NAN)])] {
+            let mut values = Array2::from_shape_fn((rows, cols), |_| rng.normal() as f32 * 3.0 - 0.5);
+            for &(r, c, v) in &bad {
+                values[[r, c]] = v;
+            }
+            let scan = Tensor::from_values("t", DType::F32, values.clone()).scan();
+            let finite: Vec<f32> = values.iter().copied().filter(|v| v.is_finite()).collect();
+            let range = (!finite.is_empty()).then(|| finite.iter().fold((f32::INFINITY, f32::NEG_INFINITY), |(lo, hi), &v| (lo.min(v), hi.max(v))));
+            let first = values.indexed_iter().find(|(_, v)| !v.is_finite()).map(|(at, _)| at);
+            let nan = values.iter().filter(|v| v.is_nan()).count();
+            let inf = values.iter().filter(|v| v.is_infinite()).count();
+            assert_eq!(scan, ValueScan { range, non_finite: NonFiniteCount { nan, inf, first } }, "{rows} × {cols}");
+        }
     }
 
     #[test]

@@ -218,7 +218,7 @@ mod tests {
     #[test]
     fn keeps_non_finite_values_for_later_counting() {
         let t = parse("nan 1\ninf -inf").unwrap();
-        assert_eq!(t.non_finite().nan, 1);
-        assert_eq!(t.non_finite().inf, 2);
+        assert_eq!(t.scan().non_finite.nan, 1);
+        assert_eq!(t.scan().non_finite.inf, 2);
     }
 }
