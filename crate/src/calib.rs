@@ -92,12 +92,18 @@ impl Calibration {
         if tensor.values.is_empty() {
             return Err(bad(format!("it is empty (shape {:?})", tensor.shape)));
         }
-        let count = tensor.scan().non_finite;
+        let scan = tensor.scan();
+        let count = scan.non_finite;
         if let Some((row, col)) = count.first {
             return Err(bad(format!(
                 "it holds {} NaN and {} infinite values (first at row {row}, column {col})",
                 count.nan, count.inf
             )));
+        }
+        // All zeros would measure every output error as 0 and leave GPTQ's Hessian without a
+        // column to trust: nothing can be learnt from such inputs.
+        if scan.range == Some((0.0, 0.0)) {
+            return Err(bad("every value is 0, so it says nothing of the layer's inputs".into()));
         }
         let width = tensor.cols();
         if width != cols {
@@ -112,7 +118,10 @@ impl Calibration {
                         tensor.shape
                     )));
                 }
-                let stat: Vec<f32> = tensor.values.iter().map(|v| v.abs()).collect();
+                if let Some((lowest, _)) = scan.range.filter(|r| r.0 < 0.0) {
+                    return Err(bad(format!("statistics of |x| cannot be negative, and the smallest value is {lowest}")));
+                }
+                let stat: Vec<f32> = tensor.values.iter().copied().collect();
                 Ok(Calibration {
                     sample: None,
                     max_abs: stat.clone(),
@@ -246,6 +255,8 @@ mod tests {
         assert!(err(&tensor(vec![1.0, f32::NAN, 1.0], (1, 3)), CalibKind::Sample).contains("1 NaN"));
         assert!(err(&tensor(vec![], (0, 3)), CalibKind::Sample).contains("empty"));
         assert!(err(&tensor(vec![1.0; 6], (2, 3)), CalibKind::MaxAbs).contains("one vector"));
+        assert!(err(&tensor(vec![0.0; 6], (2, 3)), CalibKind::Sample).contains("every value is 0"));
+        assert!(err(&tensor(vec![0.5, -0.25, 1.0], (1, 3)), CalibKind::MeanAbs).contains("cannot be negative"));
         let mut cube = tensor(vec![1.0; 6], (2, 3));
         cube.shape = vec![1, 2, 3];
         assert!(err(&cube, CalibKind::Sample).contains("flatten batch and sequence"));

@@ -184,9 +184,9 @@ Per-tensor error is only a proxy: check any recipe on the model's own task befor
         include_1d: bool,
         #[command(flatten)]
         recipe: RecipeArgs,
-        /// Threads for each tensor's analysis (0: one per core).
-        #[arg(long, value_name = "N", default_value_t = 0)]
-        threads: usize,
+        /// Threads for each tensor's analysis (0: one per core; at most 256).
+        #[arg(long, value_name = "N", default_value_t = 0, value_parser = clap::value_parser!(u16).range(0..=256))]
+        threads: u16,
         /// Write the report as JSON ('-' for standard output).
         #[arg(long, value_name = "OUT.json|-")]
         json: Option<PathBuf>,
@@ -338,6 +338,7 @@ Per-tensor error is only a proxy: check any recipe on the model's own task befor
                 let w8a8 = w8a8.as_deref().map(str::parse::<ActQuant>).transpose()?;
                 let tensor = load(&file, tensor.as_deref(), read.options())?;
                 let calibration = calib.load(tensor.cols(), read.options())?;
+                check_gptq_fits(&file, &tensor, recipe.method == Method::Gptq && calibration.is_some())?;
                 let analysis = analyze_with(&tensor, &recipe, calibration.as_ref(), &mut |_, _| {}).map_err(Failure::at(&file))?;
                 let study = match (w8a8, &calibration) {
                     (Some(act), Some(c)) => {
@@ -397,12 +398,13 @@ Per-tensor error is only a proxy: check any recipe on the model's own task befor
                 };
                 let tensor = load(&file, tensor.as_deref(), read.options())?;
                 let calibration = calib.load(tensor.cols(), read.options())?;
+                check_gptq_fits(&file, &tensor, spec.methods.contains(&Method::Gptq) && calibration.is_some())?;
                 let by = match pareto_by {
                     Some(by) => by.parse::<ParetoBy>()?,
                     None if calibration.is_some() => ParetoBy::Output,
                     None => ParetoBy::Mse,
                 };
-                let (recipes, skipped) = sweep::recipes(&spec);
+                let (recipes, skipped) = sweep::recipes(&spec)?;
                 let (rows, failed) = sweep::run(&tensor, calibration.as_ref(), &recipes, by, &mut |done, total| {
                     eprint!("\rbitloupe: {done}/{total} recipes");
                 })
@@ -419,7 +421,7 @@ Per-tensor error is only a proxy: check any recipe on the model's own task befor
                 if outputs.is_empty() {
                     print!("{}", sweep::to_csv(&rows));
                 }
-                eprintln!("bitloupe: {} recipes run, {} on the Pareto front, {} combinations skipped as meaningless", rows.len(), rows.iter().filter(|r| r.pareto).count(), skipped + failed);
+                eprintln!("bitloupe: {} recipes run, {} on the Pareto front, {} combinations skipped (meaningless, or not possible on this tensor)", rows.len(), rows.iter().filter(|r| r.pareto).count(), skipped + failed);
                 write_all_or_nothing(&outputs)
             }
             Command::Demo { out, activations } => {
@@ -445,7 +447,7 @@ Per-tensor error is only a proxy: check any recipe on the model's own task befor
         }
         if args.threads > 0 {
             rayon::ThreadPoolBuilder::new()
-                .num_threads(args.threads)
+                .num_threads(usize::from(args.threads))
                 .build_global()
                 .map_err(|e| Failure(format!("--threads {}: {e}", args.threads)))?;
         }
@@ -560,6 +562,15 @@ Per-tensor error is only a proxy: check any recipe on the model's own task befor
         Ok(tensor)
     }
 
+    /// GPTQ's square matrices checked against the memory the system can still give, before the
+    /// analysis allocates them.
+    fn check_gptq_fits(path: &Path, tensor: &Tensor, uses_gptq: bool) -> Result<(), Failure> {
+        if uses_gptq {
+            bitloupe::methods::gptq::check_width(tensor.values.dim(), available_memory()).map_err(Failure::at(path))?;
+        }
+        Ok(())
+    }
+
     /// Memory the system can still give this process (Linux's MemAvailable), when it says.
     fn available_memory() -> Option<u64> {
         let info = std::fs::read_to_string("/proc/meminfo").ok()?;
@@ -594,6 +605,17 @@ Per-tensor error is only a proxy: check any recipe on the model's own task befor
     /// with a file (as root, /dev/null for the whole machine), and what went into a pipe cannot
     /// be taken back anyway.
     fn write_all_or_nothing(outputs: &[(PathBuf, Vec<u8>)]) -> Result<(), Failure> {
+        // Checked before anything is written: two outputs on one path would share a temporary
+        // file, and a directory fails only at the rename, after the outputs before it are in place.
+        for (i, (path, _)) in outputs.iter().enumerate() {
+            if std::fs::metadata(path).is_ok_and(|m| m.is_dir()) {
+                return Err(Failure(format!("{}: is a directory; give a file name", path.display())));
+            }
+            let same = |other: &PathBuf| std::path::absolute(other).ok() == std::path::absolute(path).ok();
+            if outputs[..i].iter().any(|(earlier, _)| same(earlier)) {
+                return Err(Failure(format!("{}: given for two outputs; give each its own file", path.display())));
+            }
+        }
         let temp_of = |path: &Path| {
             let mut name = path.file_name().unwrap_or_default().to_os_string();
             name.push(format!(".partial-{}", std::process::id()));

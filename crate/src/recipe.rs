@@ -277,6 +277,9 @@ impl Recipe {
 
     /// Check the recipe's ranges; every analysis calls this first.
     pub fn validate(&self) -> Result<()> {
+        if self.double_quant && (self.format != Format::Nf4 || self.method != Method::Rtn) {
+            return Err(Error::BadRecipe { detail: "double quantization applies to NF4's block scales under round to nearest".into() });
+        }
         if self.format != Format::Int {
             return self.validate_format();
         }
@@ -327,9 +330,6 @@ impl Recipe {
             if !GROUP_SIZES.contains(&g) {
                 return bad(format!("group size {g} is outside {}..={}", GROUP_SIZES.start(), GROUP_SIZES.end()));
             }
-        }
-        if self.double_quant && (self.format != Format::Nf4 || self.method != Method::Rtn) {
-            return bad("double quantization applies to NF4's block scales under round to nearest".into());
         }
         match self.method {
             Method::Hqq => return bad("HQQ fits a zero point, which only the integer grid has".into()),
@@ -393,6 +393,9 @@ mod tests {
         assert!(Recipe { smooth: Some(1.5), ..Recipe::default() }.validate().is_err());
         assert!(Recipe { method: Method::Awq, smooth: Some(0.5), ..Recipe::default() }.validate().is_err());
         assert!(Recipe { damp: -0.1, ..Recipe::default() }.validate().is_err());
+        // Double quantization is NF4's: on the integer grid it used to pass and wreck the scales.
+        assert!(Recipe { double_quant: true, ..Recipe::default() }.validate().is_err());
+        assert!(Recipe { double_quant: true, ..Recipe::for_format(Format::Nf4) }.validate().is_ok());
     }
 
     #[test]

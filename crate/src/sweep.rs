@@ -92,10 +92,12 @@ pub struct SweepRow {
     pub pareto: bool,
 }
 
-/// The recipes of a spec, and how many combinations were skipped as meaningless.
-pub fn recipes(spec: &SweepSpec) -> (Vec<Recipe>, usize) {
+/// The recipes of a spec, and how many combinations were skipped as meaningless; an error naming
+/// the first combination's fault when none makes sense.
+pub fn recipes(spec: &SweepSpec) -> Result<(Vec<Recipe>, usize)> {
     let mut out: Vec<Recipe> = Vec::new();
     let mut skipped = 0;
+    let mut first_fault = None;
     for &format in &spec.formats {
         let base = Recipe::for_format(format);
         let bits: Vec<u8> = if matches!(format, Format::Int | Format::Codebook) { spec.bits.clone() } else { vec![base.bits] };
@@ -107,8 +109,9 @@ pub fn recipes(spec: &SweepSpec) -> (Vec<Recipe>, usize) {
                         for &smooth in &spec.smooth {
                             for &keep_frac in &spec.keep_fracs {
                                 let recipe = Recipe { bits: b, granularity, method, scale_dtype, smooth, keep_frac, ..base };
-                                if recipe.validate().is_err() {
+                                if let Err(e) = recipe.validate() {
                                     skipped += 1;
+                                    first_fault.get_or_insert(e);
                                 } else if !out.contains(&recipe) {
                                     out.push(recipe);
                                 }
@@ -119,7 +122,19 @@ pub fn recipes(spec: &SweepSpec) -> (Vec<Recipe>, usize) {
             }
         }
     }
-    (out, skipped)
+    match first_fault {
+        _ if !out.is_empty() => Ok((out, skipped)),
+        Some(e) => Err(Error::BadRecipe { detail: format!("no combination of the sweep makes a recipe; the first: {}", fault(&e)) }),
+        None => Err(Error::BadRecipe { detail: "the sweep has nothing to combine: choose at least one format, width, group, method and scale type".into() }),
+    }
+}
+
+/// What was wrong with a recipe, without the error's own "bad recipe" heading.
+fn fault(e: &Error) -> String {
+    match e {
+        Error::BadRecipe { detail } => detail.clone(),
+        other => other.to_string(),
+    }
 }
 
 /// Run every recipe; `progress(done, total)` after each. Recipes that fail on this tensor (a
@@ -136,6 +151,7 @@ pub fn run(
     }
     let mut rows = Vec::with_capacity(recipes.len());
     let mut failed = 0;
+    let mut first_failure = None;
     for (i, recipe) in recipes.iter().enumerate() {
         match analyze_measured(tensor, recipe, calib, Detail::NoColumns, &mut |_, _| {}) {
             Ok(a) => rows.push(SweepRow {
@@ -149,9 +165,15 @@ pub fn run(
             }),
             // A non-finite tensor fails every recipe: that is the user's error, not a skip.
             Err(e @ Error::NonFinite { .. }) => return Err(e),
-            Err(_) => failed += 1,
+            Err(e) => {
+                failed += 1;
+                first_failure.get_or_insert(e);
+            }
         }
         progress(i + 1, recipes.len());
+    }
+    if let (true, Some(e)) = (rows.is_empty(), first_failure) {
+        return Err(Error::BadRecipe { detail: format!("no recipe of the sweep could run on this tensor; the first: {}", fault(&e)) });
     }
     mark_front(&mut rows, by);
     Ok((rows, failed))
@@ -258,10 +280,33 @@ mod tests {
             smooth: vec![None],
             keep_fracs: vec![0.0],
         };
-        let (recipes, skipped) = recipes(&spec);
+        let (recipes, skipped) = recipes(&spec).unwrap();
         // int: 2 bits × 2 groups × 2 methods = 8; mxfp4: group 32 only, rtn only = 1;
         // nf4: 2 groups, rtn only = 2. Skipped: mxfp4 row (2) + mxfp4 hqq (1) + nf4 hqq (2).
         assert_eq!(recipes.len(), 11);
         assert_eq!(skipped, 5);
+    }
+
+    /// A sweep with nothing to run is an error naming why, not an empty result.
+    #[test]
+    fn a_sweep_with_no_recipe_to_run_says_why() {
+        let spec = SweepSpec {
+            formats: vec![Format::Int],
+            bits: vec![99],
+            groups: vec![Granularity::Group(128)],
+            methods: vec![Method::Rtn],
+            scale_dtypes: vec![ScaleDType::F16],
+            smooth: vec![None],
+            keep_fracs: vec![0.0],
+        };
+        let message = recipes(&spec).unwrap_err().to_string();
+        assert!(message.contains("no combination") && message.contains("99 bits"), "{message}");
+        let nothing = SweepSpec { methods: vec![], ..spec.clone() };
+        assert!(recipes(&nothing).unwrap_err().to_string().contains("nothing to combine"));
+        let gptq = SweepSpec { bits: vec![4], methods: vec![Method::Gptq], ..spec };
+        let (plan, _) = recipes(&gptq).unwrap();
+        let weight = crate::demo::weight();
+        let message = run(&weight, None, &plan, ParetoBy::Mse, &mut |_, _| {}).unwrap_err().to_string();
+        assert!(message.contains("could run") && message.contains("calibration"), "{message}");
     }
 }

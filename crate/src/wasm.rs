@@ -108,7 +108,7 @@ pub fn recipe_defaults() -> Result<JsValue, JsError> {
 pub fn sweep_recipes(spec: JsValue) -> Result<JsValue, JsError> {
     let text = js_sys::JSON::stringify(&spec).ok().and_then(|s| s.as_string()).unwrap_or_default();
     let spec: crate::sweep::SweepSpec = serde_json::from_str(&text).map_err(|e| JsError::new(&format!("invalid sweep: {e}")))?;
-    let (recipes, skipped) = crate::sweep::recipes(&spec);
+    let (recipes, skipped) = crate::sweep::recipes(&spec).map_err(js_error)?;
     #[derive(Serialize)]
     struct Plan {
         recipes: Vec<Recipe>,

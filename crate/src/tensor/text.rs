@@ -54,7 +54,12 @@ pub fn parse(text: &str) -> Result<Tensor> {
 }
 
 fn number(token: &str, line: usize, column: usize) -> Result<f32> {
-    token.parse::<f32>().map_err(|_| error(line, column, format!("'{token}' is not a number")))
+    let value = token.parse::<f32>().map_err(|_| error(line, column, format!("'{token}' is not a number")))?;
+    // A written number too large for f32 parses as infinity, which the user never typed.
+    if value.is_infinite() && !token.to_ascii_lowercase().contains("inf") {
+        return Err(error(line, column, format!("'{token}' is beyond the f32 range (largest magnitude about 3.4e38)")));
+    }
+    Ok(value)
 }
 
 fn plain_rows(text: &str) -> Result<Vec<Row>> {
@@ -213,6 +218,10 @@ mod tests {
         assert_eq!(at("[[1, 2], [3, 4]"), (1, 16));
         assert_eq!(at("[[[1]]]"), (1, 3));
         assert_eq!(at("[1, [2]]"), (1, 5));
+        // Beyond f32's largest finite value, about 3.4028e38 (IEEE 754 binary32): not infinity.
+        assert_eq!(at("1 2\n3 1e39\n"), (2, 3));
+        assert!(parse("-4e38").unwrap_err().to_string().contains("beyond the f32 range"));
+        assert!(parse("3.4e38").is_ok());
     }
 
     #[test]
