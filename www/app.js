@@ -255,7 +255,13 @@ async function open(label, type, payload) {
       showMessage('calib-message', 'The calibration was removed: it does not match the new tensor\'s input width.');
     }
     if (result.recipeError) {
+      // The new tensor has replaced the old one and its results in the worker: none stand now.
+      state.result = null;
+      $('report').hidden = true;
+      $('empty').hidden = false;
+      $('empty-text').textContent = 'No results for this tensor yet: the recipe could not be applied to it. Change the recipe on the left.';
       showRecipeError(result.recipeError);
+      state.statusText = $('status').textContent;
     } else {
       showResults(result, { fresh: true });
       recordTiming('open-to-drawn', started);
@@ -489,7 +495,8 @@ async function analyze() {
   try {
     const result = await task('Quantizing', 'analyze', { recipe: readRecipe() }, 'analyze');
     if (result) {
-      showResults(result, { fresh: false });
+      // Fresh when no results stand (a new tensor whose first recipe failed): nothing to keep.
+      showResults(result, { fresh: !state.result });
       recordTiming('recipe-to-drawn', started);
       timings.push({ what: 'recipe-compute', ms: bridge.lastComputeMs });
     } else {
@@ -516,7 +523,7 @@ function restoreShownRecipe() {
 }
 
 function showRecipeError(message) {
-  showMessage('recipe-message', `${message}. The results below are from the last recipe that worked.`);
+  showMessage('recipe-message', state.result ? `${message}. The results below are from the last recipe that worked.` : `${message}.`);
   $('status').textContent = 'This recipe cannot be applied to this tensor.';
 }
 
@@ -939,7 +946,7 @@ $('sweep-run').addEventListener('click', async () => {
     timings.push({ what: 'sweep-compute', ms: bridge.lastComputeMs });
     sweep.rows = result.rows;
     drawSweep();
-    $('sweep-status').textContent = `${fmt.plural(result.rows.length, 'recipe')} run, ${result.rows.filter((r) => r.pareto).length} on the front, ${result.skipped} combinations skipped as meaningless.`;
+    $('sweep-status').textContent = `${fmt.plural(result.rows.length, 'recipe')} run, ${result.rows.filter((r) => r.pareto).length} on the front, ${result.skipped} combinations skipped (meaningless, or not possible on this tensor).`;
     restoreStatus();
   } catch (err) {
     $('sweep-status').textContent = `The sweep could not run: ${err.message}`;
@@ -1075,11 +1082,8 @@ function baseName() {
   return name.replace(/[^\w.-]+/g, '_');
 }
 
-$('download-report').addEventListener('click', async () => {
-  const json = await bridge.request('reportJson');
-  download(`${baseName()}.report.json`, json, 'application/json');
-});
 const EXPORTS = {
+  'download-report': ['reportJson', '.report.json', 'application/json'],
   'download-npy': ['dequantizedNpy', '.dequantized.npy', 'application/octet-stream'],
   'download-markdown': ['markdown', '.summary.md', 'text/markdown'],
   'download-groups': ['groupsCsv', '.groups.csv', 'text/csv'],
@@ -1133,6 +1137,7 @@ function chartExports() {
           $('export-message').textContent = `Nothing to save yet: the ${name} has not been drawn.`;
           return;
         }
+        $('export-message').textContent = '';
         if (kind === 'SVG') download(file, svg(), 'image/svg+xml');
         else source.toBlob((blob) => blob && download(file, blob, 'image/png'));
       });

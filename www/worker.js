@@ -177,6 +177,7 @@ const handlers = {
     const plan = core.sweepRecipes(spec);
     const rows = [];
     let failed = 0;
+    let firstFailure = null;
     plan.recipes.forEach((recipe, i) => {
       let row = null;
       try {
@@ -184,9 +185,12 @@ const handlers = {
         rows.push(row);
       } catch (err) {
         failed += 1;
+        firstFailure ??= message(err);
       }
       progress(i + 1, plan.recipes.length, row);
     });
+    // As the core's own sweep: nothing run is an error naming why, not an empty front.
+    if (rows.length === 0 && firstFailure) throw new Error(`no recipe of the sweep could run on this tensor; the first: ${firstFailure}`);
     return { value: { rows: core.markParetoFront(rows, by), skipped: plan.skipped + failed } };
   },
   histogram({ index, bins }) {

@@ -157,6 +157,29 @@ test('a NaN tensor is refused with its count and place, and the old one stays', 
   await context.close();
 });
 
+test('a new tensor whose first recipe fails shows no stale results and offers no stale export', async () => {
+  const { page, context, errors } = await withDemo();
+  await page.click('#paste-box summary');
+  // A range of 2e6 in 15 steps needs a scale of 1.3e5, beyond f16's largest finite value 65504
+  // (IEEE 754 binary16): the default recipe cannot be applied, bf16 scales can.
+  await page.fill('#paste', '1e6 -1e6\n1 2\n');
+  await page.click('#use-paste');
+  await page.waitForSelector('#recipe-message:not([hidden])');
+  assert.match(await page.textContent('#tensor-info'), /2 × 2/, 'the pasted tensor is the open one');
+  assert.equal(await page.isVisible('#report'), false, 'the demo\'s results are not shown under the new tensor');
+  assert.match(await page.textContent('#empty-text'), /No results for this tensor/);
+  assert.doesNotMatch(await page.textContent('#recipe-message'), /results below/);
+  assert.equal(await page.isVisible('#download-report'), false, 'no export of results that are gone');
+  await shot(page, '06b-first-recipe-failed');
+  const before = await page.textContent('#status');
+  await page.selectOption('#scale-dtype', 'bf16');
+  await waitForAnalysis(page, before);
+  assert.equal(await page.isVisible('#report'), true);
+  assert.match(await page.textContent('#status'), /bf16 on pasted/);
+  assert.deepEqual(errors, []);
+  await context.close();
+});
+
 test('a NaN tensor of another width leaves the calibration in place', async () => {
   const { page, context } = await withDemoCalibration();
   await page.click('#paste-box summary');
