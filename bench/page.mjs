@@ -163,7 +163,7 @@ f16Safetensors(wideFile, 'model.block.0.mlp.down.weight', 4096, 14336);
 // page as a user works it. Per change: the compute time of a recipe change (a pause, the change,
 // the frame answering it, the run). In a sweep: the compute time of each of three runs of the
 // 48-recipe sweep of case 1, whose recipes run one after another inside one request: the pool's
-// throughput on round to nearest, the figure its speed-up is judged by. A single change is a run
+// throughput on round to nearest. A single change is a run
 // of 20–30 ms that starts while the browser's other threads draw the frame answering the control
 // and after the pool has slept; on a two-core machine it gains less from a second worker, which
 // the table shows beside the throughput, and case 6 measures the same core natively with and
