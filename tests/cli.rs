@@ -157,6 +157,9 @@ fn bad_inputs_fail_with_one_clear_line_and_write_nothing() {
     let structured = fixture("npy_structured.npy");
     let acts = fixture("method_acts.npy");
     let cube = fixture("npy_3d_fortran.npy");
+    let same = dir.path().join("both.npy");
+    let a_directory = dir.path().join("a-directory");
+    std::fs::create_dir(&a_directory).unwrap();
     let p = path_str;
     let cases: Vec<(Vec<&str>, &str)> = vec![
         (vec!["quantize", "/no/such/file.npy"], "cannot open"),
@@ -195,8 +198,12 @@ fn bad_inputs_fail_with_one_clear_line_and_write_nothing() {
         (vec!["unpack", p(&multi)], "no bitloupe.packed/1 metadata"),
         (vec!["unpack", p(&weight)], "not a valid safetensors file"),
         (vec!["quantize", p(&multi), "--tensor", "block.0.mlp.up.weight", "--out", "/no/such/dir/x.npy"], "cannot write"),
+        (vec!["quantize", p(&weight), "--double-quant"], "double quantization applies to NF4"),
+        (vec!["demo", "--out", p(&same), "--activations", p(&same)], "given for two outputs"),
+        (vec!["quantize", p(&weight), "--out", p(&a_directory)], "is a directory"),
     ];
     for (mut args, needle) in cases {
+        assert!(!same.exists(), "an earlier case left {same:?}");
         let deq = dir.path().join("never.npy");
         let report = dir.path().join("never.json");
         if !args.contains(&"--out") {
