@@ -249,6 +249,10 @@ async function open(label, type, payload) {
     if (!result) return;
     state.info = result.info;
     showInfo(result.info);
+    // A sweep belongs to the tensor it ran on.
+    sweep.rows = [];
+    drawSweep();
+    $('sweep-status').textContent = '';
     if (result.calibDropped) {
       setCalibration(null);
       bridge.forget('calib');
@@ -267,7 +271,7 @@ async function open(label, type, payload) {
       recordTiming('open-to-drawn', started);
     }
   } catch (err) {
-    showMessage('input-message', `Could not open it: ${err.message}. The tensor you had stays open.`);
+    showMessage('input-message', `Could not open it: ${err.message}.${state.info ? ' The tensor you had stays open.' : ''}`);
     restoreStatus();
   }
 }
@@ -294,7 +298,7 @@ async function openFile(file) {
     $('status').textContent = `${listing.entries.length} tensors in ${file.name}: choose one.`;
     recordTiming('list', started);
   } catch (err) {
-    showMessage('input-message', `Could not open ${file.name}: ${err.message}. The tensor you had stays open.`);
+    showMessage('input-message', `Could not open ${file.name}: ${err.message}.${state.info ? ' The tensor you had stays open.' : ''}`);
     restoreStatus();
   }
 }

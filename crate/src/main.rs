@@ -405,11 +405,17 @@ Per-tensor error is only a proxy: check any recipe on the model's own task befor
                     None => ParetoBy::Mse,
                 };
                 let (recipes, skipped) = sweep::recipes(&spec)?;
+                // A counter redrawn in place is for a terminal; a log would collect every step.
+                let on_terminal = std::io::IsTerminal::is_terminal(&std::io::stderr());
                 let (rows, failed) = sweep::run(&tensor, calibration.as_ref(), &recipes, by, &mut |done, total| {
-                    eprint!("\rbitloupe: {done}/{total} recipes");
+                    if on_terminal {
+                        eprint!("\rbitloupe: {done}/{total} recipes");
+                    }
                 })
                 .map_err(Failure::at(&file))?;
-                eprintln!();
+                if on_terminal {
+                    eprintln!();
+                }
                 let mut outputs = Vec::new();
                 if let Some(path) = csv {
                     outputs.push((path, sweep::to_csv(&rows).into_bytes()));

@@ -395,6 +395,11 @@ pub fn unpack<S: ByteSource + ?Sized>(src: &S) -> Result<(Vec<usize>, Array2<f32
     for (&(r, c), &v) in kept_positions.iter().zip(&kept_values) {
         out[[r, c]] = v;
     }
+    // Our writer stores finite scales, zero points and non-zero factors only, so anything else
+    // (an infinite scale, a factor of 0) is damage, not a tensor to hand on.
+    if let Some(((r, c), _)) = out.indexed_iter().find(|(_, v)| !v.is_finite()) {
+        return Err(bad(format!("the stored scales, zero points or factors give a value that is not finite at row {r}, column {c}")));
+    }
     Ok((shape, out))
 }
 
@@ -500,5 +505,14 @@ mod tests {
             ],
         );
         assert!(unpack(&tall[..]).unwrap_err().to_string().contains("differ in number"));
+        // An infinite scale (f16 0x7c00) in the second row, and a column factor of 0.
+        let codes = || Outgoing { name: "codes", dtype: "U8", shape: vec![2], data: vec![0x11, 0x11] };
+        let scales = |second: u16| Outgoing { name: "scales", dtype: "F16", shape: vec![2], data: [0x3c00u16, second].iter().flat_map(|h| h.to_le_bytes()).collect() };
+        let infinite = forged(&row, "[2, 2]", &[codes(), scales(0x7c00)]);
+        assert!(unpack(&infinite[..]).unwrap_err().to_string().contains("not finite at row 1, column 0"));
+        let factors = Outgoing { name: "column_factors", dtype: "F32", shape: vec![2], data: [1f32, 0.0].iter().flat_map(|f| f.to_le_bytes()).collect() };
+        let zero_factor = forged(&Recipe { smooth: Some(0.5), ..row }, "[2, 2]", &[codes(), scales(0x3c00), factors]);
+        assert!(unpack(&zero_factor[..]).unwrap_err().to_string().contains("not finite at row 0, column 1"));
+        assert!(unpack(&forged(&row, "[2, 2]", &[codes(), scales(0x3c00)])[..]).is_ok());
     }
 }

@@ -404,6 +404,14 @@ test('a sweep fills the chart, marks the front, and a row loads its recipe', asy
   await page.click('#sweep-rows tr:first-child');
   await waitForAnalysis(page, before);
   assert.match(await page.textContent('#status'), new RegExp(`^${label.replace(/[.*+?^${}()|[\]\\]/g, '\\$&')} on demo`));
+  // A sweep belongs to its tensor: another tensor clears it.
+  const shown = await page.textContent('#status');
+  await page.click('#paste-box summary');
+  await page.fill('#paste', '0.5 -1 2\n0.25 3 -0.5\n');
+  await page.click('#use-paste');
+  await waitForAnalysis(page, shown);
+  assert.equal(await page.isVisible('#sweep-chart'), false);
+  assert.equal(await page.textContent('#sweep-status'), '');
   await context.close();
 });
 
