@@ -189,8 +189,8 @@ const handlers = {
       }
       progress(i + 1, plan.recipes.length, row);
     });
-    // As the core's own sweep: nothing run is an error naming why, not an empty front.
-    if (rows.length === 0 && firstFailure) throw new Error(`no recipe of the sweep could run on this tensor; the first: ${firstFailure}`);
+    // Nothing run is an error naming why (the first failure), not an empty front.
+    if (rows.length === 0 && firstFailure) throw new Error(firstFailure);
     return { value: { rows: core.markParetoFront(rows, by), skipped: plan.skipped + failed } };
   },
   histogram({ index, bins }) {

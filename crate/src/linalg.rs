@@ -1,6 +1,7 @@
 //! Dense linear algebra on row-major `ndarray` matrices through `faer` (matrix products,
-//! Cholesky factorisation and inversion). faer runs single-threaded here, so that results do not
-//! depend on the machine's core count; products split into fixed row blocks go to the pool.
+//! Cholesky factorisation and inversion). Each faer call runs single-threaded, so that results do
+//! not depend on the machine's core count; a large product is split into fixed blocks of its
+//! columns, which go to the pool.
 
 use crate::error::{Error, Result};
 use faer::linalg::matmul::matmul;
