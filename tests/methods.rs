@@ -2,6 +2,7 @@
 //! paper's equations (`fixtures/make_fixtures.py`, "methods" section; numpy 2.3.5), on an
 //! invented 24 × 192 layer with 256 calibration tokens and three loud activation channels.
 
+use bitloupe::analysis::headline;
 use bitloupe::calib::{CalibKind, Calibration};
 use bitloupe::methods::smooth::{self, ActQuant};
 use bitloupe::methods::MethodFigures;
@@ -233,4 +234,22 @@ fn every_method_gives_the_same_result_on_one_thread_as_on_several() {
         let (one, three) = (on(1, r), on(3, r));
         assert!(one == three, "{} differs between one and three threads", r.label());
     }
+    // The headline figures (a sweep's or a checkpoint report's row) are the full analysis's, bit
+    // for bit, on any number of threads: also where, without calibration, the plain path keeps
+    // no reconstruction, and where a method cannot run (the same message).
+    let headline_on = |threads: usize, r: &Recipe, c: Option<&Calibration>| {
+        let pool = rayon::ThreadPoolBuilder::new().num_threads(threads).build().unwrap();
+        pool.install(|| headline(&w, r, c, &mut |_, _| {}).map(|h| (h.totals, h.cost, h.output)).map_err(|e| e.to_string()))
+    };
+    for r in &recipes {
+        for c in [Some(&calib), None] {
+            let full = analyze_with(&w, r, c, &mut |_, _| {}).map(|a| (a.totals, a.cost, a.output)).map_err(|e| e.to_string());
+            for threads in [1, 3] {
+                assert!(headline_on(threads, r, c) == full, "{} (calibration: {}) on {threads} threads", r.label(), c.is_some());
+            }
+        }
+    }
+    let empty = Tensor::from_values("e", bitloupe::DType::F32, Array2::zeros((0, 200)));
+    let refused = headline(&empty, &Recipe::default(), None, &mut |_, _| {}).unwrap_err().to_string();
+    assert_eq!(refused, analyze(&empty, &Recipe::default()).unwrap_err().to_string());
 }

@@ -62,27 +62,75 @@ pub fn analyze_with(
     calib: Option<&Calibration>,
     progress: &mut dyn FnMut(usize, usize),
 ) -> Result<Analysis> {
-    analyze_measured(tensor, recipe, calib, Detail::Full, progress)
+    checked(tensor, recipe, calib, |a: &Analysis| a.totals.mse, || run(tensor, recipe, calib, Detail::Full, progress))
 }
 
-/// How much an analysis measures.
-#[derive(Debug, Clone, Copy, PartialEq, Eq)]
-pub enum Detail {
-    /// Everything, per group and per input column.
-    Full,
-    /// Whole-tensor, per-group and output figures only (the per-column figures are left empty),
-    /// for sweeps: the figures it does give are computed exactly as with `Full`.
-    NoColumns,
+/// The whole-tensor figures of one recipe on one tensor: what a sweep's row or a checkpoint
+/// report's row needs, and nothing it does not.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Headline {
+    /// The recipe that was run.
+    pub recipe: Recipe,
+    /// Whole-tensor figures, exactly as [`analyze_with`] gives them.
+    pub totals: ErrorFigures,
+    /// The bit budget.
+    pub cost: BitCost,
+    /// The output error, when calibration data was given.
+    pub output: Option<OutputError>,
 }
 
-/// [`analyze_with`] at a chosen level of detail.
-pub fn analyze_measured(
+/// [`analyze_with`]'s whole-tensor figures alone. A plain round to nearest without calibration
+/// keeps no reconstruction, no per-group and no per-column figures: it needs no memory of the
+/// tensor's size, and does not write the tensor out again.
+pub fn headline(
     tensor: &Tensor,
     recipe: &Recipe,
     calib: Option<&Calibration>,
-    detail: Detail,
     progress: &mut dyn FnMut(usize, usize),
-) -> Result<Analysis> {
+) -> Result<Headline> {
+    let measured = || {
+        let cost = BitCost::of(recipe, tensor.rows(), tensor.cols(), tensor.dtype.bits());
+        if is_plain(recipe) && calib.is_none() {
+            let measure = Measure::new(recipe, tensor.cols(), Detail::Totals);
+            let blocks = methods::rtn_observe(tensor.values.view(), recipe, &measure, progress)?;
+            return Ok(Headline { recipe: *recipe, totals: measure.finish(recipe, blocks).0, cost, output: None });
+        }
+        let a = run(tensor, recipe, calib, Detail::Totals, progress)?;
+        Ok(Headline { recipe: a.recipe, totals: a.totals, cost: a.cost, output: a.output })
+    };
+    checked(tensor, recipe, calib, |h: &Headline| h.totals.mse, measured)
+}
+
+/// How much a run measures.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+enum Detail {
+    /// Everything, per group and per input column.
+    Full,
+    /// The whole-tensor and output figures only (the per-group and per-column ones are left
+    /// empty); those it gives are computed exactly as with `Full`.
+    Totals,
+}
+
+/// Whether a recipe takes the plain path: round to nearest on a grid, with nothing before it.
+fn is_plain(recipe: &Recipe) -> bool {
+    recipe.method == Method::Rtn
+        && recipe.format != Format::Codebook
+        && recipe.smooth.is_none()
+        && recipe.keep_cols == 0
+        && recipe.keep_frac == 0.0
+}
+
+/// Check the recipe against the tensor and calibration, then `measured()`. Finiteness is checked
+/// after the run rather than by a separate pass over the tensor: a NaN makes the error sums NaN,
+/// an infinity makes its scale overflow, and either way the precise count and location are then
+/// looked up.
+fn checked<T>(
+    tensor: &Tensor,
+    recipe: &Recipe,
+    calib: Option<&Calibration>,
+    mse: impl Fn(&T) -> f64,
+    measured: impl FnOnce() -> Result<T>,
+) -> Result<T> {
     recipe.validate()?;
     let (rows, cols) = (tensor.rows(), tensor.cols());
     if rows * cols == 0 {
@@ -98,12 +146,9 @@ pub fn analyze_measured(
     if recipe.keep_cols > cols {
         return Err(Error::BadRecipe { detail: format!("cannot keep {} columns of a tensor with {cols}", recipe.keep_cols) });
     }
-    // Finiteness is checked after the run rather than by a separate pass over the tensor: a NaN
-    // makes the error sums NaN, an infinity makes its scale overflow, and either way the
-    // precise count and location are then looked up.
-    let run = run(tensor, recipe, calib, detail, progress);
+    let run = measured();
     let non_finite = match &run {
-        Ok(analysis) => analysis.totals.mse.is_nan(),
+        Ok(result) => mse(result).is_nan(),
         Err(_) => true,
     };
     if non_finite {
@@ -119,15 +164,18 @@ struct Measure {
     width: usize,
     per_row: usize,
     whole_tensor: bool,
-    columns: bool,
+    detail: Detail,
 }
 
 /// The sums of one block of rows.
 struct BlockSums {
-    /// Per group of the block's rows, row-major (one for a per-tensor recipe).
+    /// Per group of the block's rows, row-major (one for a per-tensor recipe), while the block
+    /// is being measured.
     groups: Vec<ErrorSums>,
-    /// The figures of those groups, once the block is complete (not for a per-tensor recipe,
-    /// whose one group spans every block).
+    /// The sums of those groups, added in order once the block is complete.
+    total: ErrorSums,
+    /// Their figures (with every detail, and not for a per-tensor recipe, whose one group spans
+    /// every block).
     figures: Option<GroupFigures>,
     columns: Option<ColumnBlock>,
 }
@@ -140,7 +188,7 @@ impl Measure {
             width: group_width(recipe.granularity, cols),
             per_row: if whole_tensor { 1 } else { recipe.granularity.groups_per_row(cols) },
             whole_tensor,
-            columns: detail == Detail::Full,
+            detail,
         }
     }
 
@@ -160,13 +208,16 @@ impl Measure {
         })
     }
 
+    /// The whole-tensor figures, and with every detail the per-group and per-column ones.
     fn finish(&self, recipe: &Recipe, blocks: Vec<BlockSums>) -> (ErrorFigures, GroupFigures, ColumnFigures) {
         let mut total = ErrorSums::default();
-        blocks.iter().flat_map(|b| &b.groups).for_each(|g| total.merge(g));
+        blocks.iter().for_each(|b| total.merge(&b.total));
         let column_blocks: Vec<&ColumnBlock> = blocks.iter().filter_map(|b| b.columns.as_ref()).collect();
-        let columns = ColumnSums::of_blocks(if self.columns { self.cols } else { 0 }, &column_blocks);
+        let columns = ColumnSums::of_blocks(if self.detail == Detail::Full { self.cols } else { 0 }, &column_blocks);
         let group_size = matches!(recipe.granularity, Granularity::Group(_)).then_some(self.width);
-        let groups = if self.whole_tensor {
+        let groups = if self.detail == Detail::Totals {
+            GroupFigures::concat(self.per_row, group_size, Vec::new())
+        } else if self.whole_tensor {
             GroupFigures::from_sums(1, 1, group_size, std::slice::from_ref(&total))
         } else {
             let parts = blocks.into_iter().map(|b| b.figures.expect("every block was ended")).collect();
@@ -181,7 +232,12 @@ impl RowObserver for Measure {
 
     fn start(&self, _: usize, rows: usize) -> BlockSums {
         let groups = if self.whole_tensor { 1 } else { rows * self.per_row };
-        BlockSums { groups: vec![ErrorSums::default(); groups], figures: None, columns: self.columns.then(|| ColumnBlock::new(self.cols)) }
+        BlockSums {
+            groups: vec![ErrorSums::default(); groups],
+            total: ErrorSums::default(),
+            figures: None,
+            columns: (self.detail == Detail::Full).then(|| ColumnBlock::new(self.cols)),
+        }
     }
 
     fn groups(&self, block: &mut BlockSums, r: usize, first_col: usize, x: &[f32], x_hat: &[f32]) {
@@ -202,10 +258,12 @@ impl RowObserver for Measure {
     }
 
     fn end_block(&self, block: &mut BlockSums) {
-        if !self.whole_tensor {
+        block.groups.iter().for_each(|g| block.total.merge(g));
+        if !self.whole_tensor && self.detail == Detail::Full {
             let rows = block.groups.len() / self.per_row;
             block.figures = Some(GroupFigures::from_sums(rows, self.per_row, None, &block.groups));
         }
+        block.groups = Vec::new();
     }
 }
 
@@ -219,14 +277,9 @@ fn run(
     let (rows, cols) = (tensor.rows(), tensor.cols());
     let measure = Measure::new(recipe, cols, detail);
     let reference = calib.and_then(|c| c.reference_output(tensor.values.view()));
-    let plain = recipe.method == Method::Rtn
-        && recipe.format != Format::Codebook
-        && recipe.smooth.is_none()
-        && recipe.keep_cols == 0
-        && recipe.keep_frac == 0.0;
-    let (q, blocks) = if plain {
+    let (q, blocks) = if is_plain(recipe) {
         // The hot path: each row is measured while it is still in cache.
-        methods::rtn_rows(tensor.values.view(), recipe, &measure, progress)?
+        methods::rtn_rows(tensor.values.view(), recipe, &Kept::default(), &measure, progress)?
     } else {
         let q = methods::run(tensor.values.view(), recipe, calib, reference.as_deref(), progress)?;
         let blocks = measure.blocks(tensor.values.view(), q.dequantized.view());

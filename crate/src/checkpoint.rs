@@ -14,7 +14,7 @@
 //!   do in the model, and a tensor's MSE is not compared across scales); SQNR is its 10·log₁₀
 //!   of the inverse square.
 
-use crate::analysis::{analyze_measured, Detail};
+use crate::analysis::headline;
 use crate::error::{Error, Result};
 use crate::recipe::{Method, Recipe};
 use crate::report::CAUTION;
@@ -226,7 +226,7 @@ fn measure<S: ByteSource + ?Sized>(
     progress: &mut dyn FnMut(usize, usize),
 ) -> Result<(TensorRow, Sums)> {
     let tensor = tensor::read(source, entry)?;
-    let analysis = analyze_measured(&tensor, recipe, None, Detail::NoColumns, progress)?;
+    let analysis = headline(&tensor, recipe, None, progress)?;
     let count = tensor.values.len() as u64;
     // The analysis gives MSE = Σ(x − x̂)²/n, so n·MSE is its error sum; Σx² is taken here in f64
     // because an exact reconstruction's relative error carries no trace of it.

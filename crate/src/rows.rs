@@ -41,6 +41,19 @@ pub fn map_blocks_mut<T: Send, R: Send>(
     map_chunks_mut(out, cols, ROW_BLOCK, progress, work)
 }
 
+/// Apply `work(rows)` to every block of `rows` rows, returning the results in row order and
+/// calling `progress(rows done, rows)` now and then, from the calling thread.
+pub fn map_blocks_reporting<R: Send>(
+    rows: usize,
+    progress: &mut dyn FnMut(usize, usize),
+    work: impl Fn(Range<usize>) -> R + Sync + Send,
+) -> Vec<R> {
+    // A slice of units: the blocks and progress of `map_blocks_mut`, with nothing to write (a
+    // vector of a zero-sized type allocates nothing).
+    let mut units = vec![(); rows];
+    map_blocks_mut(&mut units, 1, progress, |first, block| work(first..first + block.len()))
+}
+
 /// [`map_blocks_mut`] over chunks of `chunk_rows` rows (a fixed constant of the caller, so that
 /// the split never depends on the thread count).
 pub fn map_chunks_mut<T: Send, R: Send>(
@@ -203,6 +216,12 @@ mod tests {
         assert_eq!(reported.last(), Some(&(130, 130)));
         assert!(reported.windows(2).all(|w| w[0].0 < w[1].0));
         assert_eq!((out[0], out[64 * 3], out[129 * 3 + 2]), (0.0, 64.0, 128.0));
+        for rows in [0usize, 1, 64, 130] {
+            let mut reported = Vec::new();
+            let ranges = map_blocks_reporting(rows, &mut |done, all| reported.push((done, all)), |r| r);
+            assert_eq!(ranges, (0..block_count(rows)).map(|i| block_rows(i, rows)).collect::<Vec<_>>());
+            assert_eq!(reported.last().copied(), (rows > 0).then_some((rows, rows)));
+        }
     }
 
     /// A block that panics reaches the caller as that panic; the caller does not wait forever

@@ -11,7 +11,7 @@
 //! A point is on the Pareto front when no other point has both fewer bits per weight and a lower
 //! error, one of them strictly (both axes minimised; SQNR is negated).
 
-use crate::analysis::{analyze_measured, Detail};
+use crate::analysis::{headline, Headline};
 use crate::calib::Calibration;
 use crate::error::{Error, Result};
 use crate::formats::Format;
@@ -92,6 +92,21 @@ pub struct SweepRow {
     pub pareto: bool,
 }
 
+impl SweepRow {
+    /// The row of one recipe's figures (off the front until [`mark_front`] says otherwise).
+    pub fn of(h: &Headline) -> Self {
+        SweepRow {
+            recipe: h.recipe,
+            label: h.recipe.label(),
+            bits_per_weight: h.cost.bits_per_weight,
+            sqnr_db: h.totals.sqnr_db,
+            mse: h.totals.mse,
+            output_rel_err: h.output.as_ref().map(|o| o.rel_err),
+            pareto: false,
+        }
+    }
+}
+
 /// The recipes of a spec, and how many combinations were skipped as meaningless; an error naming
 /// the first combination's fault when none makes sense.
 pub fn recipes(spec: &SweepSpec) -> Result<(Vec<Recipe>, usize)> {
@@ -153,16 +168,8 @@ pub fn run(
     let mut failed = 0;
     let mut first_failure = None;
     for (i, recipe) in recipes.iter().enumerate() {
-        match analyze_measured(tensor, recipe, calib, Detail::NoColumns, &mut |_, _| {}) {
-            Ok(a) => rows.push(SweepRow {
-                recipe: *recipe,
-                label: recipe.label(),
-                bits_per_weight: a.cost.bits_per_weight,
-                sqnr_db: a.totals.sqnr_db,
-                mse: a.totals.mse,
-                output_rel_err: a.output.map(|o| o.rel_err),
-                pareto: false,
-            }),
+        match headline(tensor, recipe, calib, &mut |_, _| {}) {
+            Ok(h) => rows.push(SweepRow::of(&h)),
             // A non-finite tensor fails every recipe: that is the user's error, not a skip.
             Err(e @ Error::NonFinite { .. }) => return Err(e),
             Err(e) => {

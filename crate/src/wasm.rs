@@ -511,17 +511,8 @@ impl TensorHandle {
         // The core analysis alone: a sweep row needs none of the page's summaries and reports.
         let recipe = parse_recipe(recipe)?;
         let calib = calibration.map(|c| &c.calib);
-        let a = &crate::analysis::analyze_measured(&self.tensor, &recipe, calib, crate::analysis::Detail::NoColumns, &mut |_, _| {})
-            .map_err(js_error)?;
-        to_js(&crate::sweep::SweepRow {
-            recipe: a.recipe,
-            label: a.recipe.label(),
-            bits_per_weight: a.cost.bits_per_weight,
-            sqnr_db: a.totals.sqnr_db,
-            mse: a.totals.mse,
-            output_rel_err: a.output.as_ref().map(|o| o.rel_err),
-            pareto: false,
-        })
+        let h = crate::analysis::headline(&self.tensor, &recipe, calib, &mut |_, _| {}).map_err(js_error)?;
+        to_js(&crate::sweep::SweepRow::of(&h))
     }
 
     /// Histogram of the values of group `index` of `analysis`, with the grid points of that

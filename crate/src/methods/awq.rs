@@ -10,7 +10,7 @@
 //! is the diagonal estimate of `calib`.
 
 use super::keep::Kept;
-use super::{clip, quantize_groups, scale_columns, unscale_columns, with_scratch, MethodFigures, Quantized};
+use super::{Reconstruction, clip, quantize_groups, scale_columns, unscale_columns, with_scratch, MethodFigures, Quantized};
 use crate::formats::Grid;
 use crate::calib::{output_error, Calibration};
 use crate::error::Result;
@@ -64,7 +64,7 @@ pub fn run(
     // Q(W·diag(s))·diag(s)⁻¹ group by group, scaling on the fly instead of copying W per α.
     let candidate = |alpha: f32| -> Result<(Quantized, Vec<f32>)> {
         let s = factors(&calib.mean_abs, alpha);
-        let grouped = quantize_groups(
+        let mut grouped = quantize_groups(
             w,
             &plain,
             kept,
@@ -87,9 +87,10 @@ pub fn run(
                 }
             },
             &(),
+            Reconstruction::Keep,
             &mut |_, _| {},
         )?;
-        let (mut dequantized, params) = (grouped.out, grouped.params);
+        let (mut dequantized, params) = (grouped.kept_out(), grouped.params);
         kept.restore(w, &mut dequantized);
         Ok((Quantized::plain(dequantized, params), s))
     };

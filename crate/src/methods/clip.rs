@@ -4,7 +4,7 @@
 //! diagonal part of the group's contribution to ‖X·(Ŵ − W)ᵀ‖².
 
 use super::keep::Kept;
-use super::{quantize_groups, with_scratch, MethodFigures, Quantized};
+use super::{Reconstruction, quantize_groups, with_scratch, MethodFigures, Quantized};
 use crate::calib::Calibration;
 use crate::error::Result;
 use crate::formats::Grid;
@@ -22,7 +22,7 @@ pub fn run(w: ArrayView2<f32>, recipe: &Recipe, calib: Option<&Calibration>, kep
     let grid = Grid::new(recipe);
     let cols = w.ncols();
     let weights = calib.map(|c| c.mean_sq.as_slice());
-    let grouped = quantize_groups(
+    let mut grouped = quantize_groups(
         w,
         recipe,
         kept,
@@ -53,6 +53,7 @@ pub fn run(w: ArrayView2<f32>, recipe: &Recipe, calib: Option<&Calibration>, kep
         },
         |p, x, out, _| grid.write_quantized(p, x, out),
         &(),
+        Reconstruction::Keep,
         &mut |_, _| {},
     )?;
     let ratio_sum: f64 = grouped.notes.iter().map(|&r| f64::from(r)).sum();
@@ -61,7 +62,7 @@ pub fn run(w: ArrayView2<f32>, recipe: &Recipe, calib: Option<&Calibration>, kep
             mean_ratio: (ratio_sum / grouped.notes.len().max(1) as f64) as f32,
             output_weighted: calib.is_some(),
         },
-        ..Quantized::plain(grouped.out, grouped.params)
+        ..Quantized::plain(grouped.kept_out(), grouped.params)
     })
 }
 

@@ -16,7 +16,7 @@
 //! type (it is no longer an integer), and the bit cost counts it so.
 
 use super::keep::Kept;
-use super::{quantize_groups, MethodFigures, Quantized};
+use super::{Reconstruction, quantize_groups, MethodFigures, Quantized};
 use crate::error::Result;
 use crate::grid::{round_half_even_small, GroupParams, IntGrid};
 use crate::recipe::Recipe;
@@ -98,7 +98,7 @@ pub fn optimise(grid: &IntGrid, x: &[f32], start: GroupParams) -> (GroupParams, 
 /// HQQ on every group of `w` (asymmetric grids only; the recipe check enforces it).
 pub fn run(w: ArrayView2<f32>, recipe: &Recipe, kept: &Kept) -> Result<Quantized> {
     let grid = IntGrid::new(recipe);
-    let grouped = quantize_groups(
+    let mut grouped = quantize_groups(
         w,
         recipe,
         kept,
@@ -114,6 +114,7 @@ pub fn run(w: ArrayView2<f32>, recipe: &Recipe, kept: &Kept) -> Result<Quantized
             }
         },
         &(),
+        Reconstruction::Keep,
         &mut |_, _| {},
     )?;
     let notes = &grouped.notes;
@@ -124,7 +125,7 @@ pub fn run(w: ArrayView2<f32>, recipe: &Recipe, kept: &Kept) -> Result<Quantized
             lp_before: notes.iter().map(|n| n.0).sum(),
             lp_after: notes.iter().map(|n| n.1).sum(),
         }),
-        ..Quantized::plain(grouped.out, grouped.params)
+        ..Quantized::plain(grouped.kept_out(), grouped.params)
     })
 }
 

@@ -136,7 +136,7 @@ pub fn rtn(w: ArrayView2<f32>, recipe: &Recipe, kept: &keep::Kept) -> Result<Qua
     if recipe.format == Format::Codebook {
         return codebooks(w, recipe, kept);
     }
-    Ok(round_to_nearest(w, recipe, kept, &(), &mut |_, _| {})?.0)
+    Ok(rtn_rows(w, recipe, kept, &(), &mut |_, _| {})?.0)
 }
 
 /// Round to nearest over the rows of `w` in one pass, showing each finished run of groups and
@@ -145,10 +145,23 @@ pub fn rtn(w: ArrayView2<f32>, recipe: &Recipe, kept: &keep::Kept) -> Result<Qua
 pub(crate) fn rtn_rows<O: RowObserver>(
     w: ArrayView2<f32>,
     recipe: &Recipe,
+    kept: &keep::Kept,
     observer: &O,
     progress: &mut dyn FnMut(usize, usize),
 ) -> Result<(Quantized, Vec<O::Block>)> {
-    round_to_nearest(w, recipe, &keep::Kept::default(), observer, progress)
+    let (mut grouped, double) = round_to_nearest(w, recipe, kept, observer, Reconstruction::Keep, progress)?;
+    let q = Quantized { double_quant: double, ..Quantized::plain(grouped.kept_out(), grouped.params) };
+    Ok((q, grouped.observed))
+}
+
+/// [`rtn_rows`] for the observer alone: the reconstruction is not kept.
+pub(crate) fn rtn_observe<O: RowObserver>(
+    w: ArrayView2<f32>,
+    recipe: &Recipe,
+    observer: &O,
+    progress: &mut dyn FnMut(usize, usize),
+) -> Result<Vec<O::Block>> {
+    Ok(round_to_nearest(w, recipe, &keep::Kept::default(), observer, Reconstruction::Discard, progress)?.0.observed)
 }
 
 fn round_to_nearest<O: RowObserver>(
@@ -156,27 +169,23 @@ fn round_to_nearest<O: RowObserver>(
     recipe: &Recipe,
     kept: &keep::Kept,
     observer: &O,
+    reconstruction: Reconstruction,
     progress: &mut dyn FnMut(usize, usize),
-) -> Result<(Quantized, Vec<O::Block>)> {
+) -> Result<(Grouped<(), O::Block>, Option<DoubleQuantized>)> {
     let grid = Grid::new(recipe);
     let quantize = |p: GroupParams, x: &[f32], out: &mut [MaybeUninit<f32>], _| grid.write_quantized(p, x, out);
     let fit = |x: &[f32], _, _| grid.fit(x).map(|p| (p, ()));
-    let mut double = None;
-    let grouped = if recipe.double_quant {
-        // Fit every block first, quantize the block constants, then quantize with them.
-        let zeros = |_: GroupParams, _: &[f32], out: &mut [MaybeUninit<f32>], _| out.iter_mut().for_each(|o| _ = o.write(0.0));
-        let fitted = quantize_groups(w, recipe, kept, fit, zeros, &(), &mut |_, _| {})?.params;
-        let dq = DoubleQuantized::of(&fitted);
-        let scales = dq.scales();
-        double = Some(dq);
-        let (width, per_row) = (group_width(recipe.granularity, w.ncols()), recipe.granularity.groups_per_row(w.ncols()));
-        let stored = |_: &[f32], r: usize, col0: usize| Ok((GroupParams { scale: scales[r * per_row + col0 / width], zero: 0.0 }, ()));
-        quantize_groups(w, recipe, kept, stored, quantize, observer, progress)?
-    } else {
-        quantize_groups(w, recipe, kept, fit, quantize, observer, progress)?
-    };
-    let q = Quantized { double_quant: double, ..Quantized::plain(grouped.out, grouped.params) };
-    Ok((q, grouped.observed))
+    if !recipe.double_quant {
+        return Ok((quantize_groups(w, recipe, kept, fit, quantize, observer, reconstruction, progress)?, None));
+    }
+    // Fit every block first, quantize the block constants, then quantize with them.
+    let zeros = |_: GroupParams, _: &[f32], out: &mut [MaybeUninit<f32>], _| out.iter_mut().for_each(|o| _ = o.write(0.0));
+    let fitted = quantize_groups(w, recipe, kept, fit, zeros, &(), Reconstruction::Discard, &mut |_, _| {})?.params;
+    let dq = DoubleQuantized::of(&fitted);
+    let scales = dq.scales();
+    let (width, per_row) = (group_width(recipe.granularity, w.ncols()), recipe.granularity.groups_per_row(w.ncols()));
+    let stored = |_: &[f32], r: usize, col0: usize| Ok((GroupParams { scale: scales[r * per_row + col0 / width], zero: 0.0 }, ()));
+    Ok((quantize_groups(w, recipe, kept, stored, quantize, observer, reconstruction, progress)?, Some(dq)))
 }
 
 /// A codebook per tensor or per row, fitted by Lloyd–Max; kept values stay out of the fit.
@@ -259,10 +268,21 @@ fn runs(cols: usize, width: usize) -> impl Iterator<Item = std::ops::Range<usize
     (0..cols).step_by(step).map(move |start| start..(start + step).min(cols))
 }
 
+/// Whether [`quantize_groups`] keeps the reconstruction or only shows it to the observer.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub(crate) enum Reconstruction {
+    /// Return it: the tensor's size again in fresh memory.
+    Keep,
+    /// Write each row into one reused row of scratch and drop it once observed: for figures that
+    /// need nothing else of it (a sweep's row, a checkpoint report), or fits that only need the
+    /// parameters. The memory traffic of writing the tensor out again is saved too.
+    Discard,
+}
+
 /// What [`quantize_groups`] produces.
 pub(crate) struct Grouped<T, B> {
-    /// The reconstruction.
-    pub out: Array2<f32>,
+    /// The reconstruction, when it was kept.
+    pub out: Option<Array2<f32>>,
     /// Every group's parameters, row-major (one for a per-tensor recipe).
     pub params: Vec<GroupParams>,
     /// What the fit said about each group, in the same order.
@@ -271,12 +291,20 @@ pub(crate) struct Grouped<T, B> {
     pub observed: Vec<B>,
 }
 
+impl<T, B> Grouped<T, B> {
+    /// The reconstruction of a pass run with [`Reconstruction::Keep`].
+    pub fn kept_out(&mut self) -> Array2<f32> {
+        self.out.take().expect("the pass kept its reconstruction")
+    }
+}
+
 /// Fit and quantize every group of `w`, blocks of rows in parallel (see [`crate::rows`]):
 /// `fit(values, row, first column)` chooses the parameters (kept values are zeroed first so they
 /// do not stretch the range) and a note about the group, `quantize(params, values, out, first
 /// column)` writes the group's reconstruction — every place of `out`, which is fresh memory —
 /// and `observer` sees every finished run of groups. For a per-tensor recipe the one fit sees the whole
 /// tensor row-major, so its value j belongs to column j mod cols.
+#[allow(clippy::too_many_arguments)]
 pub(crate) fn quantize_groups<T: Send, O: RowObserver>(
     w: ArrayView2<f32>,
     recipe: &Recipe,
@@ -284,6 +312,7 @@ pub(crate) fn quantize_groups<T: Send, O: RowObserver>(
     fit: impl Fn(&[f32], usize, usize) -> std::result::Result<(GroupParams, T), ScaleOverflow> + Sync + Send,
     quantize: impl Fn(GroupParams, &[f32], &mut [MaybeUninit<f32>], usize) + Sync + Send,
     observer: &O,
+    reconstruction: Reconstruction,
     progress: &mut dyn FnMut(usize, usize),
 ) -> Result<Grouped<T, O::Block>> {
     let masked = kept.masked(w);
@@ -303,41 +332,60 @@ pub(crate) fn quantize_groups<T: Send, O: RowObserver>(
         }
         _ => (None, Vec::new()),
     };
-    // The output is written exactly once, row by row, and each row is measured while it is
-    // still in cache; it is never zeroed first.
-    let mut out = Vec::<f32>::with_capacity(rows * cols);
-    let blocks = rows::map_blocks_mut(&mut out.spare_capacity_mut()[..rows * cols], cols, progress, |first, out_block| {
-        let block_rows = out_block.len() / cols;
-        let mut params = Vec::new();
-        let mut block_notes = Vec::new();
-        let mut seen = observer.start(first, block_rows);
-        for (i, out_row) in out_block.chunks_mut(cols).enumerate() {
-            let r = first + i;
-            let x_row = &all[r * cols..(r + 1) * cols];
-            for run in runs(cols, width) {
-                let (x_run, out_run) = (&x_row[run.clone()], &mut out_row[run.clone()]);
-                for (k, (x, o)) in x_run.chunks(width).zip(out_run.chunks_mut(width)).enumerate() {
-                    let col0 = run.start + k * width;
-                    let p = match whole {
-                        Some(p) => p,
-                        None => {
-                            let (p, note) = fit(x, r, col0).map_err(overflow(r, col0))?;
-                            params.push(p);
-                            block_notes.push(note);
-                            p
-                        }
-                    };
-                    quantize(p, x, o, col0);
-                }
-                // SAFETY: the groups tile the run and `quantize` wrote every place of each.
-                let written = unsafe { std::slice::from_raw_parts(out_run.as_ptr().cast::<f32>(), out_run.len()) };
-                observer.groups(&mut seen, r, run.start, x_run, written);
+    // One block's parameters, notes and observations so far.
+    type Block<T, S> = (Vec<GroupParams>, Vec<T>, S);
+    // Row `r` into `out_row`, each run of groups observed while it is still in cache.
+    let quantize_row = |r: usize, out_row: &mut [MaybeUninit<f32>], block: &mut Block<T, O::Block>| -> Result<()> {
+        let x_row = &all[r * cols..(r + 1) * cols];
+        for run in runs(cols, width) {
+            let (x_run, out_run) = (&x_row[run.clone()], &mut out_row[run.clone()]);
+            for (k, (x, o)) in x_run.chunks(width).zip(out_run.chunks_mut(width)).enumerate() {
+                let col0 = run.start + k * width;
+                let p = match whole {
+                    Some(p) => p,
+                    None => {
+                        let (p, note) = fit(x, r, col0).map_err(overflow(r, col0))?;
+                        block.0.push(p);
+                        block.1.push(note);
+                        p
+                    }
+                };
+                quantize(p, x, o, col0);
             }
-            observer.end_row(&mut seen, r);
+            // SAFETY: the groups tile the run and `quantize` wrote every place of each.
+            let written = unsafe { std::slice::from_raw_parts(out_run.as_ptr().cast::<f32>(), out_run.len()) };
+            observer.groups(&mut block.2, r, run.start, x_run, written);
         }
-        observer.end_block(&mut seen);
-        Ok::<_, Error>((params, block_notes, seen))
-    });
+        observer.end_row(&mut block.2, r);
+        Ok(())
+    };
+    let start = |first: usize, block_rows: usize| (Vec::new(), Vec::new(), observer.start(first, block_rows));
+    let end = |mut block: Block<T, O::Block>| {
+        observer.end_block(&mut block.2);
+        block
+    };
+    // The output is written exactly once, row by row; it is never zeroed first.
+    let mut out = Vec::<f32>::new();
+    let blocks = match reconstruction {
+        Reconstruction::Keep => {
+            out.reserve_exact(rows * cols);
+            rows::map_blocks_mut(&mut out.spare_capacity_mut()[..rows * cols], cols, progress, |first, out_block| {
+                let mut block = start(first, out_block.len() / cols);
+                for (i, out_row) in out_block.chunks_mut(cols).enumerate() {
+                    quantize_row(first + i, out_row, &mut block)?;
+                }
+                Ok::<_, Error>(end(block))
+            })
+        }
+        Reconstruction::Discard => rows::map_blocks_reporting(rows, progress, |range| {
+            let mut block = start(range.start, range.len());
+            let mut scratch = Vec::<f32>::with_capacity(cols);
+            for r in range {
+                quantize_row(r, scratch.spare_capacity_mut(), &mut block)?;
+            }
+            Ok::<_, Error>(end(block))
+        }),
+    };
     let mut params = Vec::with_capacity(recipe.granularity.group_count(rows, cols));
     params.extend(whole);
     let mut observed = Vec::with_capacity(blocks.len());
@@ -347,9 +395,11 @@ pub(crate) fn quantize_groups<T: Send, O: RowObserver>(
         notes.extend(n);
         observed.push(seen);
     }
-    // SAFETY: every block returned Ok, so each wrote all of its rows (see above).
-    unsafe { out.set_len(rows * cols) };
-    let out = Array2::from_shape_vec((rows, cols), out).expect("rows × cols values");
+    let out = (reconstruction == Reconstruction::Keep).then(|| {
+        // SAFETY: every block returned Ok, so each wrote all of its rows (see above).
+        unsafe { out.set_len(rows * cols) };
+        Array2::from_shape_vec((rows, cols), out).expect("rows × cols values")
+    });
     Ok(Grouped { out, params, notes, observed })
 }
 
