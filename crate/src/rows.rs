@@ -79,7 +79,10 @@ pub fn map_chunks_mut<T: Send, R: Send>(
                 rows_done.fetch_add(block.len() / cols, Ordering::Relaxed);
                 result
             };
-            out.par_chunks_mut(chunk).enumerate().map(each).collect()
+            // Every block its own stealable job: left to itself, rayon stops splitting a share
+            // that was never stolen at a quarter of the blocks, and a thread that ran out of work
+            // then waited for the other to finish a whole quarter.
+            out.par_chunks_mut(chunk).enumerate().with_max_len(1).map(each).collect()
         };
         if rayon::current_thread_index().is_some() {
             // Already on a pool thread (one item of a sweep or a checkpoint report): waiting here
@@ -186,7 +189,7 @@ pub fn map_items<R: Send>(count: usize, work: impl Fn(usize) -> R + Sync + Send)
     {
         use rayon::prelude::*;
         wake_pool();
-        (0..count).into_par_iter().map(work).collect()
+        (0..count).into_par_iter().with_max_len(1).map(work).collect()
     }
     #[cfg(all(target_arch = "wasm32", not(target_feature = "atomics")))]
     {
