@@ -136,6 +136,7 @@ fn bad_inputs_fail_with_one_clear_line_and_write_nothing() {
         "twice.safetensors",
         &safetensors_bytes(r#"{"w":{"dtype":"F32","shape":[1],"data_offsets":[0,4]},"w":{"dtype":"F32","shape":[1],"data_offsets":[4,8]}}"#, &[0; 8]),
     );
+    let no_tensors = write("none.safetensors", &safetensors_bytes(r#"{"__metadata__":{"note":"empty"}}"#, &[]));
     let line_break = write("line-break.safetensors", &safetensors_bytes("{\"odd\\nname\":{\"dtype\":\"F32\",\"shape\":[1],\"data_offsets\":[0,4]}}", &[0; 4]));
     // 2^32 + 2 f32 elements (16 GiB) in a sparse file: refused from the header, nothing allocated.
     let elements: u64 = (1 << 32) + 2;
@@ -181,6 +182,9 @@ fn bad_inputs_fail_with_one_clear_line_and_write_nothing() {
         (vec!["quantize", p(&structured)], "structured (record) arrays have no single number type"),
         (vec!["quantize", p(&multi), "--tensor", "nope"], "no tensor named 'nope'"),
         (vec!["quantize", p(&multi)], "choose one"),
+        (vec!["quantize", p(&weight), "--tensor", "w"], "no tensor named 'w'; the file's one tensor has no name (a .npy file): leave the name out"),
+        (vec!["quantize", p(&no_tensors)], "the file holds no tensors"),
+        (vec!["quantize", p(&no_tensors), "--tensor", "w"], "no tensor named 'w'; the file holds no tensors"),
         (vec!["quantize", p(&weight), "--bits", "9"], "9 bits"),
         (vec!["quantize", p(&weight), "--group", "3"], "group size 3"),
         (vec!["quantize", p(&weight), "--group", "lots"], "not a size"),
@@ -199,6 +203,10 @@ fn bad_inputs_fail_with_one_clear_line_and_write_nothing() {
         (vec!["unpack", p(&weight)], "not a valid safetensors file"),
         (vec!["quantize", p(&multi), "--tensor", "block.0.mlp.up.weight", "--out", "/no/such/dir/x.npy"], "cannot write"),
         (vec!["quantize", p(&weight), "--double-quant"], "double quantization applies to NF4"),
+        (vec!["quantize", p(&weight), "--format", "nf4", "--bits", "3"], "--bits applies to the int and codebook formats (nf4 fixes its own width) only"),
+        (vec!["quantize", p(&weight), "--damp", "0.1"], "--damp applies to GPTQ (--method gptq) only"),
+        (vec!["quantize", p(&weight), "--method", "awq", "--act-order"], "--act-order applies to GPTQ"),
+        (vec!["quantize", p(&weight), "--method", "gptq", "--awq-clip"], "--awq-clip applies to AWQ (--method awq) only"),
         (vec!["demo", "--out", p(&same), "--activations", p(&same)], "given for two outputs"),
         (vec!["quantize", p(&weight), "--out", p(&a_directory)], "is a directory"),
     ];
@@ -222,6 +230,30 @@ fn bad_inputs_fail_with_one_clear_line_and_write_nothing() {
         let leftovers: Vec<_> = std::fs::read_dir(dir.path()).unwrap().filter_map(|e| e.ok()).filter(|e| e.file_name().to_string_lossy().contains("partial")).collect();
         assert!(leftovers.is_empty(), "{args:?} left a partial file");
     }
+}
+
+/// '-' sends the JSON report to standard output (after any file output is in place), and an
+/// output path that is a symbolic link writes the link's target and keeps the link: common
+/// practice for command-line tools.
+#[test]
+fn report_to_standard_output_and_outputs_through_links() {
+    let dir = tempfile::tempdir().unwrap();
+    let weight = fixture("quant_weight.npy");
+    let out = bitloupe(&["quantize", path_str(&weight), "--report", "-"]);
+    assert!(out.status.success(), "{}", text(&out.stderr));
+    let report: serde_json::Value = serde_json::from_slice(&out.stdout).expect("the report is JSON on standard output");
+    assert_eq!(report["schema"], "bitloupe.report/1");
+    assert!(report["mse"].as_f64().unwrap() > 0.0);
+    assert!(!Path::new("-").exists(), "no file named '-'");
+
+    let target = dir.path().join("target.npy");
+    std::fs::write(&target, b"old").unwrap();
+    let link = dir.path().join("link.npy");
+    std::os::unix::fs::symlink(&target, &link).unwrap();
+    let out = bitloupe(&["quantize", path_str(&weight), "--out", path_str(&link)]);
+    assert!(out.status.success(), "{}", text(&out.stderr));
+    assert!(std::fs::symlink_metadata(&link).unwrap().file_type().is_symlink(), "the link stays a link");
+    assert!(std::fs::read(&target).unwrap().starts_with(b"\x93NUMPY"), "the target holds the new tensor");
 }
 
 /// `sweep` writes one row per sensible recipe with the listed columns; each row's figures equal

@@ -241,7 +241,13 @@ function setRecipe(recipe) {
 
 // ------------------------------------------------------------------ opening tensors
 
-async function open(label, type, payload) {
+/** The end of a refusal to open something: what stays on screen. */
+function stillOpen() {
+  return state.info ? ' The tensor you had stays open.' : '';
+}
+
+/** Open a tensor (`what` names it in a refusal) and run the current recipe on it. */
+async function open(label, type, payload, what) {
   showMessage('input-message', '');
   const started = performance.now();
   try {
@@ -257,6 +263,9 @@ async function open(label, type, payload) {
       setCalibration(null);
       bridge.forget('calib');
       showMessage('calib-message', 'The calibration was removed: it does not match the new tensor\'s input width.');
+    } else {
+      // A note about calibration (one asked for before any tensor was open, say) is out of date.
+      showMessage('calib-message', '');
     }
     if (result.recipeError) {
       // The new tensor has replaced the old one and its results in the worker: none stand now.
@@ -271,7 +280,7 @@ async function open(label, type, payload) {
       recordTiming('open-to-drawn', started);
     }
   } catch (err) {
-    showMessage('input-message', `Could not open it: ${err.message}.${state.info ? ' The tensor you had stays open.' : ''}`);
+    showMessage('input-message', `Could not open ${what}: ${err.message}.${stillOpen()}`);
     restoreStatus();
   }
 }
@@ -280,8 +289,14 @@ async function openFile(file) {
   showMessage('input-message', '');
   if (TEXT_FILE.test(file.name)) {
     const text = await file.text();
+    // A binary file under a text name would fill the paste box with junk and leave it there.
+    if (text.includes('\0')) {
+      const npy = text.startsWith('\u0093NUMPY') || text.startsWith('\ufffdNUMPY');
+      showMessage('input-message', `Could not open ${file.name}: it holds binary data, not a text matrix${npy ? ' (it is a NumPy .npy file; give it the .npy extension)' : ''}.${stillOpen()}`);
+      return;
+    }
     $('paste').value = text;
-    return open(`Reading ${file.name}`, 'openText', { text });
+    return open(`Reading ${file.name}`, 'openText', { text }, file.name);
   }
   const bf16 = $('bf16').checked;
   const started = performance.now();
@@ -292,13 +307,13 @@ async function openFile(file) {
     state.listing = listing;
     if (listing.entries.length === 1) {
       $('tensor-list').hidden = true;
-      return open(`Reading ${file.name}`, 'openFile', { file, name: null, bf16 });
+      return open(`Reading ${file.name}`, 'openFile', { file, name: null, bf16 }, file.name);
     }
     showListing(file, listing);
     $('status').textContent = `${listing.entries.length} tensors in ${file.name}: choose one.`;
     recordTiming('list', started);
   } catch (err) {
-    showMessage('input-message', `Could not open ${file.name}: ${err.message}.${state.info ? ' The tensor you had stays open.' : ''}`);
+    showMessage('input-message', `Could not open ${file.name}: ${err.message}.${stillOpen()}`);
     restoreStatus();
   }
 }
@@ -323,7 +338,7 @@ function renderListing() {
     button.addEventListener('click', () => {
       for (const row of body.children) row.classList.remove('current');
       tr.classList.add('current');
-      open(`Reading ${entry.name}`, 'openFile', { file: state.file, name: entry.name, bf16: $('bf16').checked });
+      open(`Reading ${entry.name}`, 'openFile', { file: state.file, name: entry.name, bf16: $('bf16').checked }, `${entry.name} of ${state.file.name}`);
     });
     const cells = [button, entry.dtype_label, fmt.shape(entry.shape), fmt.bytes(entry.bytes)];
     for (const content of cells) {
@@ -344,12 +359,12 @@ $('file-input').addEventListener('change', (e) => {
 for (const id of ['load-demo', 'load-demo-big']) {
   $(id).addEventListener('click', () => {
     $('tensor-list').hidden = true;
-    open('Generating the demo tensor', 'openDemo', {});
+    open('Generating the demo tensor', 'openDemo', {}, 'the demo tensor');
   });
 }
 $('use-paste').addEventListener('click', () => {
   $('tensor-list').hidden = true;
-  open('Reading the pasted matrix', 'openText', { text: $('paste').value });
+  open('Reading the pasted matrix', 'openText', { text: $('paste').value }, 'the pasted matrix');
 });
 
 // Drop anywhere on the page.
@@ -399,7 +414,7 @@ function setCalibration(result) {
   $('calib-info').textContent = !info
     ? 'None: the figures are weight-only.'
     : info.tokens
-      ? `${info.name || 'sample'}: ${fmt.count(info.tokens)} tokens × ${fmt.count(info.cols)} columns.`
+      ? `${info.name || 'sample'}: ${fmt.plural(info.tokens, 'token')} × ${fmt.plural(info.cols, 'column')}.`
       : `${info.name || 'statistics'}: ${info.kind === 'maxabs' ? 'max |x|' : 'mean |x|'} of ${fmt.count(info.cols)} columns (output error is estimated from them).`;
   const out = $('map-metric').querySelector('option[value=out]');
   out.disabled = !result;
@@ -1024,7 +1039,7 @@ function showCompare() {
     if (v > max) max = v;
     if (v > 0 && v < floor) floor = v;
   }
-  const range = { max, floor: Math.max(floor, max * 1e-6) };
+  const range = { max, floor: max > 0 ? Math.max(floor, max * 1e-6) : 0 };
   const cols = state.info.cols;
   const data = (p, values, extra = {}) => ({ rows: grid(p).rows, perRow: grid(p).per_row, cols, groupSize: grid(p).group_size, values, log: true, range, ...extra });
   mapA.setData(data(a, a.values));
@@ -1049,6 +1064,14 @@ $('size-run').addEventListener('click', () => computeModelSize());
 
 async function computeModelSize() {
   const gb = (bytes) => `${(bytes / 1e9).toFixed(2)} GB`;
+  for (const [id, what] of [['size-params', 'parameter count'], ['size-budget', 'memory budget']]) {
+    const field = $(id);
+    if (field.value === '' || !(Number(field.value) >= 0)) {
+      $('size-figures').textContent = `No size: the ${what} must be a number, 0 or more (${field.value === '' ? 'it is empty or not a number' : `it reads ${field.value}`}).`;
+      $('size-bar').hidden = true;
+      return;
+    }
+  }
   try {
     const size = await bridge.request('modelSize', {
       files: shardFiles,

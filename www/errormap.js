@@ -47,7 +47,8 @@ export class ErrorMap {
     }
     // A shared range (for maps shown side by side) overrides the map's own.
     this.max = data.range ? data.range.max : max;
-    this.floor = data.range ? data.range.floor : data.log ? Math.max(minPositive, max * 1e-6) : 0;
+    // An all-zero map (an exact reconstruction) has no positive value to start a log scale at.
+    this.floor = data.range ? data.range.floor : data.log && max > 0 ? Math.max(minPositive, max * 1e-6) : 0;
     this.colours = data.diverging ? DIVERGING_PIXELS : SEQUENTIAL_PIXELS;
     if (!(keepView && sameGrid)) this.reset(false);
     // A tooltip shown for the old figures would stay until the pointer moved.

@@ -40,6 +40,8 @@ pub enum Error {
         name: String,
         /// A few names that do exist, to help the user.
         available: Vec<String>,
+        /// How many tensors the file holds (a .npy file's one tensor has no name).
+        count: usize,
     },
     /// A name pattern that takes no tensor of the files given.
     NothingSelected {
@@ -48,7 +50,7 @@ pub enum Error {
         /// What left the tensors out.
         detail: String,
     },
-    /// The file holds several tensors and the caller did not say which.
+    /// The file holds several tensors, or none, and the caller did not say which.
     TensorNotChosen {
         /// How many tensors the file holds.
         count: usize,
@@ -140,14 +142,16 @@ impl fmt::Display for Error {
             Error::UnsupportedDtype { dtype, hint } => {
                 write!(f, "element type '{dtype}' is not supported: {hint}")
             }
-            Error::NoSuchTensor { name, available } => {
+            Error::NoSuchTensor { name, available, count } => {
                 write!(f, "no tensor named '{name}'")?;
-                if !available.is_empty() {
-                    write!(f, "; the file has: {}", available.join(", "))?;
+                match (count, available.is_empty()) {
+                    (0, _) => write!(f, "; the file holds no tensors"),
+                    (_, true) => write!(f, "; the file's one tensor has no name (a .npy file): leave the name out"),
+                    (_, false) => write!(f, "; the file has: {}", available.join(", ")),
                 }
-                Ok(())
             }
             Error::NothingSelected { pattern, detail } => write!(f, "no tensor is selected by '{pattern}': {detail}"),
+            Error::TensorNotChosen { count: 0 } => write!(f, "the file holds no tensors"),
             Error::TensorNotChosen { count } => write!(
                 f,
                 "the file holds {count} tensors; choose one by name (for example with --tensor)"

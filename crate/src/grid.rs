@@ -66,8 +66,17 @@ impl IntGrid {
     /// Fit to the range [lo, hi] with lo ≤ 0 ≤ hi (a clipped range, for example).
     pub fn fit_range(&self, lo: f32, hi: f32) -> Result<GroupParams, ScaleOverflow> {
         let raw = if self.symmetric { larger(-lo, hi) / self.qmax } else { (hi - lo) / self.qmax };
+        // A range wider than f32 (hi − lo overflows) has no scale, whatever the scale type.
+        if !raw.is_finite() {
+            return Err(ScaleOverflow(raw));
+        }
         let scale = if raw == 0.0 { 1.0 } else { self.scale_dtype.round(raw).ok_or(ScaleOverflow(raw))? };
         let zero = if self.symmetric { 0.0 } else { smaller(larger((-lo / scale).round_ties_even(), 0.0), self.qmax) };
+        // A scale rounded up (to a power of two, say) can put the grid's far end beyond f32.
+        let reach = larger(larger(-self.qmin, self.qmax - zero), zero) * scale;
+        if !reach.is_finite() {
+            return Err(ScaleOverflow(raw));
+        }
         Ok(GroupParams { scale, zero })
     }
 
@@ -193,6 +202,19 @@ mod tests {
     fn overflowing_scales_are_reported() {
         let g = IntGrid::new(&Recipe { bits: 2, ..Recipe::default() });
         assert!(g.fit(&[0.0, 1e6]).is_err());
+        // f32::MAX is 3.40e38 = (2 − 2⁻²³)·2¹²⁷ (IEEE 754 binary32). A range wider than that
+        // has no scale of any type (E8M0's clamp to 2¹²⁷ used to hide it); a symmetric 4-bit
+        // grid for 3e38 gets the E8M0 scale 2¹²⁵ (3e38/7 ≈ 2^125.0), whose code −8 stands for
+        // −2¹²⁸, beyond f32. Both are refused rather than reconstructed as infinities.
+        let e8m0 = IntGrid::new(&Recipe { scale_dtype: ScaleDType::E8M0, ..Recipe::default() });
+        assert!(e8m0.fit(&[-3e38, 3e38]).is_err());
+        let f32_scales = IntGrid::new(&Recipe { scale_dtype: ScaleDType::F32, ..Recipe::default() });
+        assert!(f32_scales.fit(&[-3e38, 3e38]).is_err());
+        let e8m0_sym = IntGrid::new(&Recipe { scale_dtype: ScaleDType::E8M0, symmetric: true, ..Recipe::default() });
+        assert!(e8m0_sym.fit(&[0.0, 3e38]).is_err());
+        let fits = e8m0.fit(&[0.0, 3e38]).unwrap();
+        assert_eq!(fits.scale, 2f32.powi(124));
+        assert!(((15.0 - fits.zero) * fits.scale).is_finite());
     }
 
     #[test]

@@ -107,7 +107,7 @@ pub fn gram(x: ArrayView2<f32>, scale: f32) -> Array2<f32> {
 pub fn inverse_cholesky_upper(h: &Array2<f32>) -> Result<Array2<f32>> {
     let n = h.nrows();
     let not_definite = || Error::Numerical {
-        detail: "the calibration Hessian is not positive definite; raise the dampening (--damp) or give more calibration tokens".into(),
+        detail: "the calibration Hessian is not positive definite; raise the dampening or give more calibration tokens".into(),
     };
     let reversed = faer::Mat::<f32>::from_fn(n, n, |i, j| h[[n - 1 - i, n - 1 - j]]);
     let factor = clean_after(|| reversed.llt(Side::Lower)).map_err(|_| not_definite())?;

@@ -71,7 +71,8 @@ mod cli {
             /// Write the dequantized tensor as float32 .npy in the source shape.
             #[arg(long, value_name = "DEQ.npy")]
             out: Option<PathBuf>,
-            /// Write the full JSON report here instead of printing a summary.
+            /// Write the full JSON report here ('-' for standard output) instead of printing a
+            /// summary.
             #[arg(long, value_name = "REPORT.json")]
             report: Option<PathBuf>,
             /// Write a Markdown summary (recipe, figures, bit budget, caution).
@@ -270,6 +271,17 @@ Per-tensor error is only a proxy: check any recipe on the model's own task befor
                 keep_frac: self.keep_frac.unwrap_or(default.keep_frac),
             };
             recipe.validate()?;
+            // A flag the recipe would not use is refused rather than silently dropped.
+            let unused = |flag: &str, applies: &str| Err(bitloupe::Error::BadRecipe { detail: format!("{flag} applies to {applies} only") });
+            if self.bits.is_some() && !matches!(format, Format::Int | Format::Codebook) {
+                return unused("--bits", &format!("the int and codebook formats ({} fixes its own width)", format.name()));
+            }
+            if recipe.method != Method::Gptq && (self.damp.is_some() || self.act_order) {
+                return unused(if self.act_order { "--act-order" } else { "--damp" }, "GPTQ (--method gptq)");
+            }
+            if recipe.method != Method::Awq && self.awq_clip {
+                return unused("--awq-clip", "AWQ (--method awq)");
+            }
             Ok(recipe)
         }
     }
@@ -366,11 +378,20 @@ Per-tensor error is only a proxy: check any recipe on the model's own task befor
                     let bytes = bitloupe::packed::pack(&analysis, &tensor.shape).map_err(Failure::at(&path))?;
                     outputs.push((path, bytes));
                 }
-                match report {
-                    Some(path) => outputs.push((path, report_doc.to_json().into_bytes())),
-                    None => println!("{}", report_doc.summary()),
+                // Standard output gets the report or the summary once every file is in place.
+                let printed = match report {
+                    Some(path) if path == Path::new("-") => report_doc.to_json(),
+                    Some(path) => {
+                        outputs.push((path, report_doc.to_json().into_bytes()));
+                        String::new()
+                    }
+                    None => report_doc.summary(),
+                };
+                write_all_or_nothing(&outputs)?;
+                if !printed.is_empty() {
+                    println!("{printed}");
                 }
-                write_all_or_nothing(&outputs)
+                Ok(())
             }
             Command::Unpack { file, out } => {
                 let source = std::fs::File::open(&file).map_err(|e| Failure(format!("{}: cannot open: {e}", file.display())))?;
@@ -610,7 +631,18 @@ Per-tensor error is only a proxy: check any recipe on the model's own task befor
     /// in place once every temporary file is complete: a rename would replace the device itself
     /// with a file (as root, /dev/null for the whole machine), and what went into a pipe cannot
     /// be taken back anyway.
+    ///
+    /// A symbolic link is written through: its target gets the content and the link stays.
     fn write_all_or_nothing(outputs: &[(PathBuf, Vec<u8>)]) -> Result<(), Failure> {
+        let is_link = |path: &Path| std::fs::symlink_metadata(path).is_ok_and(|m| m.file_type().is_symlink());
+        let resolved: Vec<(PathBuf, &[u8])> = outputs
+            .iter()
+            .map(|(path, bytes)| {
+                let target = if is_link(path) { std::fs::canonicalize(path).unwrap_or_else(|_| path.clone()) } else { path.clone() };
+                (target, bytes.as_slice())
+            })
+            .collect();
+        let outputs = &resolved[..];
         // Checked before anything is written: two outputs on one path would share a temporary
         // file, and a directory fails only at the rename, after the outputs before it are in place.
         for (i, (path, _)) in outputs.iter().enumerate() {

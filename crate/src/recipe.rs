@@ -367,7 +367,7 @@ impl Recipe {
             label.push_str(&format!(" smooth {alpha}"));
         }
         if self.keep_cols > 0 {
-            label.push_str(&format!(" keep {} cols", self.keep_cols));
+            label.push_str(&format!(" keep {} col{}", self.keep_cols, if self.keep_cols == 1 { "" } else { "s" }));
         }
         if self.keep_frac > 0.0 {
             label.push_str(&format!(" keep {}%", self.keep_frac * 100.0));

@@ -155,7 +155,8 @@ impl Listing {
         match name {
             Some(name) => self.entries.iter().find(|e| e.name == name).ok_or_else(|| Error::NoSuchTensor {
                 name: name.to_string(),
-                available: self.entries.iter().take(8).map(|e| e.name.clone()).collect(),
+                available: self.entries.iter().filter(|e| !e.name.is_empty()).take(8).map(|e| e.name.clone()).collect(),
+                count: self.entries.len(),
             }),
             None if self.entries.len() == 1 => Ok(&self.entries[0]),
             None => Err(Error::TensorNotChosen { count: self.entries.len() }),

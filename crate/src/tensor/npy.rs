@@ -89,6 +89,10 @@ impl HeaderFields {
         let mut parser = Literal { text, pos: 0, depth: 0 };
         let dict = parser.value()?;
         let Value::Dict(items) = dict else { return Err(bad("the header is not a dict")) };
+        // NumPy would take the last of two values silently; a writer that gave two meant neither.
+        if let Some((_, (key, _))) = items.iter().enumerate().find(|(i, (k, _))| items[..*i].iter().any(|(e, _)| e == k)) {
+            return Err(bad(format!("the header gives '{key}' twice")));
+        }
         let get = |key: &str| items.iter().find(|(k, _)| k == key).map(|(_, v)| v);
         let descr = match get("descr") {
             Some(Value::Str(s)) => s.clone(),
@@ -324,6 +328,8 @@ mod tests {
         assert!(HeaderFields::parse("{'descr': '<f4', 'shape': (2,)}").is_err());
         assert!(HeaderFields::parse("{'descr': '<f4', 'fortran_order': False, 'shape': (-2,)}").is_err());
         assert!(HeaderFields::parse("{'descr': '<f4'").is_err());
+        let twice = HeaderFields::parse("{'descr': '<f4', 'fortran_order': False, 'shape': (2,), 'descr': '<f2'}");
+        assert!(twice.is_err_and(|e| e.to_string().contains("the header gives 'descr' twice")));
     }
 
     fn npy_v2(header: &str) -> Vec<u8> {
