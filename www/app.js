@@ -236,7 +236,8 @@ function setRecipe(recipe) {
   if (recipe.smooth !== null) $('smooth-alpha').value = String(recipe.smooth);
   $('keep').value = recipe.keep_cols > 0 ? 'cols' : recipe.keep_frac > 0 ? 'frac' : 'none';
   if (recipe.keep_cols > 0) $('keep-cols').value = String(recipe.keep_cols);
-  if (recipe.keep_frac > 0) $('keep-frac').value = String(recipe.keep_frac * 100);
+  // The core holds the fraction in f32: 0.5 % comes back as 0.4999999888 % without the rounding.
+  if (recipe.keep_frac > 0) $('keep-frac').value = String(Number((recipe.keep_frac * 100).toPrecision(6)));
 }
 
 // ------------------------------------------------------------------ opening tensors

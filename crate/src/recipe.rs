@@ -305,7 +305,12 @@ impl Recipe {
             }
         }
         if !(0.0..=MAX_KEEP_FRACTION).contains(&self.keep_frac) {
-            return bad(format!("kept fraction {} is outside 0..={MAX_KEEP_FRACTION}", self.keep_frac));
+            return bad(format!(
+                "kept fraction {} ({} %) is outside 0 to {MAX_KEEP_FRACTION} ({} %)",
+                self.keep_frac,
+                self.keep_frac * 100.0,
+                MAX_KEEP_FRACTION * 100.0
+            ));
         }
         if self.keep_cols > 0 && self.keep_frac > 0.0 {
             return bad("keep either whole columns or a fraction of weights, not both".into());
@@ -390,6 +395,10 @@ mod tests {
         assert!(Recipe { method: Method::Hqq, symmetric: true, ..Recipe::default() }.validate().is_err());
         assert!(Recipe { method: Method::Hqq, scale_dtype: ScaleDType::E8M0, ..Recipe::default() }.validate().is_err());
         assert!(Recipe { keep_cols: 2, keep_frac: 0.01, ..Recipe::default() }.validate().is_err());
+        // The page shows the fraction in percent and the command takes it as a fraction: the
+        // message gives both.
+        let too_many = Recipe { keep_frac: 0.2, ..Recipe::default() }.validate().unwrap_err().to_string();
+        assert!(too_many.contains("kept fraction 0.2 (20 %) is outside 0 to 0.1 (10 %)"), "{too_many}");
         assert!(Recipe { smooth: Some(1.5), ..Recipe::default() }.validate().is_err());
         assert!(Recipe { method: Method::Awq, smooth: Some(0.5), ..Recipe::default() }.validate().is_err());
         assert!(Recipe { damp: -0.1, ..Recipe::default() }.validate().is_err());
