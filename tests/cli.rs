@@ -254,6 +254,18 @@ fn report_to_standard_output_and_outputs_through_links() {
     assert!(out.status.success(), "{}", text(&out.stderr));
     assert!(std::fs::symlink_metadata(&link).unwrap().file_type().is_symlink(), "the link stays a link");
     assert!(std::fs::read(&target).unwrap().starts_with(b"\x93NUMPY"), "the target holds the new tensor");
+    // A link to a missing file creates that file.
+    let dangling = dir.path().join("dangling.npy");
+    std::os::unix::fs::symlink("created.npy", &dangling).unwrap();
+    assert!(bitloupe(&["quantize", path_str(&weight), "--out", path_str(&dangling)]).status.success());
+    assert!(std::fs::symlink_metadata(&dangling).unwrap().file_type().is_symlink());
+    assert!(std::fs::read(dir.path().join("created.npy")).unwrap().starts_with(b"\x93NUMPY"));
+    // /dev/stdout is this process's output, written through it: the Markdown, then the summary.
+    let out = bitloupe(&["quantize", path_str(&weight), "--markdown", "/dev/stdout"]);
+    assert!(out.status.success(), "{}", text(&out.stderr));
+    let printed = text(&out.stdout);
+    let (markdown, summary) = (printed.find("### Quantizing").unwrap(), printed.find("\nrecipe ").unwrap());
+    assert!(markdown < summary, "{printed}");
 }
 
 /// `sweep` writes one row per sensible recipe with the listed columns; each row's figures equal

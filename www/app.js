@@ -969,7 +969,9 @@ $('sweep-run').addEventListener('click', async () => {
       }
     });
     if (!result) {
-      $('sweep-status').textContent = `Cancelled after ${sweep.rows.length} recipes.`;
+      // The chart is drawn at most once a second while a sweep runs: show every row that came.
+      drawSweep();
+      $('sweep-status').textContent = `Cancelled after ${fmt.plural(sweep.rows.length, 'recipe')}.`;
       return;
     }
     timings.push({ what: 'sweep-compute', ms: bridge.lastComputeMs });
@@ -978,6 +980,7 @@ $('sweep-run').addEventListener('click', async () => {
     $('sweep-status').textContent = `${fmt.plural(result.rows.length, 'recipe')} run, ${result.rows.filter((r) => r.pareto).length} on the front, ${result.skipped} combinations skipped (meaningless, or not possible on this tensor).`;
     restoreStatus();
   } catch (err) {
+    drawSweep();
     $('sweep-status').textContent = `The sweep could not run: ${err.message}`;
     restoreStatus();
   }
@@ -1065,7 +1068,9 @@ $('size-run').addEventListener('click', () => computeModelSize());
 
 async function computeModelSize() {
   const gb = (bytes) => `${(bytes / 1e9).toFixed(2)} GB`;
-  for (const [id, what] of [['size-params', 'parameter count'], ['size-budget', 'memory budget']]) {
+  // The parameter count stands in for shards only when none are open.
+  const fields = [['size-budget', 'memory budget'], ...(shardFiles.length ? [] : [['size-params', 'parameter count']])];
+  for (const [id, what] of fields) {
     const field = $(id);
     if (field.value === '' || !(Number(field.value) >= 0)) {
       $('size-figures').textContent = `No size: the ${what} must be a number, 0 or more (${field.value === '' ? 'it is empty or not a number' : `it reads ${field.value}`}).`;

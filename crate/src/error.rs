@@ -107,6 +107,8 @@ pub enum Error {
         row: usize,
         /// First column of that group.
         col: usize,
+        /// The scale fits its type, but the grid's far end passes the largest f32.
+        beyond_f32: bool,
     },
 }
 
@@ -168,7 +170,13 @@ impl fmt::Display for Error {
             Error::BadRecipe { detail } => write!(f, "invalid recipe: {detail}"),
             Error::BadCalibration { detail } => write!(f, "calibration data cannot be used: {detail}"),
             Error::Numerical { detail } => write!(f, "{detail}"),
-            Error::ScaleOverflow { scale, dtype, row, col } => write!(
+            Error::ScaleOverflow { scale, row, col, beyond_f32: true, .. } => write!(
+                f,
+                "the group at row {row}, column {col} needs a scale of {scale:e}, which puts the grid's \
+                 end beyond the largest f32 (3.4e38); no scale type helps: values this close to the \
+                 f32 limit cannot be quantized on this grid"
+            ),
+            Error::ScaleOverflow { scale, dtype, row, col, .. } => write!(
                 f,
                 "the scale {scale:e} needed at row {row}, column {col} overflows {dtype}; \
                  choose a wider scale type (bf16 or f32)"

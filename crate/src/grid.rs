@@ -38,14 +38,31 @@ pub struct IntGrid {
     pub scale_dtype: ScaleDType,
 }
 
-/// A scale too large for its storage type.
+/// A group that cannot be given a scale.
 #[derive(Debug, Clone, Copy, PartialEq)]
-pub struct ScaleOverflow(pub f32);
+pub struct ScaleOverflow {
+    /// The scale that was needed.
+    pub scale: f32,
+    /// The scale fits its type (or the values span more than f32 itself), but the grid's far
+    /// end would pass the largest f32: no scale type helps.
+    pub beyond_f32: bool,
+}
 
 impl ScaleOverflow {
+    /// A scale too large for its storage type.
+    pub fn of(scale: f32) -> Self {
+        ScaleOverflow { scale, beyond_f32: false }
+    }
+
+    /// Whether a grid whose largest level magnitude is `reach` (the scale included) stays within
+    /// f32; the values of a group cannot reach further than its grid.
+    pub fn check_reach(reach: f32, scale: f32) -> Result<(), ScaleOverflow> {
+        if reach.is_finite() { Ok(()) } else { Err(ScaleOverflow { scale, beyond_f32: true }) }
+    }
+
     /// The core error for this overflow in the group starting at (row, col).
     pub fn at(self, scale_dtype: ScaleDType, row: usize, col: usize) -> Error {
-        Error::ScaleOverflow { scale: self.0, dtype: scale_dtype.name(), row, col }
+        Error::ScaleOverflow { scale: self.scale, dtype: scale_dtype.name(), row, col, beyond_f32: self.beyond_f32 }
     }
 }
 
@@ -67,16 +84,11 @@ impl IntGrid {
     pub fn fit_range(&self, lo: f32, hi: f32) -> Result<GroupParams, ScaleOverflow> {
         let raw = if self.symmetric { larger(-lo, hi) / self.qmax } else { (hi - lo) / self.qmax };
         // A range wider than f32 (hi − lo overflows) has no scale, whatever the scale type.
-        if !raw.is_finite() {
-            return Err(ScaleOverflow(raw));
-        }
-        let scale = if raw == 0.0 { 1.0 } else { self.scale_dtype.round(raw).ok_or(ScaleOverflow(raw))? };
+        ScaleOverflow::check_reach(raw, raw)?;
+        let scale = if raw == 0.0 { 1.0 } else { self.scale_dtype.round(raw).ok_or(ScaleOverflow::of(raw))? };
         let zero = if self.symmetric { 0.0 } else { smaller(larger((-lo / scale).round_ties_even(), 0.0), self.qmax) };
         // A scale rounded up (to a power of two, say) can put the grid's far end beyond f32.
-        let reach = larger(larger(-self.qmin, self.qmax - zero), zero) * scale;
-        if !reach.is_finite() {
-            return Err(ScaleOverflow(raw));
-        }
+        ScaleOverflow::check_reach(larger(larger(-self.qmin, self.qmax - zero), zero) * scale, scale)?;
         Ok(GroupParams { scale, zero })
     }
 
@@ -211,7 +223,11 @@ mod tests {
         let f32_scales = IntGrid::new(&Recipe { scale_dtype: ScaleDType::F32, ..Recipe::default() });
         assert!(f32_scales.fit(&[-3e38, 3e38]).is_err());
         let e8m0_sym = IntGrid::new(&Recipe { scale_dtype: ScaleDType::E8M0, symmetric: true, ..Recipe::default() });
-        assert!(e8m0_sym.fit(&[0.0, 3e38]).is_err());
+        let beyond = e8m0_sym.fit(&[0.0, 3e38]).unwrap_err();
+        assert_eq!(beyond, ScaleOverflow { scale: 2f32.powi(125), beyond_f32: true });
+        let message = beyond.at(ScaleDType::E8M0, 4, 256).to_string();
+        assert!(message.contains("row 4, column 256") && message.contains("no scale type helps"), "{message}");
+        assert!(!g.fit(&[0.0, 1e6]).unwrap_err().beyond_f32, "a 2-bit f16 scale of 3.3e5 is too large for f16 alone");
         let fits = e8m0.fit(&[0.0, 3e38]).unwrap();
         assert_eq!(fits.scale, 2f32.powi(124));
         assert!(((15.0 - fits.zero) * fits.scale).is_finite());

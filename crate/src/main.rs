@@ -632,25 +632,26 @@ Per-tensor error is only a proxy: check any recipe on the model's own task befor
     /// with a file (as root, /dev/null for the whole machine), and what went into a pipe cannot
     /// be taken back anyway.
     ///
-    /// A symbolic link is written through: its target gets the content and the link stays.
+    /// A symbolic link is written through: the file it names (created if missing) gets the
+    /// content and the link stays. A link into /dev or /proc (/dev/stdout) is written in place,
+    /// appending, like a device: it stands for a descriptor the shell opened, not for a file of
+    /// the user's to replace.
     fn write_all_or_nothing(outputs: &[(PathBuf, Vec<u8>)]) -> Result<(), Failure> {
-        let is_link = |path: &Path| std::fs::symlink_metadata(path).is_ok_and(|m| m.file_type().is_symlink());
-        let resolved: Vec<(PathBuf, &[u8])> = outputs
+        let outputs: Vec<(PathBuf, &[u8], Option<Target>)> = outputs
             .iter()
-            .map(|(path, bytes)| {
-                let target = if is_link(path) { std::fs::canonicalize(path).unwrap_or_else(|_| path.clone()) } else { path.clone() };
-                (target, bytes.as_slice())
+            .map(|(path, bytes)| match link_target(path) {
+                Target::File(file) => (file, bytes.as_slice(), None),
+                other => (path.clone(), bytes.as_slice(), Some(other)),
             })
             .collect();
-        let outputs = &resolved[..];
         // Checked before anything is written: two outputs on one path would share a temporary
         // file, and a directory fails only at the rename, after the outputs before it are in place.
-        for (i, (path, _)) in outputs.iter().enumerate() {
+        for (i, (path, _, _)) in outputs.iter().enumerate() {
             if std::fs::metadata(path).is_ok_and(|m| m.is_dir()) {
                 return Err(Failure(format!("{}: is a directory; give a file name", path.display())));
             }
             let same = |other: &PathBuf| std::path::absolute(other).ok() == std::path::absolute(path).ok();
-            if outputs[..i].iter().any(|(earlier, _)| same(earlier)) {
+            if outputs[..i].iter().any(|(earlier, _, _)| same(earlier)) {
                 return Err(Failure(format!("{}: given for two outputs; give each its own file", path.display())));
             }
         }
@@ -659,34 +660,81 @@ Per-tensor error is only a proxy: check any recipe on the model's own task befor
             name.push(format!(".partial-{}", std::process::id()));
             path.with_file_name(name)
         };
-        let in_place = |path: &Path| std::fs::metadata(path).is_ok_and(|m| !m.is_file() && !m.is_dir());
-        let (special, regular): (Vec<_>, Vec<_>) = outputs.iter().partition(|(path, _)| in_place(path));
+        let in_place = |path: &Path, target: &Option<Target>| target.is_some() || std::fs::metadata(path).is_ok_and(|m| !m.is_file() && !m.is_dir());
+        let (special, regular): (Vec<_>, Vec<_>) = outputs.iter().partition(|(path, _, target)| in_place(path, target));
         let cleanup = |upto: usize| {
-            for (path, _) in &regular[..upto] {
+            for (path, _, _) in &regular[..upto] {
                 let _ = std::fs::remove_file(temp_of(path));
             }
         };
         let cannot_write = |path: &Path, e: std::io::Error| Failure(format!("{}: cannot write: {e}", path.display()));
-        for (i, (path, bytes)) in regular.iter().enumerate() {
+        for (i, (path, bytes, _)) in regular.iter().enumerate() {
             if let Err(e) = std::fs::write(temp_of(path), bytes) {
                 cleanup(i + 1);
                 return Err(cannot_write(path, e));
             }
         }
-        for (path, bytes) in &special {
-            if let Err(e) = std::fs::write(path, bytes) {
+        for (path, bytes, target) in &special {
+            use std::io::Write;
+            let written = match target {
+                // Through this process's own stream, so that what it prints next follows.
+                Some(Target::Stdout) => std::io::stdout().write_all(bytes).and_then(|()| std::io::stdout().flush()),
+                Some(Target::Stderr) => std::io::stderr().write_all(bytes),
+                // Appending, never truncating: a descriptor opened with >> keeps what it held.
+                _ => std::fs::OpenOptions::new().append(true).open(path).and_then(|mut f| f.write_all(bytes)),
+            };
+            if let Err(e) = written {
                 cleanup(regular.len());
                 return Err(cannot_write(path, e));
             }
         }
-        for (i, (path, _)) in regular.iter().enumerate() {
+        for (i, (path, _, _)) in regular.iter().enumerate() {
             if let Err(e) = std::fs::rename(temp_of(path), path) {
-                for (later, _) in &regular[i..] {
+                for (later, _, _) in &regular[i..] {
                     let _ = std::fs::remove_file(temp_of(later));
                 }
                 return Err(cannot_write(path, e));
             }
         }
         Ok(())
+    }
+
+    /// Where an output path's content goes.
+    enum Target {
+        /// Into this file, by temporary file and rename: the path itself, or the file a
+        /// symbolic link names.
+        File(PathBuf),
+        /// In place, appending: a path in /dev or /proc, or a link into them (a device, or a
+        /// descriptor the shell opened, not a file of the user's to replace).
+        Descriptor,
+        /// This process's standard output (/dev/stdout and its other names).
+        Stdout,
+        /// This process's standard error.
+        Stderr,
+    }
+
+    /// Follow `path`'s symbolic links hop by hop (a link to a missing file names the file to create).
+    fn link_target(path: &Path) -> Target {
+        let Ok(mut at) = std::path::absolute(path) else { return Target::File(path.to_path_buf()) };
+        // Linux stops following links after 40 hops (path_resolution(7)); a loop ends here too.
+        for hop in 0..=40 {
+            let named = |names: [&str; 3]| names.iter().any(|n| at == Path::new(n));
+            if named(["/dev/stdout", "/dev/fd/1", "/proc/self/fd/1"]) {
+                return Target::Stdout;
+            }
+            if named(["/dev/stderr", "/dev/fd/2", "/proc/self/fd/2"]) {
+                return Target::Stderr;
+            }
+            if at.starts_with("/dev") || at.starts_with("/proc") {
+                return Target::Descriptor;
+            }
+            match std::fs::read_link(&at) {
+                Ok(next) => at = at.parent().map_or(next.clone(), |dir| dir.join(&next)),
+                // Not a link: messages keep the path as the user gave it.
+                Err(_) if hop == 0 => return Target::File(path.to_path_buf()),
+                Err(_) => return Target::File(at),
+            }
+        }
+        Target::File(path.to_path_buf())
     }
 }

@@ -219,10 +219,18 @@ impl Grid {
             Grid::Int(g) => g.fit_range(lo, hi),
             Grid::Scaled { format, scale_dtype } => {
                 let raw = absmax / Self::unit_max(format);
-                let scale = if raw == 0.0 { 1.0 } else { scale_dtype.round(raw).ok_or(ScaleOverflow(raw))? };
+                let scale = if raw == 0.0 { 1.0 } else { scale_dtype.round(raw).ok_or(ScaleOverflow::of(raw))? };
+                // A scale rounded up (to bf16's eight bits, say) can carry the grid's end past f32.
+                ScaleOverflow::check_reach(Self::unit_max(format) * scale, scale)?;
                 Ok(GroupParams { scale, zero: 0.0 })
             }
-            Grid::Mx(format) => Ok(GroupParams { scale: mx_scale(format, absmax), zero: 0.0 }),
+            Grid::Mx(format) => {
+                let scale = mx_scale(format, absmax);
+                // MXINT8's most negative code is −2 (−128 · 2⁻⁶), a step beyond its largest positive one.
+                let unit = if format == Format::Mxint8 { 2.0 } else { Self::unit_max(format) };
+                ScaleOverflow::check_reach(unit * scale, scale)?;
+                Ok(GroupParams { scale, zero: 0.0 })
+            }
         }
     }
 
@@ -346,6 +354,37 @@ pub fn mx_scale(format: Format, absmax: f32) -> f32 {
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    /// MXINT8's codes run from −128 to 127 in steps of 2⁻⁶ (OCP Microscaling Formats v1.0, from
+    /// memory): for a block whose largest magnitude is 3.39e38 the shared scale is 2¹²⁷, and
+    /// the code −128 would stand for −2¹²⁸, beyond f32's 3.40e38. Refused, not reconstructed as −∞.
+    #[test]
+    fn a_grid_beyond_f32_is_refused() {
+        let mx = Grid::new(&Recipe::for_format(Format::Mxint8));
+        assert!(mx.fit(&[1.0, -3.39e38]).is_err_and(|e| e.beyond_f32));
+        assert!(mx.fit(&[1.0, -1e38]).is_ok());
+        // Every grid, every scale type, values up to f32::MAX (3.4028235e38): a group is either
+        // refused or reconstructed finite, never as an infinity.
+        use crate::recipe::ScaleDType;
+        let formats = [Format::Int, Format::Nf4, Format::E2m1, Format::E2m3, Format::E3m2, Format::E4m3, Format::E5m2, Format::Mxfp4, Format::Mxint8];
+        let mut refused = 0;
+        for format in formats {
+            for scale_dtype in [ScaleDType::F16, ScaleDType::BF16, ScaleDType::F32, ScaleDType::E8M0] {
+                for symmetric in [false, true] {
+                    let grid = Grid::new(&Recipe { symmetric, scale_dtype, ..Recipe::for_format(format) });
+                    for v in [f32::MAX, 3.39e38, 3.3e38, 3.0e38, 2.5e38, 1.7e38] {
+                        for group in [[v, -v], [v, 0.0], [0.0, -v]] {
+                            match grid.fit(&group) {
+                                Ok(p) => assert!(group.iter().all(|&x| grid.dequantize_one(p, x).is_finite()), "{format:?} {scale_dtype:?} {symmetric} {group:?}"),
+                                Err(_) => refused += 1,
+                            }
+                        }
+                    }
+                }
+            }
+        }
+        assert!(refused > 0);
+    }
 
     #[test]
     fn names_round_trip_and_bad_recipes_are_explained() {

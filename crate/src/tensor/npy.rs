@@ -90,7 +90,8 @@ impl HeaderFields {
         let dict = parser.value()?;
         let Value::Dict(items) = dict else { return Err(bad("the header is not a dict")) };
         // NumPy would take the last of two values silently; a writer that gave two meant neither.
-        if let Some((_, (key, _))) = items.iter().enumerate().find(|(i, (k, _))| items[..*i].iter().any(|(e, _)| e == k)) {
+        let mut seen = std::collections::HashSet::new();
+        if let Some((key, _)) = items.iter().find(|(k, _)| !seen.insert(k.as_str())) {
             return Err(bad(format!("the header gives '{key}' twice")));
         }
         let get = |key: &str| items.iter().find(|(k, _)| k == key).map(|(_, v)| v);
