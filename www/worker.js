@@ -175,23 +175,8 @@ const handlers = {
   sweep({ spec, by }, progress) {
     if (!tensor) throw new Error('open a tensor first');
     const plan = core.sweepRecipes(spec);
-    const rows = [];
-    let failed = 0;
-    let firstFailure = null;
-    plan.recipes.forEach((recipe, i) => {
-      let row = null;
-      try {
-        row = calib ? tensor.sweepRowWith(recipe, calib) : tensor.sweepRow(recipe);
-        rows.push(row);
-      } catch (err) {
-        failed += 1;
-        firstFailure ??= message(err);
-      }
-      progress(i + 1, plan.recipes.length, row);
-    });
-    // Nothing run is an error naming why (the first failure), not an empty front.
-    if (rows.length === 0 && firstFailure) throw new Error(firstFailure);
-    return { value: { rows: core.markParetoFront(rows, by), skipped: plan.skipped + failed } };
+    const { rows, failed } = calib ? tensor.sweepWith(plan.recipes, by, progress, calib) : tensor.sweep(plan.recipes, by, progress);
+    return { value: { rows, skipped: plan.skipped + failed } };
   },
   histogram({ index, bins }) {
     if (!tensor || !analysis) throw new Error('no analysis yet');

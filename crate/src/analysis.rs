@@ -112,7 +112,7 @@ enum Detail {
 }
 
 /// Whether a recipe takes the plain path: round to nearest on a grid, with nothing before it.
-fn is_plain(recipe: &Recipe) -> bool {
+pub(crate) fn is_plain(recipe: &Recipe) -> bool {
     recipe.method == Method::Rtn
         && recipe.format != Format::Codebook
         && recipe.smooth.is_none()

@@ -428,7 +428,7 @@ Per-tensor error is only a proxy: check any recipe on the model's own task befor
                 let (recipes, skipped) = sweep::recipes(&spec)?;
                 // A counter redrawn in place is for a terminal; a log would collect every step.
                 let on_terminal = std::io::IsTerminal::is_terminal(&std::io::stderr());
-                let (rows, failed) = sweep::run(&tensor, calibration.as_ref(), &recipes, by, &mut |done, total| {
+                let (rows, failed) = sweep::run(&tensor, calibration.as_ref(), &recipes, by, &mut |done, total, _| {
                     if on_terminal {
                         eprint!("\rbitloupe: {done}/{total} recipes");
                     }

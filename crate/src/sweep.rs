@@ -11,7 +11,7 @@
 //! A point is on the Pareto front when no other point has both fewer bits per weight and a lower
 //! error, one of them strictly (both axes minimised; SQNR is negated).
 
-use crate::analysis::{headline, Headline};
+use crate::analysis::{headline, is_plain, Headline};
 use crate::calib::Calibration;
 use crate::error::{Error, Result};
 use crate::formats::Format;
@@ -152,32 +152,54 @@ fn fault(e: &Error) -> String {
     }
 }
 
-/// Run every recipe; `progress(done, total)` after each. Recipes that fail on this tensor (a
-/// method that needs calibration, say) are skipped and counted too.
+/// Plain recipes without calibration keep no reconstruction (see `analysis::headline`), so a
+/// sweep runs up to this many of them side by side on the pool; any other recipe runs alone,
+/// spread over the pool itself. Side by side, no run waits for the pool to be handed its blocks
+/// and gathered again.
+const SIDE_BY_SIDE: usize = 8;
+
+/// Run every recipe; `progress(done, total, row)` after each, in order, with its row unless it
+/// failed. Recipes that fail on this tensor (a method that needs calibration, say) are skipped
+/// and counted too.
 pub fn run(
     tensor: &Tensor,
     calib: Option<&Calibration>,
     recipes: &[Recipe],
     by: ParetoBy,
-    progress: &mut dyn FnMut(usize, usize),
+    progress: &mut dyn FnMut(usize, usize, Option<&SweepRow>),
 ) -> Result<(Vec<SweepRow>, usize)> {
     if by == ParetoBy::Output && calib.is_none() {
         return Err(Error::BadRecipe { detail: "a front by output error needs calibration data".into() });
     }
+    let one = |recipe: &Recipe| headline(tensor, recipe, calib, &mut |_, _| {}).map(|h| SweepRow::of(&h));
+    let light = |recipe: &Recipe| calib.is_none() && is_plain(recipe);
     let mut rows = Vec::with_capacity(recipes.len());
     let mut failed = 0;
     let mut first_failure = None;
-    for (i, recipe) in recipes.iter().enumerate() {
-        match headline(tensor, recipe, calib, &mut |_, _| {}) {
-            Ok(h) => rows.push(SweepRow::of(&h)),
-            // A non-finite tensor fails every recipe: that is the user's error, not a skip.
-            Err(e @ Error::NonFinite { .. }) => return Err(e),
-            Err(e) => {
-                failed += 1;
-                first_failure.get_or_insert(e);
+    let mut done = 0;
+    while done < recipes.len() {
+        let side_by_side = recipes[done..].iter().take(SIDE_BY_SIDE).take_while(|r| light(r)).count().max(1);
+        let batch = &recipes[done..done + side_by_side];
+        let results = match batch {
+            [alone] => vec![one(alone)],
+            _ => crate::rows::map_items(batch.len(), |i| one(&batch[i])),
+        };
+        for result in results {
+            done += 1;
+            match result {
+                Ok(row) => {
+                    progress(done, recipes.len(), Some(&row));
+                    rows.push(row);
+                }
+                // A non-finite tensor fails every recipe: that is the user's error, not a skip.
+                Err(e @ Error::NonFinite { .. }) => return Err(e),
+                Err(e) => {
+                    failed += 1;
+                    first_failure.get_or_insert(e);
+                    progress(done, recipes.len(), None);
+                }
             }
         }
-        progress(i + 1, recipes.len());
     }
     if let (true, Some(e)) = (rows.is_empty(), first_failure) {
         return Err(Error::BadRecipe { detail: format!("no recipe of the sweep could run on this tensor; the first: {}", fault(&e)) });
@@ -313,7 +335,41 @@ mod tests {
         let gptq = SweepSpec { bits: vec![4], methods: vec![Method::Gptq], ..spec };
         let (plan, _) = recipes(&gptq).unwrap();
         let weight = crate::demo::weight();
-        let message = run(&weight, None, &plan, ParetoBy::Mse, &mut |_, _| {}).unwrap_err().to_string();
+        let message = run(&weight, None, &plan, ParetoBy::Mse, &mut |_, _, _| {}).unwrap_err().to_string();
         assert!(message.contains("could run") && message.contains("calibration"), "{message}");
+    }
+
+    /// Plain recipes run side by side, others alone: every row is still the recipe's own
+    /// analysis, bit for bit, in the plan's order, on one thread or several, and progress comes
+    /// once per recipe in order with its row (none for one that failed).
+    #[test]
+    fn side_by_side_rows_are_each_recipes_own() {
+        let mut rng = crate::demo::Rng::new(3);
+        let values = ndarray::Array2::from_shape_fn((150, 200), |_| rng.normal() as f32);
+        let weight = Tensor::from_values("w", crate::tensor::DType::F32, values);
+        let spec = SweepSpec {
+            formats: vec![Format::Int, Format::Nf4, Format::Codebook],
+            bits: vec![2, 3, 4, 8],
+            groups: vec![Granularity::Group(32), Granularity::Group(64), Granularity::Row],
+            methods: vec![Method::Rtn, Method::Hqq, Method::Gptq],
+            scale_dtypes: vec![ScaleDType::F16],
+            smooth: vec![None],
+            keep_fracs: vec![0.0, 0.01],
+        };
+        let (plan, _) = recipes(&spec).unwrap();
+        let on = |threads: usize| {
+            let pool = rayon::ThreadPoolBuilder::new().num_threads(threads).build().unwrap();
+            let mut seen = Vec::new();
+            let swept = pool.install(|| run(&weight, None, &plan, ParetoBy::Mse, &mut |done, total, row| seen.push((done, total, row.is_some()))).unwrap());
+            (swept, seen)
+        };
+        let ((rows, failed), seen) = on(3);
+        assert!(failed > 0, "GPTQ without calibration fails and is counted");
+        assert_eq!(seen.iter().map(|s| s.0).collect::<Vec<_>>(), (1..=plan.len()).collect::<Vec<_>>());
+        assert_eq!(seen.iter().filter(|s| s.2).count(), rows.len());
+        let mut alone: Vec<SweepRow> = plan.iter().filter_map(|r| headline(&weight, r, None, &mut |_, _| {}).ok().map(|h| SweepRow::of(&h))).collect();
+        mark_front(&mut alone, ParetoBy::Mse);
+        assert_eq!(rows, alone);
+        assert_eq!(on(1).0 .0, rows);
     }
 }

@@ -117,15 +117,6 @@ pub fn sweep_recipes(spec: JsValue) -> Result<JsValue, JsError> {
     to_js(&Plan { recipes, skipped })
 }
 
-/// The sweep rows with `pareto` set against the error `by` ("sqnr", "mse" or "output").
-#[wasm_bindgen(js_name = markParetoFront)]
-pub fn mark_pareto_front(rows: JsValue, by: &str) -> Result<JsValue, JsError> {
-    let text = js_sys::JSON::stringify(&rows).ok().and_then(|s| s.as_string()).unwrap_or_default();
-    let mut rows: Vec<crate::sweep::SweepRow> = serde_json::from_str(&text).map_err(|e| JsError::new(&format!("invalid sweep rows: {e}")))?;
-    crate::sweep::mark_front(&mut rows, by.parse().map_err(js_error)?);
-    to_js(&rows)
-}
-
 /// The size of a model under `recipe`: from the headers of the `.safetensors` shards in `files`
 /// (tensors whose names match `pattern`, and 2-D when `only_2d`), or, with no files, from
 /// `params` weights costed as 4096-column rows of 16-bit sources.
@@ -494,25 +485,35 @@ impl TensorHandle {
         Ok(AnalysisHandle { analysis, summary, name: t.name.clone(), dtype: t.dtype, shape: t.shape.clone() })
     }
 
-    /// One sweep row: the recipe's headline figures, or an error for a recipe that does not
-    /// apply to this tensor.
-    #[wasm_bindgen(js_name = sweepRow)]
-    pub fn sweep_row(&self, recipe: JsValue) -> Result<JsValue, JsError> {
-        self.sweep_row_ref(recipe, None)
+    /// Run a sweep's `recipes` (see `sweepRecipes`) and mark the front against `by` ("sqnr",
+    /// "mse" or "output"): `{rows, failed}`; `progress(done, total, row)` after each recipe,
+    /// `row` undefined for one that failed on this tensor.
+    pub fn sweep(&self, recipes: JsValue, by: &str, progress: js_sys::Function) -> Result<JsValue, JsError> {
+        self.sweep_ref(recipes, by, progress, None)
     }
 
-    /// `sweepRow` with calibration.
-    #[wasm_bindgen(js_name = sweepRowWith)]
-    pub fn sweep_row_with(&self, recipe: JsValue, calibration: &CalibrationHandle) -> Result<JsValue, JsError> {
-        self.sweep_row_ref(recipe, Some(calibration))
+    /// `sweep` with calibration.
+    #[wasm_bindgen(js_name = sweepWith)]
+    pub fn sweep_with(&self, recipes: JsValue, by: &str, progress: js_sys::Function, calibration: &CalibrationHandle) -> Result<JsValue, JsError> {
+        self.sweep_ref(recipes, by, progress, Some(calibration))
     }
 
-    fn sweep_row_ref(&self, recipe: JsValue, calibration: Option<&CalibrationHandle>) -> Result<JsValue, JsError> {
-        // The core analysis alone: a sweep row needs none of the page's summaries and reports.
-        let recipe = parse_recipe(recipe)?;
+    fn sweep_ref(&self, recipes: JsValue, by: &str, progress: js_sys::Function, calibration: Option<&CalibrationHandle>) -> Result<JsValue, JsError> {
+        #[derive(Serialize)]
+        struct Swept {
+            rows: Vec<crate::sweep::SweepRow>,
+            failed: usize,
+        }
+        let text = js_sys::JSON::stringify(&recipes).ok().and_then(|s| s.as_string()).unwrap_or_default();
+        let recipes: Vec<Recipe> = serde_json::from_str(&text).map_err(|e| JsError::new(&format!("invalid sweep recipes: {e}")))?;
+        let by = by.parse().map_err(js_error)?;
         let calib = calibration.map(|c| &c.calib);
-        let h = crate::analysis::headline(&self.tensor, &recipe, calib, &mut |_, _| {}).map_err(js_error)?;
-        to_js(&crate::sweep::SweepRow::of(&h))
+        let mut report = |done: usize, total: usize, row: Option<&crate::sweep::SweepRow>| {
+            let row = row.and_then(|r| to_js(r).ok()).unwrap_or(JsValue::UNDEFINED);
+            let _ = progress.call3(&JsValue::NULL, &JsValue::from(done as f64), &JsValue::from(total as f64), &row);
+        };
+        let (rows, failed) = crate::sweep::run(&self.tensor, calib, &recipes, by, &mut report).map_err(js_error)?;
+        to_js(&Swept { rows, failed })
     }
 
     /// Histogram of the values of group `index` of `analysis`, with the grid points of that
