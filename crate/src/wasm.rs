@@ -106,8 +106,7 @@ pub fn recipe_defaults() -> Result<JsValue, JsError> {
 /// `{recipes, skipped}`.
 #[wasm_bindgen(js_name = sweepRecipes)]
 pub fn sweep_recipes(spec: JsValue) -> Result<JsValue, JsError> {
-    let text = js_sys::JSON::stringify(&spec).ok().and_then(|s| s.as_string()).unwrap_or_default();
-    let spec: crate::sweep::SweepSpec = serde_json::from_str(&text).map_err(|e| JsError::new(&format!("invalid sweep: {e}")))?;
+    let spec: crate::sweep::SweepSpec = from_json_value(&spec, "sweep")?;
     let (recipes, skipped) = crate::sweep::recipes(&spec).map_err(js_error)?;
     #[derive(Serialize)]
     struct Plan {
@@ -222,6 +221,12 @@ fn parse_recipe(recipe: JsValue) -> Result<Recipe, JsError> {
     }
     let text = js_sys::JSON::stringify(&recipe).ok().and_then(|s| s.as_string()).unwrap_or_default();
     Recipe::from_json(&text).map_err(js_error)
+}
+
+/// A plain JavaScript value read as `T` through its JSON text; `what` names it in a refusal.
+fn from_json_value<T: serde::de::DeserializeOwned>(value: &JsValue, what: &str) -> Result<T, JsError> {
+    let text = js_sys::JSON::stringify(value).ok().and_then(|s| s.as_string()).unwrap_or_default();
+    serde_json::from_str(&text).map_err(|e| JsError::new(&format!("invalid {what}: {e}")))
 }
 
 /// A progress callback that forwards to a JS function, when one is given.
@@ -504,8 +509,7 @@ impl TensorHandle {
             rows: Vec<crate::sweep::SweepRow>,
             failed: usize,
         }
-        let text = js_sys::JSON::stringify(&recipes).ok().and_then(|s| s.as_string()).unwrap_or_default();
-        let recipes: Vec<Recipe> = serde_json::from_str(&text).map_err(|e| JsError::new(&format!("invalid sweep recipes: {e}")))?;
+        let recipes: Vec<Recipe> = from_json_value(&recipes, "sweep recipes")?;
         let by = by.parse().map_err(js_error)?;
         let calib = calibration.map(|c| &c.calib);
         let mut report = |done: usize, total: usize, row: Option<&crate::sweep::SweepRow>| {
