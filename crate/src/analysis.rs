@@ -92,8 +92,8 @@ pub fn headline(
         let cost = BitCost::of(recipe, tensor.rows(), tensor.cols(), tensor.dtype.bits());
         if is_plain(recipe) && calib.is_none() {
             let measure = Measure::new(recipe, tensor.cols(), Detail::Totals);
-            let blocks = methods::rtn_observe(tensor.values.view(), recipe, &measure, progress)?;
-            return Ok(Headline { recipe: *recipe, totals: measure.finish(recipe, blocks).0, cost, output: None });
+            let measured = methods::rtn_observe(tensor.values.view(), recipe, &measure, progress)?;
+            return Ok(Headline { recipe: *recipe, totals: measure.finish(measured).0, cost, output: None });
         }
         let a = run(tensor, recipe, calib, Detail::Totals, progress)?;
         Ok(Headline { recipe: a.recipe, totals: a.totals, cost: a.cost, output: a.output })
@@ -163,6 +163,7 @@ struct Measure {
     cols: usize,
     width: usize,
     per_row: usize,
+    group_size: Option<usize>,
     whole_tensor: bool,
     detail: Detail,
 }
@@ -180,6 +181,15 @@ struct BlockSums {
     columns: Option<ColumnBlock>,
 }
 
+/// The blocks' sums added up in row order.
+struct Measured {
+    total: ErrorSums,
+    /// With every detail.
+    columns: Option<ColumnSums>,
+    /// With every detail, and not for a per-tensor recipe.
+    groups: Option<GroupFigures>,
+}
+
 impl Measure {
     fn new(recipe: &Recipe, cols: usize, detail: Detail) -> Self {
         let whole_tensor = recipe.granularity == Granularity::Tensor;
@@ -187,17 +197,21 @@ impl Measure {
             cols,
             width: group_width(recipe.granularity, cols),
             per_row: if whole_tensor { 1 } else { recipe.granularity.groups_per_row(cols) },
+            group_size: match recipe.granularity {
+                Granularity::Group(g) => Some(g),
+                _ => None,
+            },
             whole_tensor,
             detail,
         }
     }
 
     /// Measure rows already reconstructed (by a method other than the plain path).
-    fn blocks(&self, x: ArrayView2<f32>, x_hat: ArrayView2<f32>) -> Vec<BlockSums> {
+    fn rows(&self, x: ArrayView2<f32>, x_hat: ArrayView2<f32>) -> Measured {
         let (x, x_hat) = (x.as_standard_layout(), x_hat.as_standard_layout());
         let (x, x_hat) = (x.as_slice().expect("standard layout"), x_hat.as_slice().expect("standard layout"));
         let cols = self.cols;
-        rows::map_blocks(x.len() / cols.max(1), |range| {
+        let work = |range: Range<usize>| {
             let mut block = self.start(range.start, range.len());
             for r in range {
                 self.groups(&mut block, r, 0, &x[r * cols..(r + 1) * cols], &x_hat[r * cols..(r + 1) * cols]);
@@ -205,30 +219,28 @@ impl Measure {
             }
             self.end_block(&mut block);
             block
-        })
+        };
+        let rows = x.len() / cols.max(1);
+        rows::fold_blocks(rows, &mut |_, _| {}, self.empty_total(rows), work, |total, block| self.fold(total, block))
     }
 
     /// The whole-tensor figures, and with every detail the per-group and per-column ones.
-    fn finish(&self, recipe: &Recipe, blocks: Vec<BlockSums>) -> (ErrorFigures, GroupFigures, ColumnFigures) {
-        let mut total = ErrorSums::default();
-        blocks.iter().for_each(|b| total.merge(&b.total));
-        let column_blocks: Vec<&ColumnBlock> = blocks.iter().filter_map(|b| b.columns.as_ref()).collect();
-        let columns = ColumnSums::of_blocks(if self.detail == Detail::Full { self.cols } else { 0 }, &column_blocks);
-        let group_size = matches!(recipe.granularity, Granularity::Group(_)).then_some(self.width);
-        let groups = if self.detail == Detail::Totals {
-            GroupFigures::concat(self.per_row, group_size, Vec::new())
-        } else if self.whole_tensor {
-            GroupFigures::from_sums(1, 1, group_size, std::slice::from_ref(&total))
-        } else {
-            let parts = blocks.into_iter().map(|b| b.figures.expect("every block was ended")).collect();
-            GroupFigures::concat(self.per_row, group_size, parts)
+    fn finish(&self, measured: Measured) -> (ErrorFigures, GroupFigures, ColumnFigures) {
+        let groups = match measured.groups {
+            Some(groups) => groups,
+            None if self.whole_tensor && self.detail == Detail::Full => {
+                GroupFigures::from_sums(1, 1, self.group_size, std::slice::from_ref(&measured.total))
+            }
+            None => GroupFigures::empty(self.per_row, self.group_size, 0),
         };
-        (total.figures(), groups, columns.figures())
+        let columns = measured.columns.unwrap_or_else(|| ColumnSums::new(0));
+        (measured.total.figures(), groups, columns.figures())
     }
 }
 
 impl RowObserver for Measure {
     type Block = BlockSums;
+    type Total = Measured;
 
     fn start(&self, _: usize, rows: usize) -> BlockSums {
         let groups = if self.whole_tensor { 1 } else { rows * self.per_row };
@@ -265,6 +277,25 @@ impl RowObserver for Measure {
         }
         block.groups = Vec::new();
     }
+
+    fn empty_total(&self, rows: usize) -> Measured {
+        let full = self.detail == Detail::Full;
+        Measured {
+            total: ErrorSums::default(),
+            columns: full.then(|| ColumnSums::new(self.cols)),
+            groups: (full && !self.whole_tensor).then(|| GroupFigures::empty(self.per_row, self.group_size, rows * self.per_row)),
+        }
+    }
+
+    fn fold(&self, measured: &mut Measured, block: BlockSums) {
+        measured.total.merge(&block.total);
+        if let (Some(columns), Some(block)) = (&mut measured.columns, &block.columns) {
+            columns.add_block(block);
+        }
+        if let (Some(groups), Some(block)) = (&mut measured.groups, &block.figures) {
+            groups.append(block);
+        }
+    }
 }
 
 fn run(
@@ -277,20 +308,20 @@ fn run(
     let (rows, cols) = (tensor.rows(), tensor.cols());
     let measure = Measure::new(recipe, cols, detail);
     let reference = calib.and_then(|c| c.reference_output(tensor.values.view()));
-    let (q, blocks) = if is_plain(recipe) {
+    let (q, observed) = if is_plain(recipe) {
         // The hot path: each row is measured while it is still in cache.
         methods::rtn_rows(tensor.values.view(), recipe, &Kept::default(), &measure, progress)?
     } else {
         let q = methods::run(tensor.values.view(), recipe, calib, reference.as_deref(), progress)?;
-        let blocks = measure.blocks(tensor.values.view(), q.dequantized.view());
-        (q, blocks)
+        let observed = measure.rows(tensor.values.view(), q.dequantized.view());
+        (q, observed)
     };
     let methods::Quantized { dequantized, params, figures: method, output: measured, column_factors, codebooks, double_quant, kept } = q;
     let output = match measured {
         Some(known) => Some(known),
         None => calib.map(|c| output_error(c, tensor.values.view(), dequantized.view(), reference.as_deref())),
     };
-    let (totals, groups, columns) = measure.finish(recipe, blocks);
+    let (totals, groups, columns) = measure.finish(observed);
     Ok(Analysis {
         recipe: *recipe,
         dequantized,

@@ -208,24 +208,24 @@ impl GroupFigures {
         }
     }
 
-    /// The figures of `parts`, consecutive rows of one grid, in order.
-    pub fn concat(per_row: usize, group_size: Option<usize>, parts: Vec<GroupFigures>) -> Self {
-        let groups = parts.iter().map(|p| p.mse.len()).sum();
-        let mut all = GroupFigures {
+    /// No groups yet, with room for `groups`.
+    pub fn empty(per_row: usize, group_size: Option<usize>, groups: usize) -> Self {
+        GroupFigures {
             rows: 0,
             per_row,
             group_size,
             mse: Vec::with_capacity(groups),
             max_abs_err: Vec::with_capacity(groups),
             rel_err: Vec::with_capacity(groups),
-        };
-        for part in parts {
-            all.rows += part.rows;
-            all.mse.extend(part.mse);
-            all.max_abs_err.extend(part.max_abs_err);
-            all.rel_err.extend(part.rel_err);
         }
-        all
+    }
+
+    /// Add the rows of `part`, the grid's next rows.
+    pub fn append(&mut self, part: &GroupFigures) {
+        self.rows += part.rows;
+        self.mse.extend_from_slice(&part.mse);
+        self.max_abs_err.extend_from_slice(&part.max_abs_err);
+        self.rel_err.extend_from_slice(&part.rel_err);
     }
 }
 
@@ -272,75 +272,60 @@ impl ColumnBlock {
 #[derive(Debug, Clone, PartialEq)]
 pub struct ColumnSums {
     rows: usize,
-    max_abs: Vec<f32>,
-    sum_sq: Vec<f64>,
-    sum_sq_err: Vec<f64>,
+    cols: usize,
+    /// Eight columns at a time, as in a block, so that adding a block is one pass of whole
+    /// vectors over both.
+    octets: Vec<ColumnOctetTotals>,
+}
+
+/// The totals of eight adjacent columns.
+#[derive(Debug, Clone, Copy, Default, PartialEq)]
+struct ColumnOctetTotals {
+    max_abs: [f32; 8],
+    sum_sq: [f64; 8],
+    sum_sq_err: [f64; 8],
 }
 
 impl ColumnSums {
     /// Empty sums for `cols` columns.
     pub fn new(cols: usize) -> Self {
-        ColumnSums { rows: 0, max_abs: vec![0.0; cols], sum_sq: vec![0.0; cols], sum_sq_err: vec![0.0; cols] }
+        ColumnSums { rows: 0, cols, octets: vec![ColumnOctetTotals::default(); cols.div_ceil(8)] }
     }
 
-    /// The sums of `blocks`, in row order, with the columns shared out among threads: each
-    /// column still adds its blocks one after another in row order, so the sums are those of one
-    /// pass over the blocks, bit for bit, whatever the number of threads.
-    pub fn of_blocks(cols: usize, blocks: &[&ColumnBlock]) -> Self {
-        /// Octets of columns per task (1024 columns: a few KiB of each block's sums).
-        const OCTETS_PER_TASK: usize = 128;
-        let octets = cols.div_ceil(8);
-        let parts = crate::rows::map_items(octets.div_ceil(OCTETS_PER_TASK), |k| {
-            let range = k * OCTETS_PER_TASK..((k + 1) * OCTETS_PER_TASK).min(octets);
-            let mut part = ColumnSums::new((range.end * 8).min(cols) - range.start * 8);
-            for block in blocks {
-                part.add_octets(&block.octets[range.clone()]);
+    /// Add the sums of the next block of rows.
+    pub fn add_block(&mut self, block: &ColumnBlock) {
+        self.rows += block.rows;
+        for (total, octet) in self.octets.iter_mut().zip(&block.octets) {
+            let (max, seen) = (total.max_abs.as_chunks_mut::<4>().0, octet.max_abs.as_chunks::<4>().0);
+            for (max, seen) in max.iter_mut().zip(seen) {
+                F32x4::load(max).max(F32x4::load(seen)).store(max);
             }
-            part
-        });
-        let mut all = ColumnSums {
-            rows: blocks.iter().map(|b| b.rows).sum(),
-            max_abs: Vec::with_capacity(cols),
-            sum_sq: Vec::with_capacity(cols),
-            sum_sq_err: Vec::with_capacity(cols),
-        };
-        for part in parts {
-            all.max_abs.extend(part.max_abs);
-            all.sum_sq.extend(part.sum_sq);
-            all.sum_sq_err.extend(part.sum_sq_err);
+            for lane in 0..8 {
+                total.sum_sq[lane] += f64::from(octet.sum_sq[lane]);
+                total.sum_sq_err[lane] += f64::from(octet.sum_sq_err[lane]);
+            }
         }
-        all
     }
 
-    /// Add the sums of one block's `octets`, the first of which holds this set's column 0.
-    fn add_octets(&mut self, octets: &[ColumnOctet]) {
-        let columns = self.max_abs.chunks_mut(8).zip(self.sum_sq.chunks_mut(8)).zip(self.sum_sq_err.chunks_mut(8));
-        for (((max, sq), err), octet) in columns.zip(octets) {
-            for (max, &m) in max.iter_mut().zip(&octet.max_abs) {
-                *max = larger(*max, m);
-            }
-            for (total, &b) in sq.iter_mut().zip(&octet.sum_sq) {
-                *total += f64::from(b);
-            }
-            for (total, &b) in err.iter_mut().zip(&octet.sum_sq_err) {
-                *total += f64::from(b);
-            }
-        }
+    /// One figure of every column.
+    fn each<T>(&self, figure: impl Fn(&ColumnOctetTotals, usize) -> T) -> Vec<T> {
+        (0..self.cols).map(|c| figure(&self.octets[c / 8], c % 8)).collect()
     }
 
     /// The finished figures.
     pub fn figures(&self) -> ColumnFigures {
         let n = self.rows.max(1) as f64;
-        let mut sorted = self.max_abs.clone();
+        let max_abs = self.each(|o, lane| o.max_abs[lane]);
+        let mut sorted = max_abs.clone();
         sorted.sort_by(f32::total_cmp);
         let median = sorted.get(sorted.len() / 2).copied().unwrap_or(0.0);
         // A tensor whose typical column is all zero still gets finite scores.
         let typical = if median > 0.0 { median } else { sorted.last().copied().filter(|&m| m > 0.0).unwrap_or(1.0) };
         ColumnFigures {
-            max_abs: self.max_abs.clone(),
-            rms: self.sum_sq.iter().map(|s| (s / n).sqrt() as f32).collect(),
-            err_rms: self.sum_sq_err.iter().map(|s| (s / n).sqrt() as f32).collect(),
-            outlier_score: self.max_abs.iter().map(|m| m / typical).collect(),
+            rms: self.each(|o, lane| (o.sum_sq[lane] / n).sqrt() as f32),
+            err_rms: self.each(|o, lane| (o.sum_sq_err[lane] / n).sqrt() as f32),
+            outlier_score: max_abs.iter().map(|m| m / typical).collect(),
+            max_abs,
         }
     }
 }
@@ -446,7 +431,9 @@ mod tests {
         sums.add_with_columns(&[-1.0, 0.5, 2.0, 1.0, 0.0], &[-1.0, 0.5, 2.0, 1.0, 0.0], &mut block, 0);
         block.end_row();
         assert_eq!(sums.count, 10);
-        let f = ColumnSums::of_blocks(5, &[&block]).figures();
+        let mut all = ColumnSums::new(5);
+        all.add_block(&block);
+        let f = all.figures();
         assert_eq!(f.max_abs, vec![1.0, 1.0, 10.0, 1.0, 1.0]);
         assert_eq!(f.outlier_score[2], 10.0);
         assert_eq!(f.outliers(), vec![2]);
@@ -470,39 +457,13 @@ mod tests {
                 }
                 block.end_row();
             }
-            ColumnSums::of_blocks(cols, &[&block]).figures()
+            let mut all = ColumnSums::new(cols);
+            all.add_block(&block);
+            all.figures()
         };
         let whole = figures(cols);
         for width in [1, 5, 8, 12, 16, 44] {
             assert_eq!(figures(width), whole, "runs of {width}");
-        }
-    }
-
-    /// Sharing the columns out among tasks gives the sums of one pass over all columns, for
-    /// column counts below, at and across the task width (1024) and not multiples of 8.
-    #[test]
-    fn column_sums_of_blocks_match_one_pass_for_odd_widths() {
-        for cols in [0usize, 1, 7, 8, 1023, 1024, 1025, 3001] {
-            let blocks: Vec<ColumnBlock> = (0..3)
-                .map(|b| {
-                    let mut block = ColumnBlock::new(cols);
-                    for r in 0..2 {
-                        let row: Vec<f32> = (0..cols).map(|c| ((b * 7 + r * 3 + c) as f32 * 0.61).sin() * 3.0).collect();
-                        let rounded: Vec<f32> = row.iter().map(|v| v.round()).collect();
-                        ErrorSums::default().add_with_columns(&row, &rounded, &mut block, 0);
-                        block.end_row();
-                    }
-                    block
-                })
-                .collect();
-            let mut one_pass = ColumnSums::new(cols);
-            for block in &blocks {
-                one_pass.add_octets(&block.octets);
-                one_pass.rows += block.rows;
-            }
-            let shared = ColumnSums::of_blocks(cols, &blocks.iter().collect::<Vec<_>>());
-            assert_eq!(shared, one_pass, "{cols} columns");
-            assert_eq!(shared.rows, 6);
         }
     }
 

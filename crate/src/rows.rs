@@ -29,33 +29,80 @@ pub fn block_count(rows: usize) -> usize {
 #[cfg(any(not(target_arch = "wasm32"), target_feature = "atomics"))]
 const PROGRESS_EVERY: std::time::Duration = std::time::Duration::from_millis(40);
 
-/// Apply `work(first_row, rows_of_out)` to every block of a row-major `[rows, cols]` buffer,
-/// returning the blocks' results in row order and calling `progress(rows done, rows)` now and
-/// then, from the calling thread.
-pub fn map_blocks_mut<T: Send, R: Send>(
+/// Apply `work(first_row, rows_of_out)` to every block of a row-major `[rows, cols]` buffer and
+/// fold each block's result into `total` with `fold`, strictly in row order, calling
+/// `progress(rows done, rows)` now and then from the calling thread.
+///
+/// A result is folded as soon as every block before it has been, by the thread that finished the
+/// block completing that sequence, while the other threads go on computing: the combining
+/// overlaps the blocks rather than following them all on one thread (a 4096 × 4096 analysis in
+/// the page had 1.5–2.7 ms of it left after the last block, 0.3–0.5 ms since). The order of the
+/// folds, and so every sum they take, is the same whatever the number of threads.
+pub fn fold_blocks_mut<T: Send, R: Send, A: Send>(
     out: &mut [T],
     cols: usize,
     progress: &mut dyn FnMut(usize, usize),
+    total: A,
     work: impl Fn(usize, &mut [T]) -> R + Sync + Send,
-) -> Vec<R> {
-    map_chunks_mut(out, cols, ROW_BLOCK, progress, work)
+    fold: impl Fn(&mut A, R) + Sync + Send,
+) -> A {
+    use std::sync::atomic::{fence, Ordering::SeqCst};
+    use std::sync::{Mutex, MutexGuard, PoisonError};
+    // A fold that panicked re-raises from the pool below, so a poisoned lock's state no longer
+    // matters.
+    fn lock<T>(m: &Mutex<T>) -> MutexGuard<'_, T> {
+        m.lock().unwrap_or_else(PoisonError::into_inner)
+    }
+    let blocks = block_count(out.len().checked_div(cols).unwrap_or(0));
+    // Each block's result waits in its slot for its turn; `folded` holds the next block to fold
+    // and the total so far.
+    let slots: Vec<Mutex<Option<R>>> = (0..blocks).map(|_| Mutex::new(None)).collect();
+    let folded = Mutex::new((0, total));
+    map_chunks_mut(out, cols, ROW_BLOCK, progress, |first, block| {
+        let result = work(first, block);
+        *lock(&slots[first / ROW_BLOCK]) = Some(result);
+        // Fold every result whose turn has come, unless another thread is folding: a thread never
+        // waits for another's fold, which then also takes this result.
+        loop {
+            // With the fence after the unlock below, either this attempt finds the lock free or
+            // the thread that held it sees this result in its slot.
+            fence(SeqCst);
+            let Ok(mut guard) = folded.try_lock() else { return };
+            let (next, total) = &mut *guard;
+            while let Some(ready) = slots.get(*next).and_then(|slot| lock(slot).take()) {
+                fold(total, ready);
+                *next += 1;
+            }
+            let next = *next;
+            drop(guard);
+            fence(SeqCst);
+            // A result left while this thread held the lock, after it looked, is folded now.
+            if !slots.get(next).is_some_and(|slot| lock(slot).is_some()) {
+                return;
+            }
+        }
+    });
+    folded.into_inner().unwrap_or_else(PoisonError::into_inner).1
 }
 
-/// Apply `work(rows)` to every block of `rows` rows, returning the results in row order and
-/// calling `progress(rows done, rows)` now and then, from the calling thread.
-pub fn map_blocks_reporting<R: Send>(
+/// [`fold_blocks_mut`] over the blocks of `rows` rows with nothing to write: `work(rows)`.
+pub fn fold_blocks<R: Send, A: Send>(
     rows: usize,
     progress: &mut dyn FnMut(usize, usize),
+    total: A,
     work: impl Fn(Range<usize>) -> R + Sync + Send,
-) -> Vec<R> {
-    // A slice of units: the blocks and progress of `map_blocks_mut`, with nothing to write (a
-    // vector of a zero-sized type allocates nothing).
+    fold: impl Fn(&mut A, R) + Sync + Send,
+) -> A {
+    // A slice of units gives the blocks and progress (a vector of a zero-sized type allocates
+    // nothing).
     let mut units = vec![(); rows];
-    map_blocks_mut(&mut units, 1, progress, |first, block| work(first..first + block.len()))
+    fold_blocks_mut(&mut units, 1, progress, total, |first, block| work(first..first + block.len()), fold)
 }
 
-/// [`map_blocks_mut`] over chunks of `chunk_rows` rows (a fixed constant of the caller, so that
-/// the split never depends on the thread count).
+/// Apply `work(first_row, rows_of_out)` to every chunk of `chunk_rows` rows (a fixed constant of
+/// the caller, so that the split never depends on the thread count) of a row-major
+/// `[rows, cols]` buffer, returning the chunks' results in row order and calling
+/// `progress(rows done, rows)` now and then, from the calling thread.
 pub fn map_chunks_mut<T: Send, R: Send>(
     out: &mut [T],
     cols: usize,
@@ -211,20 +258,35 @@ mod tests {
         }
         let mut out = vec![0f32; 130 * 3];
         let mut reported = Vec::new();
-        let seen = map_blocks_mut(&mut out, 3, &mut |done, all| reported.push((done, all)), |first, block| {
+        let seen = fold_blocks_mut(&mut out, 3, &mut |done, all| reported.push((done, all)), Vec::new(), |first, block| {
             block.fill(first as f32);
             block.len() / 3
-        });
+        }, |all, rows| all.push(rows));
         assert_eq!(seen, vec![64, 64, 2]);
         assert_eq!(reported.last(), Some(&(130, 130)));
         assert!(reported.windows(2).all(|w| w[0].0 < w[1].0));
         assert_eq!((out[0], out[64 * 3], out[129 * 3 + 2]), (0.0, 64.0, 128.0));
         for rows in [0usize, 1, 64, 130] {
             let mut reported = Vec::new();
-            let ranges = map_blocks_reporting(rows, &mut |done, all| reported.push((done, all)), |r| r);
+            let ranges = fold_blocks(rows, &mut |done, all| reported.push((done, all)), Vec::new(), |r| r, |all, r| all.push(r));
             assert_eq!(ranges, (0..block_count(rows)).map(|i| block_rows(i, rows)).collect::<Vec<_>>());
             assert_eq!(reported.last().copied(), (rows > 0).then_some((rows, rows)));
         }
+    }
+
+    /// Blocks that finish out of order (here the later ones sooner, on a pool of three threads)
+    /// are still folded in row order, each once.
+    #[test]
+    fn folds_come_in_row_order_whatever_order_blocks_finish_in() {
+        let pool = rayon::ThreadPoolBuilder::new().num_threads(3).build().unwrap();
+        let rows = 20 * ROW_BLOCK + 5;
+        let order = pool.install(|| {
+            fold_blocks(rows, &mut |_, _| {}, Vec::new(), |r| {
+                std::thread::sleep(std::time::Duration::from_micros(200 * (rows - r.start) as u64 / ROW_BLOCK as u64));
+                r.start / ROW_BLOCK
+            }, |all: &mut Vec<usize>, i| all.push(i))
+        });
+        assert_eq!(order, (0..block_count(rows)).collect::<Vec<_>>());
     }
 
     /// A block that panics reaches the caller as that panic; the caller does not wait forever
@@ -233,7 +295,7 @@ mod tests {
     fn a_panicking_block_reaches_the_caller() {
         let mut out = vec![0f32; 300 * 2];
         let outcome = std::panic::catch_unwind(std::panic::AssertUnwindSafe(|| {
-            map_blocks_mut(&mut out, 2, &mut |_, _| {}, |first, _| assert!(first != 128, "block at row 128"))
+            fold_blocks_mut(&mut out, 2, &mut |_, _| {}, (), |first, _| assert!(first != 128, "block at row 128"), |_, _| {})
         }));
         let message = outcome.expect_err("the panic is re-raised");
         let text = message.downcast_ref::<&str>().copied().or_else(|| message.downcast_ref::<String>().map(String::as_str));

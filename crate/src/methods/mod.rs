@@ -148,7 +148,7 @@ pub(crate) fn rtn_rows<O: RowObserver>(
     kept: &keep::Kept,
     observer: &O,
     progress: &mut dyn FnMut(usize, usize),
-) -> Result<(Quantized, Vec<O::Block>)> {
+) -> Result<(Quantized, O::Total)> {
     let (mut grouped, double) = round_to_nearest(w, recipe, kept, observer, Reconstruction::Keep, progress)?;
     let q = Quantized { double_quant: double, ..Quantized::plain(grouped.kept_out(), grouped.params) };
     Ok((q, grouped.observed))
@@ -160,9 +160,12 @@ pub(crate) fn rtn_observe<O: RowObserver>(
     recipe: &Recipe,
     observer: &O,
     progress: &mut dyn FnMut(usize, usize),
-) -> Result<Vec<O::Block>> {
+) -> Result<O::Total> {
     Ok(round_to_nearest(w, recipe, &keep::Kept::default(), observer, Reconstruction::Discard, progress)?.0.observed)
 }
+
+/// NF4's double-quantized block constants, when the recipe asks for them.
+type DoubleQuant = Option<DoubleQuantized>;
 
 fn round_to_nearest<O: RowObserver>(
     w: ArrayView2<f32>,
@@ -171,7 +174,7 @@ fn round_to_nearest<O: RowObserver>(
     observer: &O,
     reconstruction: Reconstruction,
     progress: &mut dyn FnMut(usize, usize),
-) -> Result<(Grouped<(), O::Block>, Option<DoubleQuantized>)> {
+) -> Result<(Grouped<(), O::Total>, DoubleQuant)> {
     let grid = Grid::new(recipe);
     let quantize = |p: GroupParams, x: &[f32], out: &mut [MaybeUninit<f32>], _| grid.write_quantized(p, x, out);
     let fit = |x: &[f32], _, _| grid.fit(x).map(|p| (p, ()));
@@ -232,11 +235,13 @@ pub fn group_width(granularity: Granularity, cols: usize) -> usize {
 }
 
 /// Sees every finished block of rows (see [`crate::rows`]), a run of whole groups at a time, and
-/// sums what it needs into one partial result per block; the caller combines the partials in
+/// sums what it needs into one partial result per block, which it then folds into its total in
 /// row order.
 pub(crate) trait RowObserver: Sync {
     /// The partial result of one block.
     type Block: Send;
+    /// What the blocks add up to.
+    type Total: Send;
     /// An empty partial result for the block of `rows` rows starting at `first_row`.
     fn start(&self, first_row: usize, rows: usize) -> Self::Block;
     /// Take in the whole groups of row `r` from column `first_col` on: the tensor's values `x`
@@ -247,14 +252,21 @@ pub(crate) trait RowObserver: Sync {
     /// Every row of the block is complete (work that belongs to the block goes here, on the
     /// thread that computed it, rather than after all blocks on one thread).
     fn end_block(&self, _block: &mut Self::Block) {}
+    /// The total before any block of a tensor of `rows` rows.
+    fn empty_total(&self, rows: usize) -> Self::Total;
+    /// Add the next block, in row order, to the total.
+    fn fold(&self, total: &mut Self::Total, block: Self::Block);
 }
 
 /// Observes nothing.
 impl RowObserver for () {
     type Block = ();
+    type Total = ();
     fn start(&self, _: usize, _: usize) {}
     fn groups(&self, _: &mut (), _: usize, _: usize, _: &[f32], _: &[f32]) {}
     fn end_row(&self, _: &mut (), _: usize) {}
+    fn empty_total(&self, _: usize) {}
+    fn fold(&self, _: &mut (), _: ()) {}
 }
 
 /// Columns a run of groups spans at most (unless one group is wider): a run's values, its
@@ -280,18 +292,18 @@ pub(crate) enum Reconstruction {
 }
 
 /// What [`quantize_groups`] produces.
-pub(crate) struct Grouped<T, B> {
+pub(crate) struct Grouped<T, O> {
     /// The reconstruction, when it was kept.
     pub out: Option<Array2<f32>>,
     /// Every group's parameters, row-major (one for a per-tensor recipe).
     pub params: Vec<GroupParams>,
     /// What the fit said about each group, in the same order.
     pub notes: Vec<T>,
-    /// The observer's partial result of each block of rows, in row order.
-    pub observed: Vec<B>,
+    /// The observer's total.
+    pub observed: O,
 }
 
-impl<T, B> Grouped<T, B> {
+impl<T, O> Grouped<T, O> {
     /// The reconstruction of a pass run with [`Reconstruction::Keep`].
     pub fn kept_out(&mut self) -> Array2<f32> {
         self.out.take().expect("the pass kept its reconstruction")
@@ -314,7 +326,7 @@ pub(crate) fn quantize_groups<T: Send, O: RowObserver>(
     observer: &O,
     reconstruction: Reconstruction,
     progress: &mut dyn FnMut(usize, usize),
-) -> Result<Grouped<T, O::Block>> {
+) -> Result<Grouped<T, O::Total>> {
     let masked = kept.masked(w);
     let source = match &masked {
         Some(m) => m.view(),
@@ -325,12 +337,16 @@ pub(crate) fn quantize_groups<T: Send, O: RowObserver>(
     let overflow = |row: usize, col: usize| move |e: ScaleOverflow| e.at(recipe.scale_dtype, row, col);
     let source = source.as_standard_layout();
     let all = source.as_slice().expect("standard layout");
-    let (whole, mut notes) = match recipe.granularity {
+    let groups = recipe.granularity.group_count(rows, cols);
+    let (mut params, mut notes) = (Vec::with_capacity(groups), Vec::with_capacity(groups));
+    let whole = match recipe.granularity {
         Granularity::Tensor => {
             let (p, note) = fit(all, 0, 0).map_err(overflow(0, 0))?;
-            (Some(p), vec![note])
+            params.push(p);
+            notes.push(note);
+            Some(p)
         }
-        _ => (None, Vec::new()),
+        _ => None,
     };
     // One block's parameters, notes and observations so far.
     type Block<T, S> = (Vec<GroupParams>, Vec<T>, S);
@@ -364,37 +380,47 @@ pub(crate) fn quantize_groups<T: Send, O: RowObserver>(
         observer.end_block(&mut block.2);
         block
     };
+    // Parameters, notes and the observer's total, each block added in row order; the first error
+    // in row order wins.
+    let total = Ok((params, notes, observer.empty_total(rows)));
+    let fold = |total: &mut Result<(Vec<GroupParams>, Vec<T>, O::Total)>, block: Result<Block<T, O::Block>>| {
+        let Ok((params, notes, observed)) = total else { return };
+        match block {
+            Ok((p, n, seen)) => {
+                params.extend(p);
+                notes.extend(n);
+                observer.fold(observed, seen);
+            }
+            Err(e) => *total = Err(e),
+        }
+    };
     // The output is written exactly once, row by row; it is never zeroed first.
     let mut out = Vec::<f32>::new();
-    let blocks = match reconstruction {
+    let total = match reconstruction {
         Reconstruction::Keep => {
             out.reserve_exact(rows * cols);
-            rows::map_blocks_mut(&mut out.spare_capacity_mut()[..rows * cols], cols, progress, |first, out_block| {
+            let work = |first, out_block: &mut [MaybeUninit<f32>]| {
                 let mut block = start(first, out_block.len() / cols);
                 for (i, out_row) in out_block.chunks_mut(cols).enumerate() {
                     quantize_row(first + i, out_row, &mut block)?;
                 }
-                Ok::<_, Error>(end(block))
-            })
+                Ok(end(block))
+            };
+            rows::fold_blocks_mut(&mut out.spare_capacity_mut()[..rows * cols], cols, progress, total, work, fold)
         }
-        Reconstruction::Discard => rows::map_blocks_reporting(rows, progress, |range| {
-            let mut block = start(range.start, range.len());
-            let mut scratch = Vec::<f32>::with_capacity(cols);
-            for r in range {
-                quantize_row(r, scratch.spare_capacity_mut(), &mut block)?;
-            }
-            Ok::<_, Error>(end(block))
-        }),
+        Reconstruction::Discard => {
+            let work = |range: std::ops::Range<usize>| {
+                let mut block = start(range.start, range.len());
+                let mut scratch = Vec::<f32>::with_capacity(cols);
+                for r in range {
+                    quantize_row(r, scratch.spare_capacity_mut(), &mut block)?;
+                }
+                Ok(end(block))
+            };
+            rows::fold_blocks(rows, progress, total, work, fold)
+        }
     };
-    let mut params = Vec::with_capacity(recipe.granularity.group_count(rows, cols));
-    params.extend(whole);
-    let mut observed = Vec::with_capacity(blocks.len());
-    for block in blocks {
-        let (p, n, seen) = block?;
-        params.extend(p);
-        notes.extend(n);
-        observed.push(seen);
-    }
+    let (params, notes, observed) = total?;
     let out = (reconstruction == Reconstruction::Keep).then(|| {
         // SAFETY: every block returned Ok, so each wrote all of its rows (see above).
         unsafe { out.set_len(rows * cols) };
