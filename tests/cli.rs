@@ -526,3 +526,18 @@ fn outputs_to_dev_null_leave_the_device_in_place() {
     assert!(std::fs::metadata("/dev/null").unwrap().file_type().is_char_device(), "/dev/null was replaced");
     assert!(std::fs::read_to_string(&csv).unwrap().starts_with("file,name,shape"));
 }
+
+/// Every command's help fits a terminal of 100 columns, its default width where none is known
+/// (common practice for command-line help): one long value list once made clap set every
+/// description one word per line.
+#[test]
+fn help_fits_a_hundred_columns() {
+    for command in [&["--help"][..], &["inspect", "--help"], &["quantize", "--help"], &["unpack", "--help"], &["sweep", "--help"], &["report", "--help"], &["demo", "--help"]] {
+        let out = Command::new(env!("CARGO_BIN_EXE_bitloupe")).args(command).env_remove("COLUMNS").output().unwrap();
+        assert!(out.status.success(), "{command:?}");
+        let help = text(&out.stdout);
+        let widest = help.lines().map(|l| l.chars().count()).max().unwrap_or(0);
+        assert!(widest <= 100, "{command:?}: a line of {widest} columns");
+        assert!(help.lines().count() < 80, "{command:?}: {} lines", help.lines().count());
+    }
+}

@@ -207,8 +207,10 @@ Per-tensor error is only a proxy: check any recipe on the model's own task befor
     /// Recipe flags; anything left out takes the core's default.
     #[derive(Args)]
     struct RecipeArgs {
-        /// Number format of the elements; the other flags default to the format's usual choice.
-        #[arg(long, value_name = "int|nf4|e2m1|e2m3|e3m2|e4m3|e5m2|mxfp4|mxfp6e2m3|mxfp6e3m2|mxfp8e4m3|mxfp8e5m2|mxint8|codebook")]
+        /// Number format of the elements: int, nf4, e2m1, e2m3, e3m2, e4m3, e5m2, mxfp4, mxfp6e2m3,
+        /// mxfp6e3m2, mxfp8e4m3, mxfp8e5m2, mxint8 or codebook; the other flags default to the
+        /// format's usual choice.
+        #[arg(long, value_name = "FORMAT")]
         format: Option<String>,
         /// NF4: quantize the block scales again (8-bit, blocks of 256).
         #[arg(long)]
