@@ -165,13 +165,25 @@ function buildControls(defaults) {
     showDependentControls();
     analyze();
   });
-  const controls = ['double-quant', 'bits', 'granularity', 'symmetric', 'scale-dtype', 'method', 'damp', 'act-order', 'awq-clip', 'keep', 'keep-cols', 'keep-frac', 'smooth-on', 'smooth-alpha'];
+  const controls = ['double-quant', 'bits', 'granularity', 'symmetric', 'scale-dtype', 'method', 'damp', 'act-order', 'awq-clip', 'keep', 'keep-frac', 'smooth-on', 'smooth-alpha'];
   for (const id of controls) {
     $(id).addEventListener('change', () => {
       showDependentControls();
       analyze();
     });
   }
+  // A count the recipe cannot hold is refused here: 0 would mean keeping no column at all.
+  $('keep-cols').addEventListener('change', () => {
+    const typed = $('keep-cols').value;
+    const count = Number(typed);
+    if (typed.trim() === '' || !Number.isInteger(count) || count < 1) {
+      $('keep-cols').value = keptColumns;
+      showMessage('recipe-message', `The number of columns kept must be a whole number of at least 1${typed.trim() ? `, not ${typed}` : ''}; it is back to ${keptColumns}.`);
+      return;
+    }
+    keptColumns = typed;
+    analyze();
+  });
   $('smooth-alpha').addEventListener('input', () => {
     $('smooth-alpha-out').textContent = `α ${Number($('smooth-alpha').value).toFixed(2)}`;
     showSmoothedColumns();
@@ -196,6 +208,9 @@ function showDependentControls() {
   $('smooth-alpha').disabled = !$('smooth-on').checked && !state.calib;
 }
 
+/** The last count of kept columns that was valid, to put back a refused one. */
+let keptColumns = $('keep-cols').value;
+
 function readRecipe() {
   const g = $('granularity').value;
   const keep = $('keep').value;
@@ -211,7 +226,7 @@ function readRecipe() {
     act_order: $('act-order').checked,
     awq_clip: $('awq-clip').checked,
     smooth: $('smooth-on').checked ? Number($('smooth-alpha').value) : null,
-    keep_cols: keep === 'cols' ? Math.max(1, Math.round(Number($('keep-cols').value))) : 0,
+    keep_cols: keep === 'cols' ? Number($('keep-cols').value) : 0,
     keep_frac: keep === 'frac' ? Number($('keep-frac').value) / 100 : 0,
   };
 }
@@ -235,7 +250,7 @@ function setRecipe(recipe) {
   $('smooth-on').checked = recipe.smooth !== null;
   if (recipe.smooth !== null) $('smooth-alpha').value = String(recipe.smooth);
   $('keep').value = recipe.keep_cols > 0 ? 'cols' : recipe.keep_frac > 0 ? 'frac' : 'none';
-  if (recipe.keep_cols > 0) $('keep-cols').value = String(recipe.keep_cols);
+  if (recipe.keep_cols > 0) $('keep-cols').value = keptColumns = String(recipe.keep_cols);
   // The core holds the fraction in f32: 0.5 % comes back as 0.4999999888 % without the rounding.
   if (recipe.keep_frac > 0) $('keep-frac').value = String(Number((recipe.keep_frac * 100).toPrecision(6)));
 }

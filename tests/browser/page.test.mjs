@@ -56,6 +56,30 @@ test('changing the recipe re-runs the analysis and changes the figures', async (
   await context.close();
 });
 
+test('a count of kept columns that is not a whole number of at least 1 is refused and put back', async () => {
+  const { page, context } = await withDemo();
+  const before = await page.textContent('#status');
+  await page.selectOption('#keep', 'cols');
+  await waitForAnalysis(page, before);
+  const kept = await page.textContent('#status');
+  assert.match(kept, /keep 8 col/);
+  for (const typed of ['0', '2.5', '-3']) {
+    await page.fill('#keep-cols', typed);
+    await page.press('#keep-cols', 'Enter');
+    await page.waitForFunction(() => !document.getElementById('recipe-message').hidden);
+    assert.match(await page.textContent('#recipe-message'), new RegExp(`whole number of at least 1, not ${typed.replace('.', '\\.')}; it is back to 8`));
+    assert.equal(await page.inputValue('#keep-cols'), '8');
+  }
+  await shot(page, '03b-keep-cols-refused');
+  assert.equal(await page.textContent('#status'), kept, 'no run started');
+  await page.fill('#keep-cols', '3');
+  await page.press('#keep-cols', 'Enter');
+  await waitForAnalysis(page, kept);
+  assert.match(await page.textContent('#status'), /keep 3 col/);
+  assert.equal(await page.isHidden('#recipe-message'), true);
+  await context.close();
+});
+
 test('hovering the error map shows a group and clicking picks it', async () => {
   const { page, context } = await withDemo();
   const box = await page.locator('#error-map').boundingBox();
