@@ -110,6 +110,10 @@ impl Calibration {
             return Err(bad(format!("it has {width} columns but the weight has {cols} input columns")));
         }
         match kind {
+            // A vector could be one token or one statistic per column: that is the user's to say.
+            CalibKind::Sample if tensor.shape.len() == 1 => Err(bad(format!(
+                "a sample has two dimensions [tokens, {cols}], and this is one vector of {cols} values: read it as per-column statistics (max |x| or mean |x|), or save one token as shape [1, {cols}]"
+            ))),
             CalibKind::Sample => Ok(Self::from_sample(tensor.values.clone())),
             CalibKind::MaxAbs | CalibKind::MeanAbs => {
                 if tensor.rows() != 1 {
@@ -260,6 +264,10 @@ mod tests {
         let mut cube = tensor(vec![1.0; 6], (2, 3));
         cube.shape = vec![1, 2, 3];
         assert!(err(&cube, CalibKind::Sample).contains("flatten batch and sequence"));
+        let mut vector = tensor(vec![1.0, 2.0, 3.0], (1, 3));
+        vector.shape = vec![3];
+        assert!(err(&vector, CalibKind::Sample).contains("read it as per-column statistics"));
+        assert!(Calibration::from_tensor(&vector, CalibKind::MaxAbs, 3).is_ok());
     }
 
     #[test]
