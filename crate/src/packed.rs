@@ -122,13 +122,24 @@ fn read_bits(stream: &[u8], at: &mut usize, bits: u32) -> Result<u32> {
     Ok(value)
 }
 
-fn scale_bytes(dtype: ScaleDType, values: &[f32]) -> (&'static str, Vec<u8>) {
+/// The safetensors dtype that values stored as `dtype` are declared with.
+fn scale_label(dtype: ScaleDType) -> &'static str {
     match dtype {
-        ScaleDType::F16 => ("F16", values.iter().flat_map(|v| f16::from_f32(*v).to_le_bytes()).collect()),
-        ScaleDType::BF16 => ("BF16", values.iter().flat_map(|v| bf16::from_f32(*v).to_le_bytes()).collect()),
-        ScaleDType::F32 => ("F32", values.iter().flat_map(|v| v.to_le_bytes()).collect()),
-        ScaleDType::E8M0 => ("U8", values.iter().map(|v| (v.log2().round() as i32 + 127).clamp(0, 254) as u8).collect()),
+        ScaleDType::F16 => "F16",
+        ScaleDType::BF16 => "BF16",
+        ScaleDType::F32 => "F32",
+        ScaleDType::E8M0 => "U8",
     }
+}
+
+fn scale_bytes(dtype: ScaleDType, values: &[f32]) -> (&'static str, Vec<u8>) {
+    let bytes = match dtype {
+        ScaleDType::F16 => values.iter().flat_map(|v| f16::from_f32(*v).to_le_bytes()).collect(),
+        ScaleDType::BF16 => values.iter().flat_map(|v| bf16::from_f32(*v).to_le_bytes()).collect(),
+        ScaleDType::F32 => values.iter().flat_map(|v| v.to_le_bytes()).collect(),
+        ScaleDType::E8M0 => values.iter().map(|v| (v.log2().round() as i32 + 127).clamp(0, 254) as u8).collect(),
+    };
+    (scale_label(dtype), bytes)
 }
 
 fn scale_values(dtype: ScaleDType, bytes: &[u8]) -> Vec<f32> {
@@ -300,15 +311,21 @@ pub fn unpack<S: ByteSource + ?Sized>(src: &S) -> Result<(Vec<usize>, Array2<f32
         return Err(bad(format!("the shape {shape:?} holds no elements")));
     }
     let entries = read_header(src)?;
-    let raw = |name: &str| -> Result<Option<Vec<u8>>> {
+    // Each part must be declared with the type the layout stores it in: bytes of another type
+    // would be read as something they are not.
+    let raw = |name: &str, dtype: &str| -> Result<Option<Vec<u8>>> {
         match entries.iter().find(|e| e.name == name) {
+            Some(e) if e.dtype_label != dtype => {
+                Err(bad(format!("the '{name}' tensor is declared as {}, but this layout stores it as {dtype}", e.dtype_label)))
+            }
             Some(e) => Ok(Some(read_range(src, e.offset, e.bytes, "packed tensor")?)),
             None => Ok(None),
         }
     };
-    let need = |name: &str| -> Result<Vec<u8>> { raw(name)?.ok_or_else(|| bad(format!("the '{name}' tensor is missing"))) };
+    let need = |name: &str, dtype: &str| -> Result<Vec<u8>> { raw(name, dtype)?.ok_or_else(|| bad(format!("the '{name}' tensor is missing"))) };
+    let floats = |name: &str, dtype: ScaleDType| -> Result<Vec<f32>> { Ok(scale_values(dtype, &need(name, scale_label(dtype))?)) };
     let groups = recipe.granularity.group_count(rows, cols);
-    let codes = need("codes")?;
+    let codes = need("codes", "U8")?;
     // rows × cols ≤ MAX_ELEMENTS (view_2d), at most 8 bits each: within 64 bits, and checked
     // for 32-bit wasm.
     let expected_code_bytes = (rows * cols).checked_mul(Codec::new(&recipe).bits as usize).ok_or_else(|| bad("the code count overflows"))?.div_ceil(8);
@@ -318,7 +335,7 @@ pub fn unpack<S: ByteSource + ?Sized>(src: &S) -> Result<(Vec<usize>, Array2<f32
     let mut codebooks = Vec::new();
     let mut scales = vec![1.0f32; groups];
     if recipe.format == Format::Codebook {
-        let levels = scale_values(ScaleDType::F16, &need("codebook")?);
+        let levels = floats("codebook", ScaleDType::F16)?;
         let per = 1usize << recipe.bits;
         if Some(levels.len()) != per.checked_mul(groups) {
             return Err(bad("the codebook does not match the recipe"));
@@ -326,24 +343,24 @@ pub fn unpack<S: ByteSource + ?Sized>(src: &S) -> Result<(Vec<usize>, Array2<f32
         codebooks = levels.chunks(per).map(<[f32]>::to_vec).collect();
     } else if recipe.double_quant {
         let dq = DoubleQuantized {
-            codes: need("scale_codes")?.into_iter().map(|b| b as i8).collect(),
-            steps: scale_values(ScaleDType::F32, &need("scale_steps")?),
-            mean: *scale_values(ScaleDType::F32, &need("scale_mean")?).first().ok_or_else(|| bad("empty scale mean"))?,
+            codes: need("scale_codes", "I8")?.into_iter().map(|b| b as i8).collect(),
+            steps: floats("scale_steps", ScaleDType::F32)?,
+            mean: *floats("scale_mean", ScaleDType::F32)?.first().ok_or_else(|| bad("empty scale mean"))?,
         };
         if dq.codes.len() != groups || dq.steps.len() != groups.div_ceil(crate::cost::DOUBLE_QUANT_BLOCK as usize) {
             return Err(bad("the double-quantized scales do not match the recipe"));
         }
         scales = dq.scales();
     } else {
-        scales = scale_values(recipe.scale_dtype, &need("scales")?);
+        scales = floats("scales", recipe.scale_dtype)?;
     }
     if scales.len() != groups.max(1) && recipe.format != Format::Codebook {
         return Err(bad(format!("{} scales for {groups} groups", scales.len())));
     }
     let zeros: Vec<f32> = match (recipe.format, recipe.symmetric, recipe.method) {
-        (Format::Int, false, Method::Hqq) => scale_values(recipe.scale_dtype, &need("zeros")?),
+        (Format::Int, false, Method::Hqq) => floats("zeros", recipe.scale_dtype)?,
         (Format::Int, false, _) => {
-            let stream = need("zeros")?;
+            let stream = need("zeros", "U8")?;
             let bits = u32::from(recipe.bits);
             let mut at = 0;
             (0..groups).map(|_| read_bits(&stream, &mut at, bits).map(|z| z as f32)).collect::<Result<_>>()?
@@ -355,12 +372,12 @@ pub fn unpack<S: ByteSource + ?Sized>(src: &S) -> Result<(Vec<usize>, Array2<f32
     }
     let params: Vec<GroupParams> = scales.iter().zip(&zeros).map(|(&scale, &zero)| GroupParams { scale, zero }).collect();
     let u32s = |bytes: Vec<u8>| -> Vec<usize> { bytes.chunks_exact(4).map(|b| u32::from_le_bytes([b[0], b[1], b[2], b[3]]) as usize).collect() };
-    let kept_columns = raw("kept_columns")?.map(u32s).unwrap_or_default();
-    let kept_index = raw("kept_index")?.map(u32s).unwrap_or_default();
+    let kept_columns = raw("kept_columns", "U32")?.map(u32s).unwrap_or_default();
+    let kept_index = raw("kept_index", "U32")?.map(u32s).unwrap_or_default();
     if kept_columns.iter().any(|&c| c >= cols) || kept_index.iter().any(|&i| i >= rows * cols) {
         return Err(bad("a kept index lies outside the tensor"));
     }
-    let kept_values = raw("kept_values")?.map(|b| scale_values(ScaleDType::F16, &b)).unwrap_or_default();
+    let kept_values = raw("kept_values", "F16")?.map(|b| scale_values(ScaleDType::F16, &b)).unwrap_or_default();
     // Counted before the positions are listed: a few kept columns repeated many times over a
     // tall tensor would otherwise list far more positions than the file holds values.
     let kept_count = kept_columns.len().checked_mul(rows).and_then(|n| n.checked_add(kept_index.len()));
@@ -368,7 +385,7 @@ pub fn unpack<S: ByteSource + ?Sized>(src: &S) -> Result<(Vec<usize>, Array2<f32
         return Err(bad("kept values and their positions differ in number"));
     }
     let kept_positions = kept_positions(&kept_columns, &kept_index, rows, cols);
-    let column_factors = raw("column_factors")?.map(|b| scale_values(ScaleDType::F32, &b));
+    let column_factors = raw("column_factors", "F32")?.map(|b| scale_values(ScaleDType::F32, &b));
     if column_factors.as_ref().is_some_and(|s| s.len() != cols) {
         return Err(bad("column factors do not match the columns"));
     }
@@ -514,5 +531,11 @@ mod tests {
         let zero_factor = forged(&Recipe { smooth: Some(0.5), ..row }, "[2, 2]", &[codes(), scales(0x3c00), factors]);
         assert!(unpack(&zero_factor[..]).unwrap_err().to_string().contains("not finite at row 0, column 1"));
         assert!(unpack(&forged(&row, "[2, 2]", &[codes(), scales(0x3c00)])[..]).is_ok());
+        // The same two f16 scales declared as bf16: the recipe says f16, so the bytes would be
+        // read as the wrong type.
+        let mut as_bf16 = scales(0x3c00);
+        as_bf16.dtype = "BF16";
+        let mistyped = forged(&row, "[2, 2]", &[codes(), as_bf16]);
+        assert!(unpack(&mistyped[..]).unwrap_err().to_string().contains("'scales' tensor is declared as BF16, but this layout stores it as F16"));
     }
 }
