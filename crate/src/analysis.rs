@@ -463,6 +463,16 @@ mod tests {
         let g = Recipe { granularity: Granularity::Group(8), ..Recipe::default() };
         assert!(matches!(analyze(&big, &g), Err(Error::ScaleOverflow { row: 0, col: 8, .. })));
         assert!(analyze(&t, &Recipe { bits: 12, ..Recipe::default() }).is_err());
+        // Codebook levels are stored in f16 (largest 65504, IEEE 754 binary16): a level past it
+        // is refused, one below it stays.
+        let mut wide = tensor(2, 16, 3);
+        wide.values[[1, 4]] = 1e6;
+        let row_books = Recipe { format: Format::Codebook, bits: 2, granularity: Granularity::Row, ..Recipe::default() };
+        assert!(matches!(analyze(&wide, &row_books), Err(Error::LevelOverflow { row: Some(1), max_abs: 1e6 })));
+        let one_book = Recipe { granularity: Granularity::Tensor, ..row_books };
+        assert!(matches!(analyze(&wide, &one_book), Err(Error::LevelOverflow { row: None, .. })));
+        wide.values[[1, 4]] = 6e4;
+        assert!(analyze(&wide, &row_books).unwrap().totals.mse.is_finite());
     }
 
     #[test]

@@ -110,6 +110,13 @@ pub enum Error {
         /// The scale fits its type, but the grid's far end passes the largest f32.
         beyond_f32: bool,
     },
+    /// A codebook whose levels cannot be stored in the f16 that codebooks keep them in.
+    LevelOverflow {
+        /// The row whose codebook it is, or `None` for one codebook of the whole tensor.
+        row: Option<usize>,
+        /// The largest |value| the codebook was fitted to.
+        max_abs: f32,
+    },
 }
 
 /// Writes through to a formatter on one line: messages quote text from files, pastes and
@@ -181,6 +188,17 @@ impl fmt::Display for Error {
                 "the scale {scale:e} needed at row {row}, column {col} overflows {dtype}; \
                  choose a wider scale type (bf16 or f32)"
             ),
+            Error::LevelOverflow { row, max_abs } => {
+                match row {
+                    Some(row) => write!(f, "the codebook of row {row}")?,
+                    None => write!(f, "the tensor's codebook")?,
+                }
+                write!(
+                    f,
+                    " has a level beyond the largest f16 (65504) that codebook levels are stored in (its \
+                     values reach {max_abs:e}); use a grid format, whose scales can be bf16 or f32"
+                )
+            }
         }
     }
 }

@@ -210,14 +210,22 @@ pub fn codebooks(w: ArrayView2<f32>, recipe: &Recipe, kept: &keep::Kept) -> Resu
         }
     };
     let all = source.as_slice().expect("standard layout");
+    // Levels beyond f16 are stored as infinities, which no error figure could survive.
+    let fit = |values: &[f32], row: Option<usize>| {
+        let levels = codebook::fit(values, count).levels;
+        match levels.iter().all(|l| l.is_finite()) {
+            true => Ok(levels),
+            false => Err(Error::LevelOverflow { row, max_abs: values.iter().fold(0f32, |m, v| m.max(v.abs())) }),
+        }
+    };
     if recipe.granularity == Granularity::Tensor {
-        let book = codebook::fit(all, count).levels;
+        let book = fit(all, None)?;
         fill(all, out.as_slice_mut().expect("row-major"), &book);
         books.push(book);
     } else {
-        for (x, mut o) in source.rows().into_iter().zip(out.rows_mut()) {
+        for (r, (x, mut o)) in source.rows().into_iter().zip(out.rows_mut()).enumerate() {
             let x = x.to_slice().expect("standard layout");
-            let book = codebook::fit(x, count).levels;
+            let book = fit(x, Some(r))?;
             fill(x, o.as_slice_mut().expect("row-major"), &book);
             books.push(book);
         }
