@@ -267,7 +267,7 @@ async function open(label, type, payload, what) {
   showMessage('input-message', '');
   const started = performance.now();
   try {
-    const result = await task(label, type, { ...payload, recipe: readRecipe() }, 'open');
+    const result = await task(label, type, { ...payload, recipe: readRecipe(), view: resultView(true) }, 'open');
     if (!result) return;
     state.info = result.info;
     showInfo(result.info);
@@ -528,7 +528,7 @@ async function analyze() {
   showMessage('recipe-message', '');
   const started = performance.now();
   try {
-    const result = await task('Quantizing', 'analyze', { recipe: readRecipe() }, 'analyze');
+    const result = await task('Quantizing', 'analyze', { recipe: readRecipe(), view: resultView(!state.result) }, 'analyze');
     if (result) {
       // Fresh when no results stand (a new tensor whose first recipe failed): nothing to keep.
       showResults(result, { fresh: !state.result });
@@ -693,20 +693,21 @@ function showResults(result, { fresh }) {
   drawBudget(s.cost);
   $('caution').textContent = s.caution;
 
-  const groups = result.groupMse.length;
-  if (fresh || state.selectedGroup === null || state.selectedGroup >= groups) {
-    state.selectedGroup = worstGroup(result.groupMse);
+  // The worker kept the selected group while it exists and chose the worst one otherwise; a new
+  // selection starts from the largest outlier column too.
+  if (fresh || result.group !== state.selectedGroup) {
     state.selectedColumn = s.outlier_columns.length ? s.outlier_columns[0].column : null;
   }
+  state.selectedGroup = result.group;
   map.setSelectedGroup($('map-metric').value === 'out' ? null : state.selectedGroup);
   selectColumn(state.selectedColumn);
-  showHistogram(state.selectedGroup);
+  drawHistogram(result.histogram);
 }
 
-function worstGroup(values) {
-  let best = 0;
-  for (let i = 1; i < values.length; i++) if (values[i] > values[best]) best = i;
-  return best;
+/** The histogram a result brings: that of the selected group, or for a fresh result (`fresh`) of
+ * the group with the largest error. */
+function resultView(fresh) {
+  return { group: fresh ? null : state.selectedGroup, bins: HISTOGRAM_BINS };
 }
 
 const METRICS = {
@@ -802,14 +803,17 @@ function selectGroup(index) {
 async function showHistogram(index) {
   if (index === null || !state.result) return;
   try {
-    const h = await bridge.request('histogram', { index, bins: HISTOGRAM_BINS });
-    histogram.setData(h);
-    const rows = h.rows[1] - h.rows[0] > 1 ? `rows ${h.rows[0]}–${h.rows[1] - 1}` : `row ${h.rows[0]}`;
-    const what = h.scaled ? 'Values × their column factors (what the grid saw)' : 'Values';
-    $('hist-caption').textContent = `${what} of the group at ${rows}, columns ${h.cols[0]}–${h.cols[1] - 1}; vertical lines are its ${h.grid.length} grid levels.`;
+    drawHistogram(await bridge.request('histogram', { index, bins: HISTOGRAM_BINS }));
   } catch (err) {
     if (!(err instanceof Cancelled)) $('hist-caption').textContent = `No histogram: ${err.message}`;
   }
+}
+
+function drawHistogram(h) {
+  histogram.setData(h);
+  const rows = h.rows[1] - h.rows[0] > 1 ? `rows ${h.rows[0]}–${h.rows[1] - 1}` : `row ${h.rows[0]}`;
+  const what = h.scaled ? 'Values × their column factors (what the grid saw)' : 'Values';
+  $('hist-caption').textContent = `${what} of the group at ${rows}, columns ${h.cols[0]}–${h.cols[1] - 1}; vertical lines are its ${h.grid.length} grid levels.`;
 }
 
 function selectColumn(col) {

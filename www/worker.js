@@ -20,8 +20,20 @@ function replace(handle, next) {
   return next;
 }
 
-/** Plain figures of an analysis, with its typed arrays listed for transfer. */
-function analysisResult(a) {
+/**
+ * The group whose histogram comes with a result: the one the page shows while it exists, else
+ * the one with the largest error. It comes with the result, not as a request of its own, so that
+ * it never waits behind a request sent meanwhile (a sweep clicked while a tensor opens).
+ */
+function shownGroup(groupMse, asked) {
+  if (asked !== null && asked < groupMse.length) return asked;
+  let worst = 0;
+  for (let i = 1; i < groupMse.length; i++) if (groupMse[i] > groupMse[worst]) worst = i;
+  return worst;
+}
+
+/** Plain figures of an analysis and the histogram `view` asks for, typed arrays listed for transfer. */
+function analysisResult(a, view) {
   const arrays = {
     groupMse: a.groupMse(),
     groupRelErr: a.groupRelErr(),
@@ -31,7 +43,9 @@ function analysisResult(a) {
     columnOutlierScore: a.columnOutlierScore(),
     outputRowErr: a.outputRowErr(),
   };
-  return { value: { summary: a.summary(), ...arrays }, transfer: Object.values(arrays).map((x) => x.buffer) };
+  const group = shownGroup(arrays.groupMse, view.group);
+  const histogram = tensor.groupHistogram(a, group, view.bins);
+  return { value: { summary: a.summary(), group, histogram, ...arrays }, transfer: Object.values(arrays).map((x) => x.buffer) };
 }
 
 /** Run a recipe on a tensor with the calibration, when there is one. */
@@ -44,7 +58,7 @@ function run(t, recipe, progress) {
  * because of NaN or infinite values is refused like a bad file (with the core's count and
  * place), so the tensor on screen, its result and the calibration stay.
  */
-function openAndAnalyze(open, recipe, progress) {
+function openAndAnalyze(open, recipe, view, progress) {
   const next = open();
   const info = next.info();
   if (info.nan + info.inf > 0) {
@@ -74,7 +88,7 @@ function openAndAnalyze(open, recipe, progress) {
     recipeError = message(err);
   }
   if (!analysis) return { value: { info, recipeError, calibDropped } };
-  const out = analysisResult(analysis);
+  const out = analysisResult(analysis, view);
   return { value: { info, calibDropped, ...out.value }, transfer: out.transfer };
 }
 
@@ -139,14 +153,14 @@ const handlers = {
   list({ file, bf16 }) {
     return { value: core.listFile(file, bf16) };
   },
-  openDemo({ recipe }, progress) {
-    return openAndAnalyze(() => core.demoWeight(), recipe, progress);
+  openDemo({ recipe, view }, progress) {
+    return openAndAnalyze(() => core.demoWeight(), recipe, view, progress);
   },
-  openFile({ file, name, bf16, recipe }, progress) {
-    return openAndAnalyze(() => core.openFile(file, name ?? undefined, bf16), recipe, progress);
+  openFile({ file, name, bf16, recipe, view }, progress) {
+    return openAndAnalyze(() => core.openFile(file, name ?? undefined, bf16), recipe, view, progress);
   },
-  openText({ text, recipe }, progress) {
-    return openAndAnalyze(() => core.parseText(text), recipe, progress);
+  openText({ text, recipe, view }, progress) {
+    return openAndAnalyze(() => core.parseText(text), recipe, view, progress);
   },
   calibFile({ file, name, kind, bf16 }) {
     return setCalibration(() => core.calibrationFromFile(file, name ?? undefined, kind, tensorCols(), bf16));
@@ -166,11 +180,11 @@ const handlers = {
     if (!tensor || !calib) throw new Error('smoothing needs calibration data');
     return { value: tensor.smoothedColumns(calib, alpha) };
   },
-  analyze({ recipe }, progress) {
+  analyze({ recipe, view }, progress) {
     if (!tensor) throw new Error('open a tensor first');
     const next = run(tensor, recipe, progress);
     analysis = replace(analysis, next);
-    return analysisResult(next);
+    return analysisResult(next, view);
   },
   sweep({ spec, by }, progress) {
     if (!tensor) throw new Error('open a tensor first');
