@@ -467,6 +467,37 @@ mod tests {
         }
     }
 
+    /// Blocks added one after another give each column's largest magnitude exactly and its RMS
+    /// and error RMS as computed directly (to f32 rounding), for widths of 0, 1, under, at and
+    /// across an octet of columns.
+    #[test]
+    fn column_sums_over_blocks_match_a_direct_computation_for_odd_widths() {
+        for cols in [0usize, 1, 7, 8, 9, 45, 1025] {
+            let value = |r: usize, c: usize| ((r * 31 + c * 7) as f32 * 0.61).sin() * 3.0;
+            let mut all = ColumnSums::new(cols);
+            for b in 0..3 {
+                let mut block = ColumnBlock::new(cols);
+                for r in 2 * b..2 * b + 2 {
+                    let row: Vec<f32> = (0..cols).map(|c| value(r, c)).collect();
+                    let rounded: Vec<f32> = row.iter().map(|v| v.round()).collect();
+                    ErrorSums::default().add_with_columns(&row, &rounded, &mut block, 0);
+                    block.end_row();
+                }
+                all.add_block(&block);
+            }
+            let f = all.figures();
+            assert_eq!(f.max_abs.len(), cols);
+            for c in 0..cols {
+                let column: Vec<f64> = (0..6).map(|r| f64::from(value(r, c))).collect();
+                let rms = (column.iter().map(|v| v * v).sum::<f64>() / 6.0).sqrt();
+                let err_rms = (column.iter().map(|v| (v - v.round()).powi(2)).sum::<f64>() / 6.0).sqrt();
+                assert_eq!(f64::from(f.max_abs[c]), column.iter().fold(0f64, |m, v| m.max(v.abs())), "{cols} columns, column {c}");
+                assert!((f64::from(f.rms[c]) - rms).abs() <= 1e-6 * rms, "{cols} columns, column {c}");
+                assert!((f64::from(f.err_rms[c]) - err_rms).abs() <= 1e-6 * err_rms.max(1e-30), "{cols} columns, column {c}");
+            }
+        }
+    }
+
     #[test]
     fn histograms_count_every_finite_value_once() {
         let values = [0.0f32, 1.0, 2.0, 3.0, 4.0, f32::NAN];
