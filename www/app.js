@@ -693,15 +693,18 @@ function showResults(result, { fresh }) {
   drawBudget(s.cost);
   $('caution').textContent = s.caution;
 
-  // The worker kept the selected group while it exists and chose the worst one otherwise; a new
-  // selection starts from the largest outlier column too.
-  if (fresh || result.group !== state.selectedGroup) {
+  // A selection stays while its group exists; otherwise the worker chose the worst group, and
+  // the column selection starts from the largest outlier.
+  if (fresh || state.selectedGroup === null || state.selectedGroup >= result.groupMse.length) {
+    state.selectedGroup = result.group;
     state.selectedColumn = s.outlier_columns.length ? s.outlier_columns[0].column : null;
   }
-  state.selectedGroup = result.group;
   map.setSelectedGroup($('map-metric').value === 'out' ? null : state.selectedGroup);
   selectColumn(state.selectedColumn);
-  drawHistogram(result.histogram);
+  // The result brings the histogram of the group selected when it was asked for; a group clicked
+  // while it ran is asked for now.
+  if (state.selectedGroup === result.group) drawHistogram(result.histogram);
+  else showHistogram(state.selectedGroup);
 }
 
 /** The histogram a result brings: that of the selected group, or for a fresh result (`fresh`) of
