@@ -322,8 +322,12 @@ pub fn unpack<S: ByteSource + ?Sized>(src: &S) -> Result<(Vec<usize>, Array2<f32
             None => Ok(None),
         }
     };
-    let need = |name: &str, dtype: &str| -> Result<Vec<u8>> { raw(name, dtype)?.ok_or_else(|| bad(format!("the '{name}' tensor is missing"))) };
-    let floats = |name: &str, dtype: ScaleDType| -> Result<Vec<f32>> { Ok(scale_values(dtype, &need(name, scale_label(dtype))?)) };
+    let missing = |name: &str| bad(format!("the '{name}' tensor is missing"));
+    let need = |name: &str, dtype: &str| -> Result<Vec<u8>> { raw(name, dtype)?.ok_or_else(|| missing(name)) };
+    let maybe_floats = |name: &str, dtype: ScaleDType| -> Result<Option<Vec<f32>>> {
+        Ok(raw(name, scale_label(dtype))?.map(|b| scale_values(dtype, &b)))
+    };
+    let floats = |name: &str, dtype: ScaleDType| -> Result<Vec<f32>> { maybe_floats(name, dtype)?.ok_or_else(|| missing(name)) };
     let groups = recipe.granularity.group_count(rows, cols);
     let codes = need("codes", "U8")?;
     // rows × cols ≤ MAX_ELEMENTS (view_2d), at most 8 bits each: within 64 bits, and checked
@@ -377,7 +381,7 @@ pub fn unpack<S: ByteSource + ?Sized>(src: &S) -> Result<(Vec<usize>, Array2<f32
     if kept_columns.iter().any(|&c| c >= cols) || kept_index.iter().any(|&i| i >= rows * cols) {
         return Err(bad("a kept index lies outside the tensor"));
     }
-    let kept_values = raw("kept_values", "F16")?.map(|b| scale_values(ScaleDType::F16, &b)).unwrap_or_default();
+    let kept_values = maybe_floats("kept_values", ScaleDType::F16)?.unwrap_or_default();
     // Counted before the positions are listed: a few kept columns repeated many times over a
     // tall tensor would otherwise list far more positions than the file holds values.
     let kept_count = kept_columns.len().checked_mul(rows).and_then(|n| n.checked_add(kept_index.len()));
@@ -385,7 +389,7 @@ pub fn unpack<S: ByteSource + ?Sized>(src: &S) -> Result<(Vec<usize>, Array2<f32
         return Err(bad("kept values and their positions differ in number"));
     }
     let kept_positions = kept_positions(&kept_columns, &kept_index, rows, cols);
-    let column_factors = raw("column_factors", "F32")?.map(|b| scale_values(ScaleDType::F32, &b));
+    let column_factors = maybe_floats("column_factors", ScaleDType::F32)?;
     if column_factors.as_ref().is_some_and(|s| s.len() != cols) {
         return Err(bad("column factors do not match the columns"));
     }
