@@ -11,13 +11,14 @@
 //    native `bitloupe quantize` command (BITLOUPE_BIN) on the same files, both on all cores.
 // 4. The worker pool: the compute time of round to nearest (per recipe change and in a sweep) and
 //    of HQQ on the 4096 × 4096 weight, and of round to nearest on the 4096 × 14336 f16 layer of
-//    case 5, with one pool worker and with one per core, and their ratio.
+//    case 5, with one pool worker and with one per core (two pages side by side, taking turns
+//    run by run), and their ratio.
 // 5. A 4096 × 14336 f16 `.safetensors` file (one tensor): the time from choosing it to the
 //    drawn error map.
 // 6. The control for case 4, after the browser has closed: the native `bench_case` example
 //    (BENCH_CASE) on the 4096 × 4096 weight, one thread and all cores, back to back and with the
-//    page's pause before each run, in the same rounds; so the table shows how much of the pool's
-//    figures is the machine rather than the browser.
+//    page's pause before each run, the thread counts taking turns; so the table shows how much of
+//    the pool's figures is the machine rather than the browser.
 import { mkdirSync, writeFileSync, openSync, ftruncateSync, closeSync, writeSync } from 'node:fs';
 import { execFileSync } from 'node:child_process';
 import os from 'node:os';
@@ -161,74 +162,97 @@ f16Safetensors(wideFile, 'model.block.0.mlp.down.weight', 4096, 14336);
 
 // The worker pool: one pool worker against one per core, on the same files and recipes, in the
 // page as a user works it. Per change: the compute time of a recipe change (a pause, the change,
-// the frame answering it, the run). In a sweep: the compute time of each of three runs of the
-// 48-recipe sweep of case 1, whose recipes run one after another inside one request: the pool's
-// throughput on round to nearest. A single change is a run
-// of 20–30 ms that starts while the browser's other threads draw the frame answering the control
-// and after the pool has slept; on a two-core machine it gains less from a second worker, which
-// the table shows beside the throughput, and case 6 measures the same core natively with and
-// without the pause. The pool sizes take turns round by round, so that a slow spell of the
-// machine falls on both alike.
+// the frame answering it, the run). In a sweep: the compute time of the 48-recipe sweep of case
+// 1, whose recipes run one after another inside one request: the pool's throughput on round to
+// nearest. A single change is a run of 20–30 ms that starts while the browser's other threads
+// draw the frame answering the control and after the pool has slept; on a two-core machine it
+// gains less from a second worker, which the table shows beside the throughput, and case 6
+// measures the same core natively with and without the pause.
+//
+// The two pool sizes run in two pages open side by side, and their turns alternate run by run
+// (which goes first alternating too), so that each run of one size has a run of the other
+// within a second of it: this machine's speed drifts by a third over minutes, more than the
+// difference being measured. The table gives the medians and the median of the pairs' ratios.
 const cores = [1, os.cpus().length];
 /** The pause before each recipe change, as a user's. */
 const PAUSE_MS = 300;
-/** Sweeps per round: the pool's throughput on round to nearest, so it gets more than one run. */
-const SWEEPS_PER_ROUND = 3;
+/**
+ * Untimed changes in each page before any is timed. V8 compiles optimised code for a function in
+ * the background once it has run enough; the kernels get there in the first run, but code run
+ * once per block or per run keeps being compiled for a few dozen changes, on a thread that takes
+ * its time from the pool on two cores (2–8 ms of compiling in one change in three, in a trace).
+ */
+const WARM_UP_CHANGES = 12;
+const PAIRS = { rtn: 12, sweep: 3, hqq: 2, rtnWide: 6 };
 const poolTimes = Object.fromEntries(cores.map((threads) => [threads, { rtn: [], sweep: [], hqq: [], rtnWide: [] }]));
 
-/** Compute times of `runs` recipe changes in page `p` (3-bit and 4-bit in turn), after `warmUp` untimed ones. */
-async function recipeChanges(p, runs, warmUp) {
-  const times = [];
-  for (let i = 0; i < warmUp + runs; i++) {
-    // Each change waits until the last result is drawn and its histogram is in, so the page's
-    // own thread does not compete with the pool for the cores while it computes.
-    const n = (await timesOf(p, 'recipe-compute')).length;
-    await p.waitForTimeout(PAUSE_MS);
-    await p.selectOption('#bits', i % 2 ? '4' : '3');
-    await waitForTiming(p, 'recipe-to-drawn', n + 1, 300_000);
-    if (i >= warmUp) times.push((await timesOf(p, 'recipe-compute')).at(-1));
-  }
-  return times;
+/** The compute time of one recipe change in `pool.page`: 3-bit and 4-bit in turn. */
+async function recipeChange(pool) {
+  const p = pool.page;
+  // Each change waits until the last result is drawn and its histogram is in, so the page's
+  // own thread does not compete with the pool for the cores while it computes.
+  const n = (await timesOf(p, 'recipe-compute')).length;
+  await p.waitForTimeout(PAUSE_MS);
+  pool.bits = pool.bits === '3' ? '4' : '3';
+  await p.selectOption('#bits', pool.bits);
+  await waitForTiming(p, 'recipe-to-drawn', n + 1, 300_000);
+  return (await timesOf(p, 'recipe-compute')).at(-1);
 }
 
-/** One round of the pool's cases in a fresh page with `threads` pool workers. */
-async function poolRound(threads) {
+/** Run `measure(pool)` `pairs` times in each pool size's page, the sizes taking turns. */
+async function alternate(pairs, into, measure) {
+  for (let i = 0; i < pairs; i++) {
+    for (const threads of i % 2 ? [...cores].reverse() : cores) poolTimes[threads][into].push(await measure(pools[threads]));
+  }
+}
+
+async function openIn(p, file) {
+  const n = (await timesOf(p, 'open-to-drawn')).length;
+  await p.setInputFiles('#file-input', file);
+  await waitForTiming(p, 'open-to-drawn', n + 1);
+}
+
+/** Per pool size: its page, and the bit width and method shown there. */
+const pools = {};
+for (const threads of cores) {
   const p = await browser.newPage({ viewport: { width: 1400, height: 1000 } });
   await p.goto(`${URL_UNDER_TEST}?threads=${threads}`);
   await p.waitForSelector('body[data-ready=true]');
-  const open = async (file) => {
-    const n = (await timesOf(p, 'open-to-drawn')).length;
-    await p.setInputFiles('#file-input', file);
-    await waitForTiming(p, 'open-to-drawn', n + 1);
-  };
-  const into = poolTimes[threads];
-  await open(weightFile);
-  // Untimed runs first: V8 swaps optimised code in for a function's next call once it proves
-  // hot, and a round-to-nearest run is short enough for the first few to run the baseline code.
-  into.rtn.push(...await recipeChanges(p, 4, 3));
+  await openIn(p, weightFile);
+  pools[threads] = { page: p, bits: '4', method: 'rtn' };
+  for (let i = 0; i < WARM_UP_CHANGES; i++) await recipeChange(pools[threads]);
+}
+await alternate(PAIRS.rtn, 'rtn', recipeChange);
+for (const { page: p } of Object.values(pools)) {
   await p.uncheck('input[name=sweep-format][value=nf4]');
   await p.uncheck('input[name=sweep-format][value=mxfp4]');
   await p.check('input[name=sweep-scale][value=bf16]');
   await p.check('input[name=sweep-scale][value=f32]');
-  for (let i = 1; i <= SWEEPS_PER_ROUND; i++) {
-    await p.click('#sweep-run');
-    await waitForTiming(p, 'sweep-compute', i, 300_000);
-  }
-  into.sweep.push(...await timesOf(p, 'sweep-compute'));
-  // HQQ's runs are seconds long, and its kernels are the round-to-nearest ones, already hot.
+}
+await alternate(PAIRS.sweep, 'sweep', async ({ page: p }) => {
+  const n = (await timesOf(p, 'sweep-compute')).length;
+  await p.click('#sweep-run');
+  await waitForTiming(p, 'sweep-compute', n + 1, 300_000);
+  return (await timesOf(p, 'sweep-compute')).at(-1);
+});
+// HQQ's runs are seconds long, and its kernels are the round-to-nearest ones, already hot: the
+// first run of each page is the choice of the method, the next ones recipe changes.
+await alternate(PAIRS.hqq, 'hqq', async (pool) => {
+  if (pool.method === 'hqq') return recipeChange(pool);
+  pool.method = 'hqq';
+  const p = pool.page;
   const n = (await timesOf(p, 'recipe-compute')).length;
   await p.selectOption('#method', 'hqq');
   await waitForTiming(p, 'recipe-compute', n + 1, 300_000);
-  into.hqq.push((await timesOf(p, 'recipe-compute')).at(-1), ...await recipeChanges(p, 1, 0));
-  await p.selectOption('#method', 'rtn');
-  await open(wideFile);
-  into.rtnWide.push(...await recipeChanges(p, 3, 1));
-  await p.close();
+  return (await timesOf(p, 'recipe-compute')).at(-1);
+});
+for (const pool of Object.values(pools)) {
+  await pool.page.selectOption('#method', 'rtn');
+  await openIn(pool.page, wideFile);
+  for (let i = 0; i < 2; i++) await recipeChange(pool);
 }
-
-for (let round = 0; round < 2; round++) {
-  for (const threads of round % 2 ? [...cores].reverse() : cores) await poolRound(threads);
-}
+await alternate(PAIRS.rtnWide, 'rtnWide', recipeChange);
+for (const { page: p } of Object.values(pools)) await p.close();
 
 // The large f16 layer from a dropped file: choose it → drawn error map.
 const wideRuns = [];
@@ -251,8 +275,8 @@ await browser.close();
 const native = {};
 const nativePool = Object.fromEntries(cores.map((threads) => [threads, { backToBack: [], perChange: [] }]));
 if (process.env.BENCH_CASE) {
-  for (let round = 0; round < 2; round++) {
-    for (const threads of cores) {
+  for (let round = 0; round < 4; round++) {
+    for (const threads of round % 2 ? [...cores].reverse() : cores) {
       for (const [pause, into] of [[0, 'backToBack'], [PAUSE_MS, 'perChange']]) {
         // The allocator keeps freed pages (as a wasm memory does), so that the pause costs no
         // fresh page faults: what remains is the machine waking from idle.
@@ -280,10 +304,13 @@ console.log(`| 4096×4096 f32, open file → first drawn result | ${openRun.toFi
 console.log(`| 2 GiB .safetensors (128 tensors), choose file → list drawn | ${median(listRuns).toFixed(0)} ms | ${listRuns.map((x) => x.toFixed(0)).join(', ')} |`);
 console.log(`| 4096×4096 f32, 48-recipe round-to-nearest sweep (click → last row drawn) | ${(sweepMs / 1000).toFixed(2)} s | 1 |`);
 /** One table row: the medians with one pool worker and with one per core, and their ratio. */
+/** One table row: the medians with one pool worker and with one per core, their ratio, and the
+ * median of the ratios of the runs taken side by side (the n-th of each size). */
 function poolRow(label, times, { unit = 'ms', of = 'pool worker' } = {}) {
   const [one, all] = cores.map((threads) => median(times[threads]));
   const shown = (ms) => (unit === 's' ? `${(ms / 1000).toFixed(2)} s` : `${ms.toFixed(1)} ms`);
-  console.log(`| ${label}: 1 ${of} → ${cores[1]} | ${shown(one)} → ${shown(all)} (${(one / all).toFixed(2)}×) | ${times[cores[0]].length} each |`);
+  const paired = median(times[cores[0]].map((t, i) => t / times[cores[1]][i]));
+  console.log(`| ${label}: 1 ${of} → ${cores[1]} | ${shown(one)} → ${shown(all)} (${(one / all).toFixed(2)}×; pairs ${paired.toFixed(2)}×) | ${times[cores[0]].length} each |`);
 }
 const pick = (table, name) => Object.fromEntries(cores.map((threads) => [threads, table[threads][name]]));
 poolRow('worker pool, 4096×4096 f32, round to nearest, per recipe change', pick(poolTimes, 'rtn'));
@@ -300,4 +327,11 @@ for (const method of ['gptq', 'awq']) {
   const t = methodTimes[method];
   const ratio = native[method] ? `; native command ${(native[method] / 1000).toFixed(2)} s (reading the files included); wasm/native ${(t.compute / native[method]).toFixed(2)}×` : '';
   console.log(`| 4096×4096 f32 + 512 tokens, ${method.toUpperCase()} int4 g128 | drawn after ${(t.drawn / 1000).toFixed(2)} s, of which wasm compute ${(t.compute / 1000).toFixed(2)} s${ratio} | 1 |`);
+}
+// The pool's runs themselves, in the order taken (the n-th of each size side by side), for a
+// reader who wants the spread behind the medians.
+console.log('\nPool runs in order, 1 pool worker | all cores (ms):');
+for (const [name, table] of [['rtn', poolTimes], ['sweep', poolTimes], ['hqq', poolTimes], ['rtnWide', poolTimes], ['backToBack', nativePool], ['perChange', nativePool]]) {
+  if (!table[cores[0]][name]?.length) continue;
+  console.log(`- ${name}: ${cores.map((threads) => table[threads][name].map((x) => x.toFixed(0)).join(' ')).join(' | ')}`);
 }
