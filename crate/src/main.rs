@@ -104,8 +104,7 @@ mod cli {
             tensor: Option<String>,
             #[command(flatten)]
             read: ReadArgs,
-            /// Formats, comma-separated.
-            #[arg(long, value_name = "LIST", default_value = "int")]
+            #[arg(long, value_name = "LIST", default_value = "int", help = format!("Formats, comma-separated, from: {}", Format::NAMES))]
             format: String,
             /// Bits, comma-separated (integer grids and codebooks).
             #[arg(long, value_name = "LIST", default_value = "2,3,4,8")]
@@ -207,10 +206,8 @@ Per-tensor error is only a proxy: check any recipe on the model's own task befor
     /// Recipe flags; anything left out takes the core's default.
     #[derive(Args)]
     struct RecipeArgs {
-        /// Number format of the elements: int, nf4, e2m1, e2m3, e3m2, e4m3, e5m2, mxfp4, mxfp6e2m3,
-        /// mxfp6e3m2, mxfp8e4m3, mxfp8e5m2, mxint8 or codebook; the other flags default to the
-        /// format's usual choice.
-        #[arg(long, value_name = "FORMAT")]
+        // The list comes from the core's own, so the help never drifts from what parses.
+        #[arg(long, value_name = "FORMAT", help = format!("Number format of the elements: {}; the other flags default to the format's usual choice.", Format::NAMES))]
         format: Option<String>,
         /// NF4: quantize the block scales again (8-bit, blocks of 256).
         #[arg(long)]
