@@ -14,7 +14,10 @@
 //! The generator is SplitMix64 (Steele, Lea and Flood, "Fast splittable pseudorandom number
 //! generators", OOPSLA 2014) with the Box–Muller transform for normals, written here rather than
 //! taken from a crate so that the seeded stream, and so every demo figure and saved link, stays
-//! the same across dependency upgrades.
+//! the same across dependency upgrades. Its state is a Weyl sequence (the seed plus n times a
+//! fixed odd constant, before the output mix), so the generator can start at any place of the
+//! stream at once: blocks of rows are generated in parallel, each from its own place, and the
+//! values are those of one pass in row order.
 
 use crate::tensor::{DType, Tensor};
 use ndarray::Array2;
@@ -35,8 +38,11 @@ const ACTIVATION_SEED: u64 = 0x6163_7469_7661_7465;
 const LATENT_FACTORS: usize = 16;
 const OUTLIER_CHANNELS: usize = 6;
 
+/// SplitMix64's increment of its state per output (the odd constant of the Weyl sequence).
+const GAMMA: u64 = 0x9E37_79B9_7F4A_7C15;
+
 /// A small seeded pseudorandom generator (SplitMix64).
-#[derive(Debug, Clone)]
+#[derive(Debug, Clone, PartialEq, Eq)]
 pub struct Rng {
     state: u64,
 }
@@ -47,9 +53,14 @@ impl Rng {
         Rng { state: seed }
     }
 
+    /// This generator as it will be `draws` outputs later.
+    pub fn skipped(&self, draws: u64) -> Self {
+        Rng { state: self.state.wrapping_add(draws.wrapping_mul(GAMMA)) }
+    }
+
     /// The next 64 random bits.
     pub fn next_u64(&mut self) -> u64 {
-        self.state = self.state.wrapping_add(0x9E37_79B9_7F4A_7C15);
+        self.state = self.state.wrapping_add(GAMMA);
         let mut z = self.state;
         z = (z ^ (z >> 30)).wrapping_mul(0xBF58_476D_1CE4_E5B9);
         z = (z ^ (z >> 27)).wrapping_mul(0x94D0_49BB_1331_11EB);
@@ -83,15 +94,30 @@ pub fn weight() -> Tensor {
         let col = rng.below(DEMO_COLS);
         column_gain[col] = 4.0 + 8.0 * rng.uniform();
     }
-    let mut values = Vec::with_capacity(DEMO_ROWS * DEMO_COLS);
-    for spread in &row_spread {
-        for gain in &column_gain {
+    // Two normals, four draws, per value.
+    let values = fill_rows(&rng, DEMO_ROWS, DEMO_COLS, 4, |rng, r, out| {
+        for (o, gain) in out.iter_mut().zip(&column_gain) {
             let heavy = rng.normal() * (0.5 * rng.normal()).exp();
-            values.push((spread * gain * heavy) as f32);
+            *o = (row_spread[r] * gain * heavy) as f32;
         }
-    }
-    let values = Array2::from_shape_vec((DEMO_ROWS, DEMO_COLS), values).expect("sizes match");
+    });
     Tensor::from_values(DEMO_NAME, DType::F32, values)
+}
+
+/// A `[rows, cols]` array whose row `r` is written by `fill(generator, r, row)`, where every
+/// value takes `draws_per_value` outputs of the generator's stream, continuing `rng`'s in row
+/// order. Blocks of rows run in parallel (see [`crate::rows`]), each generator started at its
+/// block's place in the stream, so the values are the same on any number of threads.
+fn fill_rows(rng: &Rng, rows: usize, cols: usize, draws_per_value: u64, fill: impl Fn(&mut Rng, usize, &mut [f32]) + Sync + Send) -> Array2<f32> {
+    let mut values = vec![0f32; rows * cols];
+    crate::rows::map_chunks_mut(&mut values, cols, crate::rows::ROW_BLOCK, &mut |_, _| {}, |first, block| {
+        let mut generator = rng.skipped((first * cols) as u64 * draws_per_value);
+        for (i, row) in block.chunks_mut(cols).enumerate() {
+            fill(&mut generator, first + i, row);
+        }
+        debug_assert_eq!(generator, rng.skipped(((first * cols + block.len()) as u64) * draws_per_value), "each value takes {draws_per_value} draws");
+    });
+    Array2::from_shape_vec((rows, cols), values).expect("sizes match")
 }
 
 /// The demo activation sample matched to [`weight`]: [512 tokens, 4096 channels].
@@ -103,12 +129,13 @@ pub fn activations() -> Tensor {
     for _ in 0..OUTLIER_CHANNELS {
         gain[rng.below(DEMO_COLS)] = (20.0 + 80.0 * rng.uniform()) as f32;
     }
-    let mut values = latent.dot(&mixing);
-    for mut row in values.rows_mut() {
-        for (v, g) in row.iter_mut().zip(&gain) {
-            *v = (*v + 0.6 * rng.normal() as f32) * g;
+    let mixed = latent.dot(&mixing);
+    // One normal, two draws, per value.
+    let values = fill_rows(&rng, DEMO_TOKENS, DEMO_COLS, 2, |rng, t, out| {
+        for ((o, &v), g) in out.iter_mut().zip(mixed.row(t)).zip(&gain) {
+            *o = (v + 0.6 * rng.normal() as f32) * g;
         }
-    }
+    });
     Tensor::from_values(DEMO_ACTIVATIONS_NAME, DType::F32, values)
 }
 
@@ -123,6 +150,57 @@ mod tests {
         let mut rng = Rng::new(1234567);
         assert_eq!(rng.next_u64(), 6457827717110365317);
         assert_eq!(rng.next_u64(), 3203168211198807973);
+    }
+
+    #[test]
+    fn a_skipped_generator_continues_the_stream() {
+        let mut rng = Rng::new(99);
+        let ahead = rng.skipped(1000);
+        for _ in 0..1000 {
+            rng.next_u64();
+        }
+        assert_eq!(rng, ahead);
+        assert_eq!(Rng::new(5).skipped(0), Rng::new(5));
+    }
+
+    #[test]
+    fn demo_data_generated_in_blocks_equals_one_pass_in_row_order() {
+        // The generation as one sequential pass, the reference for the parallel one.
+        let mut rng = Rng::new(DEMO_SEED);
+        let row_spread: Vec<f64> = (0..DEMO_ROWS).map(|_| 0.02 * (0.15 * rng.normal()).exp()).collect();
+        let mut column_gain = vec![1.0f64; DEMO_COLS];
+        for _ in 0..OUTLIER_COLUMNS {
+            let col = rng.below(DEMO_COLS);
+            column_gain[col] = 4.0 + 8.0 * rng.uniform();
+        }
+        let mut values = Vec::with_capacity(DEMO_ROWS * DEMO_COLS);
+        for spread in &row_spread {
+            for gain in &column_gain {
+                let heavy = rng.normal() * (0.5 * rng.normal()).exp();
+                values.push((spread * gain * heavy) as f32);
+            }
+        }
+        let on = |threads| rayon::ThreadPoolBuilder::new().num_threads(threads).build().unwrap().install(weight);
+        for threads in [1, 3] {
+            let w = on(threads);
+            assert!(w.values.iter().zip(&values).all(|(a, b)| a.to_bits() == b.to_bits()), "{threads} threads");
+        }
+
+        let mut rng = Rng::new(ACTIVATION_SEED);
+        let mixing = Array2::from_shape_fn((LATENT_FACTORS, DEMO_COLS), |_| (rng.normal() * 0.35) as f32);
+        let latent = Array2::from_shape_fn((DEMO_TOKENS, LATENT_FACTORS), |_| rng.normal() as f32);
+        let mut gain = vec![1.0f32; DEMO_COLS];
+        for _ in 0..OUTLIER_CHANNELS {
+            gain[rng.below(DEMO_COLS)] = (20.0 + 80.0 * rng.uniform()) as f32;
+        }
+        let mut expected = latent.dot(&mixing);
+        for mut row in expected.rows_mut() {
+            for (v, g) in row.iter_mut().zip(&gain) {
+                *v = (*v + 0.6 * rng.normal() as f32) * g;
+            }
+        }
+        let x = rayon::ThreadPoolBuilder::new().num_threads(3).build().unwrap().install(activations);
+        assert!(x.values.iter().zip(&expected).all(|(a, b)| a.to_bits() == b.to_bits()));
     }
 
     #[test]
