@@ -88,12 +88,7 @@ impl Rng {
 /// The demo weight: seeded, invented, shaped like a projection layer.
 pub fn weight() -> Tensor {
     let mut rng = Rng::new(DEMO_SEED);
-    let row_spread: Vec<f64> = (0..DEMO_ROWS).map(|_| 0.02 * (0.15 * rng.normal()).exp()).collect();
-    let mut column_gain = vec![1.0f64; DEMO_COLS];
-    for _ in 0..OUTLIER_COLUMNS {
-        let col = rng.below(DEMO_COLS);
-        column_gain[col] = 4.0 + 8.0 * rng.uniform();
-    }
+    let (row_spread, column_gain) = weight_scales(&mut rng);
     // Two normals, four draws, per value.
     let values = fill_rows(&rng, DEMO_ROWS, DEMO_COLS, 4, |rng, r, out| {
         for (o, gain) in out.iter_mut().zip(&column_gain) {
@@ -102,6 +97,29 @@ pub fn weight() -> Tensor {
         }
     });
     Tensor::from_values(DEMO_NAME, DType::F32, values)
+}
+
+/// The demo weight's spread per row and gain per column, the first draws of its stream.
+fn weight_scales(rng: &mut Rng) -> (Vec<f64>, Vec<f64>) {
+    let row_spread: Vec<f64> = (0..DEMO_ROWS).map(|_| 0.02 * (0.15 * rng.normal()).exp()).collect();
+    let mut column_gain = vec![1.0f64; DEMO_COLS];
+    for _ in 0..OUTLIER_COLUMNS {
+        let col = rng.below(DEMO_COLS);
+        column_gain[col] = 4.0 + 8.0 * rng.uniform();
+    }
+    (row_spread, column_gain)
+}
+
+/// The demo activations' mixed latent factors [tokens, channels] and gain per channel, the first
+/// draws of their stream.
+fn activation_factors(rng: &mut Rng) -> (Array2<f32>, Vec<f32>) {
+    let mixing = Array2::from_shape_fn((LATENT_FACTORS, DEMO_COLS), |_| (rng.normal() * 0.35) as f32);
+    let latent = Array2::from_shape_fn((DEMO_TOKENS, LATENT_FACTORS), |_| rng.normal() as f32);
+    let mut gain = vec![1.0f32; DEMO_COLS];
+    for _ in 0..OUTLIER_CHANNELS {
+        gain[rng.below(DEMO_COLS)] = (20.0 + 80.0 * rng.uniform()) as f32;
+    }
+    (latent.dot(&mixing), gain)
 }
 
 /// A `[rows, cols]` array whose row `r` is written by `fill(generator, r, row)`, where every
@@ -123,13 +141,7 @@ fn fill_rows(rng: &Rng, rows: usize, cols: usize, draws_per_value: u64, fill: im
 /// The demo activation sample matched to [`weight`]: [512 tokens, 4096 channels].
 pub fn activations() -> Tensor {
     let mut rng = Rng::new(ACTIVATION_SEED);
-    let mixing = Array2::from_shape_fn((LATENT_FACTORS, DEMO_COLS), |_| (rng.normal() * 0.35) as f32);
-    let latent = Array2::from_shape_fn((DEMO_TOKENS, LATENT_FACTORS), |_| rng.normal() as f32);
-    let mut gain = vec![1.0f32; DEMO_COLS];
-    for _ in 0..OUTLIER_CHANNELS {
-        gain[rng.below(DEMO_COLS)] = (20.0 + 80.0 * rng.uniform()) as f32;
-    }
-    let mixed = latent.dot(&mixing);
+    let (mixed, gain) = activation_factors(&mut rng);
     // One normal, two draws, per value.
     let values = fill_rows(&rng, DEMO_TOKENS, DEMO_COLS, 2, |rng, t, out| {
         for ((o, &v), g) in out.iter_mut().zip(mixed.row(t)).zip(&gain) {
@@ -165,14 +177,9 @@ mod tests {
 
     #[test]
     fn demo_data_generated_in_blocks_equals_one_pass_in_row_order() {
-        // The generation as one sequential pass, the reference for the parallel one.
+        // The values drawn in one sequential pass, the reference for the blocks.
         let mut rng = Rng::new(DEMO_SEED);
-        let row_spread: Vec<f64> = (0..DEMO_ROWS).map(|_| 0.02 * (0.15 * rng.normal()).exp()).collect();
-        let mut column_gain = vec![1.0f64; DEMO_COLS];
-        for _ in 0..OUTLIER_COLUMNS {
-            let col = rng.below(DEMO_COLS);
-            column_gain[col] = 4.0 + 8.0 * rng.uniform();
-        }
+        let (row_spread, column_gain) = weight_scales(&mut rng);
         let mut values = Vec::with_capacity(DEMO_ROWS * DEMO_COLS);
         for spread in &row_spread {
             for gain in &column_gain {
@@ -187,13 +194,7 @@ mod tests {
         }
 
         let mut rng = Rng::new(ACTIVATION_SEED);
-        let mixing = Array2::from_shape_fn((LATENT_FACTORS, DEMO_COLS), |_| (rng.normal() * 0.35) as f32);
-        let latent = Array2::from_shape_fn((DEMO_TOKENS, LATENT_FACTORS), |_| rng.normal() as f32);
-        let mut gain = vec![1.0f32; DEMO_COLS];
-        for _ in 0..OUTLIER_CHANNELS {
-            gain[rng.below(DEMO_COLS)] = (20.0 + 80.0 * rng.uniform()) as f32;
-        }
-        let mut expected = latent.dot(&mixing);
+        let (mut expected, gain) = activation_factors(&mut rng);
         for mut row in expected.rows_mut() {
             for (v, g) in row.iter_mut().zip(&gain) {
                 *v = (*v + 0.6 * rng.normal() as f32) * g;
