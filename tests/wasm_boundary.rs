@@ -103,7 +103,10 @@ fn a_file_read_through_ranges_fetched_ahead_is_the_same_tensor() {
     .unwrap();
     let make = js_sys::Function::new_with_args("bytes", "return new RangeBlob(bytes)");
     let blob = make.call1(&JsValue::NULL, &js_sys::Uint8Array::from(&bytes[..])).unwrap();
+    // As a dropped `File`: an array with no name of its own takes the file's, less the extension.
+    js_sys::Reflect::set(&blob, &JsValue::from_str("name"), &JsValue::from_str("block.7.up.npy")).unwrap();
     let from_blob = open_file(blob.unchecked_into(), None, false).unwrap();
+    assert_eq!(get(&from_blob.info().unwrap(), "name").as_string().as_deref(), Some("block.7.up"));
     let fetches = js_sys::Reflect::get(&js_sys::global(), &JsValue::from_str("fetches")).unwrap().as_f64().unwrap();
     assert!(fetches <= 6.0, "{fetches} fetches for 17 reads of tensor data");
     let whole = open_bytes(&bytes, None, false).unwrap();

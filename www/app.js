@@ -665,7 +665,8 @@ function showResults(result, { fresh }) {
   $('empty').hidden = true;
   $('report').hidden = false;
   showMessage('recipe-message', '');
-  state.statusText = `${s.label} on ${s.tensor.name || 'the tensor'} · analysed in ${Math.round(result.elapsedMs)} ms`;
+  const calibrated = s.output_rel_err === null ? '' : ' with calibration';
+  state.statusText = `${s.label} on ${s.tensor.name || 'the tensor'}${calibrated} · analysed in ${Math.round(result.elapsedMs)} ms`;
   writeLink();
   $('status').textContent = state.statusText;
 

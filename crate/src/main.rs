@@ -573,7 +573,9 @@ Per-tensor error is only a proxy: check any recipe on the model's own task befor
         if is_text(path) {
             let content = std::fs::read_to_string(path).map_err(|e| Failure(format!("{}: cannot read: {e}", path.display())))?;
             let mut tensor = text::parse(&content).map_err(Failure::at(path))?;
-            tensor.name = stem(path);
+            // A text file is named after itself rather than as a paste.
+            tensor.name.clear();
+            tensor.name_after_file(&path.to_string_lossy());
             return Ok(tensor);
         }
         let (file, listing) = open(path, options)?;
@@ -582,9 +584,7 @@ Per-tensor error is only a proxy: check any recipe on the model's own task befor
             tensor::check_fits(entry, available).map_err(Failure::at(path))?;
         }
         let mut tensor = tensor::read(&file, entry).map_err(Failure::at(path))?;
-        if tensor.name.is_empty() {
-            tensor.name = stem(path);
-        }
+        tensor.name_after_file(&path.to_string_lossy());
         Ok(tensor)
     }
 
@@ -602,10 +602,6 @@ Per-tensor error is only a proxy: check any recipe on the model's own task befor
         let info = std::fs::read_to_string("/proc/meminfo").ok()?;
         let line = info.lines().find(|l| l.starts_with("MemAvailable:"))?;
         line.split_whitespace().nth(1)?.parse::<u64>().ok().map(|kib| kib * 1024)
-    }
-
-    fn stem(path: &Path) -> String {
-        path.file_stem().map(|s| s.to_string_lossy().into_owned()).unwrap_or_default()
     }
 
     fn describe(listing: &Listing) -> String {

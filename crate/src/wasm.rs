@@ -250,10 +250,17 @@ pub fn list_file(file: web_sys::Blob, raw16_as_bf16: bool) -> Result<JsValue, Js
 }
 
 /// Read one tensor of a file (its own byte range only); `name` may be omitted for one-tensor files.
+/// An array with no name of its own (`.npy`) is named after the file.
 #[wasm_bindgen(js_name = openFile)]
 pub fn open_file(file: web_sys::Blob, name: Option<String>, raw16_as_bf16: bool) -> Result<TensorHandle, JsError> {
+    // A dropped or chosen file is a `File`, whose name names an array that has none of its own.
+    let file_name = js_sys::Reflect::get(&file, &JsValue::from_str("name")).ok().and_then(|n| n.as_string());
     let src = BlobSource::new(file)?;
-    open_source(&src, name, raw16_as_bf16).map(TensorHandle::new)
+    let mut tensor = open_source(&src, name, raw16_as_bf16)?;
+    if let Some(file_name) = file_name {
+        tensor.name_after_file(&file_name);
+    }
+    Ok(TensorHandle::new(tensor))
 }
 
 /// Bytes of WebAssembly memory this instance holds. Its memory only grows, so this is also the

@@ -47,7 +47,7 @@ test('a run that exhausts the wasm memory loses nothing, and the page goes on', 
   assert.match(message, /AllocError/);
   await page.waitForFunction(() => /restarted/.test(document.getElementById('input-message').textContent));
   await shot(page, 'h01-out-of-memory');
-  await assertNothingLost(page, before, reportBefore, { bits: 3, label: 'int3 asym g128 f16 on the tensor' });
+  await assertNothingLost(page, before, reportBefore, { bits: 3, label: 'int3 asym g128 f16 on wide with calibration' });
   assert.equal(await page.isVisible('#fig-output-card'), true, 'the fresh worker has the calibration too');
   await context.close();
 });
@@ -122,6 +122,7 @@ test('dropping files, analysing and exporting make no network request, and the p
   const sample = npyF32(64, 300, (i) => Math.sin(i * 0.7) * (i % 300 === 7 ? 30 : 1));
   await dropFile(page, 'acts.npy', sample, '#calib-card');
   status = await waitForAnalysis(page, status);
+  assert.match(status, /quant_weight.* with calibration · analysed in/);
   await page.selectOption('#method', 'gptq');
   status = await waitForAnalysis(page, status);
   assert.match(status, /gptq/);

@@ -352,6 +352,14 @@ impl Tensor {
         Tensor { name: name.into(), dtype, shape, values }
     }
 
+    /// Name a tensor that has no name of its own (an `.npy` array, a text matrix) after the file
+    /// it was read from, without the extension, so that the command and the page show the same.
+    pub fn name_after_file(&mut self, file_name: &str) {
+        if self.name.is_empty() {
+            self.name = std::path::Path::new(file_name).file_stem().map(|s| s.to_string_lossy().into_owned()).unwrap_or_default();
+        }
+    }
+
     /// Number of rows (output channels).
     pub fn rows(&self) -> usize {
         self.values.nrows()
@@ -459,6 +467,19 @@ fn trim_zeros(digits: &[u8]) -> &[u8] {
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    #[test]
+    fn an_array_without_a_name_takes_the_file_name_less_its_extension() {
+        let named = |name: &str, file: &str| {
+            let mut t = Tensor::from_values(name, DType::F32, Array2::zeros((1, 1)));
+            t.name_after_file(file);
+            t.name
+        };
+        assert_eq!(named("", "/data/block.7.up.npy"), "block.7.up");
+        assert_eq!(named("", "weights.csv"), "weights");
+        assert_eq!(named("", "plain"), "plain");
+        assert_eq!(named("model.up.weight", "shard-1.safetensors"), "model.up.weight", "a tensor's own name stays");
+    }
 
     /// A read in ranges, each decoded in blocks on the pool, gives the values of one whole read
     /// and of a decode element by element, for ranges and counts that do not divide each other
