@@ -573,8 +573,6 @@ Per-tensor error is only a proxy: check any recipe on the model's own task befor
         if is_text(path) {
             let content = std::fs::read_to_string(path).map_err(|e| Failure(format!("{}: cannot read: {e}", path.display())))?;
             let mut tensor = text::parse(&content).map_err(Failure::at(path))?;
-            // A text file is named after itself rather than as a paste.
-            tensor.name.clear();
             tensor.name_after_file(&path.to_string_lossy());
             return Ok(tensor);
         }

@@ -342,7 +342,9 @@ impl CalibrationHandle {
 /// Parse a pasted matrix.
 #[wasm_bindgen(js_name = parseText)]
 pub fn parse_text(text: &str) -> Result<TensorHandle, JsError> {
-    Ok(TensorHandle::new(tensor::text::parse(text).map_err(js_error)?))
+    let mut tensor = tensor::text::parse(text).map_err(js_error)?;
+    tensor.name = tensor::text::PASTED_NAME.to_string();
+    Ok(TensorHandle::new(tensor))
 }
 
 /// Rows and columns of the weight [`warm_up`] analyses: a few hundred thousand values.

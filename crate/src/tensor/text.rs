@@ -10,7 +10,7 @@ use super::{DType, Tensor};
 use crate::error::{Error, Result};
 use ndarray::Array2;
 
-/// Name given to a pasted tensor.
+/// Name given to a pasted tensor (a text file is named after the file instead).
 pub const PASTED_NAME: &str = "pasted";
 
 fn error(line: usize, column: usize, detail: impl Into<String>) -> Error {
@@ -24,7 +24,7 @@ struct Row {
     column: usize,
 }
 
-/// Parse pasted text into a 2-D tensor.
+/// Parse pasted text into a 2-D tensor, unnamed: its name says where it came from.
 pub fn parse(text: &str) -> Result<Tensor> {
     let rows = if text.trim_start().starts_with('[') || text.trim_start().starts_with("array(") {
         bracketed_rows(text)?
@@ -50,7 +50,7 @@ pub fn parse(text: &str) -> Result<Tensor> {
     super::element_count(&[n_rows, cols])?;
     let values: Vec<f32> = rows.into_iter().flat_map(|r| r.values).collect();
     let values = Array2::from_shape_vec((n_rows, cols), values).expect("rows checked equal");
-    Ok(Tensor::from_values(PASTED_NAME, DType::F32, values))
+    Ok(Tensor::from_values("", DType::F32, values))
 }
 
 fn number(token: &str, line: usize, column: usize) -> Result<f32> {
