@@ -140,9 +140,9 @@ pub fn recipe(data: &[u8]) {
     assert!(!recipe.label().is_empty());
     let (weight, calibration) = workload();
     let Some(analysis) = refused(analyze_with(weight, &recipe, Some(calibration), &mut |_, _| {})) else { return };
-    if let Some(bytes) = refused(packed::pack(&analysis, &weight.shape)) {
+    if let Some(bytes) = refused(packed::pack(&analysis, weight)) {
         let (shape, values) = packed::unpack(&bytes[..]).expect("a packed file reads back");
         assert_eq!(shape, weight.shape);
-        assert!(values.iter().zip(analysis.dequantized.iter()).all(|(a, b)| a.to_bits() == b.to_bits()), "unpack differs from the analysis");
+        assert!(values.iter().zip(analysis.dequantized(weight).expect("the analysed tensor").iter()).all(|(a, b)| a.to_bits() == b.to_bits()), "unpack differs from the analysis");
     }
 }

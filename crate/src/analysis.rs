@@ -1,6 +1,11 @@
 //! One recipe run on one tensor (and, optionally, its calibration data): the dequantized values,
 //! the error figures per tensor, per group and per input column, the output error when there is
-//! calibration, and the bit budget. Every front end reaches the core through [`analyze_with`]
+//! calibration, and the bit budget.
+//!
+//! A plain round to nearest does not keep its reconstruction: it is measured row by row while in
+//! cache and made again only when asked for (an export), the same values bit for bit, since it
+//! is a function of the tensor and the recipe alone. Keeping it would double the memory of the
+//! most common analysis and add the tensor's size again to its memory traffic. Every front end reaches the core through [`analyze_with`]
 //! (or [`analyze`] without calibration).
 
 use crate::calib::{output_error, Calibration, OutputError};
@@ -9,12 +14,13 @@ use crate::error::{Error, Result};
 use crate::formats::{DoubleQuantized, Format, Grid};
 use crate::methods::keep::Kept;
 use crate::grid::GroupParams;
-use crate::methods::{self, group_width, MethodFigures, RowObserver};
+use crate::methods::{self, group_width, MethodFigures, Reconstruction, RowObserver};
 use crate::metrics::{ColumnBlock, ColumnFigures, ColumnSums, ErrorFigures, ErrorSums, GroupFigures};
 use crate::rows::{self, ROW_BLOCK};
 use crate::recipe::{Granularity, Method, Recipe};
 use crate::tensor::Tensor;
 use ndarray::{Array2, ArrayView2};
+use std::borrow::Cow;
 use std::ops::Range;
 
 /// Everything one analysis produces.
@@ -22,8 +28,11 @@ use std::ops::Range;
 pub struct Analysis {
     /// The recipe that was run.
     pub recipe: Recipe,
-    /// The reconstruction x̂, in the tensor's 2-D view.
-    pub dequantized: Array2<f32>,
+    /// The reconstruction x̂ in the tensor's 2-D view, or `None` for a plain recipe, whose
+    /// reconstruction [`Analysis::dequantized`] makes again.
+    kept_reconstruction: Option<Array2<f32>>,
+    /// Rows and columns of the tensor's 2-D view.
+    dim: (usize, usize),
     /// Fitted scale and zero point of every group, row-major as in `groups`.
     pub params: Vec<GroupParams>,
     /// Whole-tensor figures.
@@ -79,9 +88,7 @@ pub struct Headline {
     pub output: Option<OutputError>,
 }
 
-/// [`analyze_with`]'s whole-tensor figures alone. A plain round to nearest without calibration
-/// keeps no reconstruction, no per-group and no per-column figures: it needs no memory of the
-/// tensor's size, and does not write the tensor out again.
+/// [`analyze_with`]'s whole-tensor figures alone, without the per-group and per-column ones.
 pub fn headline(
     tensor: &Tensor,
     recipe: &Recipe,
@@ -89,12 +96,6 @@ pub fn headline(
     progress: &mut dyn FnMut(usize, usize),
 ) -> Result<Headline> {
     let measured = || {
-        let cost = BitCost::of(recipe, tensor.rows(), tensor.cols(), tensor.dtype.bits());
-        if is_plain(recipe) && calib.is_none() {
-            let measure = Measure::new(recipe, tensor.cols(), Detail::Totals);
-            let measured = methods::rtn_observe(tensor.values.view(), recipe, &measure, progress)?;
-            return Ok(Headline { recipe: *recipe, totals: measure.finish(measured).0, cost, output: None });
-        }
         let a = run(tensor, recipe, calib, Detail::Totals, progress)?;
         Ok(Headline { recipe: a.recipe, totals: a.totals, cost: a.cost, output: a.output })
     };
@@ -308,14 +309,33 @@ fn run(
     let (rows, cols) = (tensor.rows(), tensor.cols());
     let measure = Measure::new(recipe, cols, detail);
     let reference = calib.and_then(|c| c.reference_output(tensor.values.view()));
-    let (q, observed) = if is_plain(recipe) {
-        // The hot path: each row is measured while it is still in cache.
-        methods::rtn_rows(tensor.values.view(), recipe, &Kept::default(), &measure, progress)?
-    } else {
-        let q = methods::run(tensor.values.view(), recipe, calib, reference.as_deref(), progress)?;
-        let observed = measure.rows(tensor.values.view(), q.dequantized.view());
-        (q, observed)
-    };
+    let cost = BitCost::of(recipe, rows, cols, tensor.dtype.bits());
+    if is_plain(recipe) {
+        // The hot path: each row is measured while it is still in cache; the reconstruction is
+        // kept only while the output error needs it.
+        let keep = if calib.is_some() { Reconstruction::Keep } else { Reconstruction::Discard };
+        let (grouped, double_quant) = methods::round_to_nearest(tensor.values.view(), recipe, &Kept::default(), &measure, keep, progress)?;
+        let output = calib.zip(grouped.out).map(|(c, x_hat)| output_error(c, tensor.values.view(), x_hat.view(), reference.as_deref()));
+        let (totals, groups, columns) = measure.finish(grouped.observed);
+        return Ok(Analysis {
+            recipe: *recipe,
+            kept_reconstruction: None,
+            dim: (rows, cols),
+            params: grouped.params,
+            totals,
+            groups,
+            columns,
+            cost,
+            method: MethodFigures::Rtn,
+            output,
+            column_factors: None,
+            codebooks: Vec::new(),
+            double_quant,
+            kept: Kept::default(),
+        });
+    }
+    let q = methods::run(tensor.values.view(), recipe, calib, reference.as_deref(), progress)?;
+    let observed = measure.rows(tensor.values.view(), q.dequantized.view());
     let methods::Quantized { dequantized, params, figures: method, output: measured, column_factors, codebooks, double_quant, kept } = q;
     let output = match measured {
         Some(known) => Some(known),
@@ -324,12 +344,13 @@ fn run(
     let (totals, groups, columns) = measure.finish(observed);
     Ok(Analysis {
         recipe: *recipe,
-        dequantized,
+        kept_reconstruction: Some(dequantized),
+        dim: (rows, cols),
         params,
         totals,
         groups,
         columns,
-        cost: BitCost::of(recipe, rows, cols, tensor.dtype.bits()),
+        cost,
         method,
         output,
         column_factors,
@@ -340,9 +361,32 @@ fn run(
 }
 
 impl Analysis {
+    /// The reconstruction x̂ in the 2-D view of `tensor`, which must be the tensor analysed: a
+    /// plain recipe's is made again from it (the same values bit for bit), any other's was kept.
+    /// A tensor whose fit differs from the analysed one's is refused.
+    pub fn dequantized(&self, tensor: &Tensor) -> Result<Cow<'_, Array2<f32>>> {
+        if let Some(x_hat) = &self.kept_reconstruction {
+            return Ok(Cow::Borrowed(x_hat));
+        }
+        let not_analysed = || Error::BadShape { shape: tensor.shape.clone(), detail: "it is not the tensor this result was taken from".into() };
+        if (tensor.rows(), tensor.cols()) != self.dim {
+            return Err(not_analysed());
+        }
+        let again = methods::rtn(tensor.values.view(), &self.recipe, &Kept::default())?;
+        if again.params != self.params {
+            return Err(not_analysed());
+        }
+        Ok(Cow::Owned(again.dequantized))
+    }
+
+    /// Rows and columns of the analysed tensor's 2-D view.
+    pub fn dim(&self) -> (usize, usize) {
+        self.dim
+    }
+
     /// The rows and columns (of the 2-D view) that group `index` covers.
     pub fn group_span(&self, index: usize) -> Option<(Range<usize>, Range<usize>)> {
-        let (rows, cols) = self.dequantized.dim();
+        let (rows, cols) = self.dim;
         if index >= self.groups.rows * self.groups.per_row {
             return None;
         }
@@ -412,7 +456,7 @@ mod tests {
                 for (bits, symmetric) in [(2, false), (3, true), (4, false), (8, true)] {
                     let recipe = Recipe { bits, granularity, symmetric, scale_dtype: ScaleDType::BF16, ..Recipe::default() };
                     let a = analyze(&t, &recipe).unwrap();
-                    let got: Vec<f32> = a.dequantized.iter().copied().collect();
+                    let got: Vec<f32> = a.dequantized(&t).unwrap().iter().copied().collect();
                     assert_eq!(got, reference(&t, &recipe), "{rows}x{cols} {}", recipe.label());
                     assert_eq!(a.params.len() as u64, a.cost.groups);
                     assert_eq!(a.groups.mse.len(), a.groups.rows * a.groups.per_row);
@@ -423,6 +467,18 @@ mod tests {
                 }
             }
         }
+    }
+
+    #[test]
+    fn a_plain_reconstruction_is_made_again_only_from_the_analysed_tensor() {
+        let t = tensor(4, 300, 3);
+        let plain = analyze(&t, &Recipe::default()).unwrap();
+        assert!(matches!(plain.dequantized(&t).unwrap(), Cow::Owned(_)));
+        assert_eq!(*plain.dequantized(&t).unwrap(), methods::rtn(t.values.view(), &Recipe::default(), &Kept::default()).unwrap().dequantized);
+        assert!(matches!(plain.dequantized(&tensor(4, 300, 4)), Err(Error::BadShape { .. })), "same shape, other values");
+        assert!(matches!(plain.dequantized(&tensor(3, 400, 3)), Err(Error::BadShape { .. })), "other shape");
+        let hqq = analyze(&t, &Recipe { method: Method::Hqq, ..Recipe::default() }).unwrap();
+        assert!(matches!(hqq.dequantized(&t).unwrap(), Cow::Borrowed(_)), "other methods keep theirs");
     }
 
     #[test]

@@ -364,8 +364,8 @@ Per-tensor error is only a proxy: check any recipe on the model's own task befor
                 }
                 let mut outputs = Vec::new();
                 if let Some(path) = out {
-                    let values = analysis.dequantized.as_slice().expect("row-major");
-                    outputs.push((path, npy::write_f32(values, &tensor.shape)));
+                    let values = analysis.dequantized(&tensor).map_err(Failure::at(&file))?;
+                    outputs.push((path, npy::write_f32(values.as_slice().expect("row-major"), &tensor.shape)));
                 }
                 if let Some(path) = markdown {
                     outputs.push((path, report_doc.to_markdown().into_bytes()));
@@ -374,7 +374,7 @@ Per-tensor error is only a proxy: check any recipe on the model's own task befor
                     outputs.push((path, report_doc.groups_csv().into_bytes()));
                 }
                 if let Some(path) = packed {
-                    let bytes = bitloupe::packed::pack(&analysis, &tensor.shape).map_err(Failure::at(&path))?;
+                    let bytes = bitloupe::packed::pack(&analysis, &tensor).map_err(Failure::at(&path))?;
                     outputs.push((path, bytes));
                 }
                 // Standard output gets the report or the summary once every file is in place.

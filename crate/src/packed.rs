@@ -29,7 +29,7 @@ use crate::grid::{GroupParams, IntGrid};
 use crate::methods::group_width;
 use crate::recipe::{Granularity, Method, Recipe, ScaleDType};
 use crate::tensor::safetensors::{read_header, read_metadata, write, Outgoing};
-use crate::tensor::{decode_little_endian, read_range, ByteSource, DType};
+use crate::tensor::{decode_little_endian, read_range, ByteSource, DType, Tensor};
 use half::{bf16, f16};
 use ndarray::Array2;
 use std::collections::BTreeMap;
@@ -182,16 +182,18 @@ fn kept_positions(columns: &[usize], elements: &[usize], rows: usize, cols: usiz
     columns.iter().flat_map(|&c| (0..rows).map(move |r| (r, c))).chain(elements.iter().map(|&i| (i / cols, i % cols))).collect()
 }
 
-/// The packed `.safetensors` bytes of `analysis` (of a tensor of stored `shape`).
-pub fn pack(analysis: &Analysis, shape: &[usize]) -> Result<Vec<u8>> {
+/// The packed `.safetensors` bytes of `analysis`, taken from `tensor`.
+pub fn pack(analysis: &Analysis, tensor: &Tensor) -> Result<Vec<u8>> {
     let recipe = analysis.recipe;
-    let (rows, cols) = analysis.dequantized.dim();
+    let shape = &tensor.shape;
+    let dequantized = analysis.dequantized(tensor)?;
+    let (rows, cols) = dequantized.dim();
     let codec = Codec::new(&recipe);
     let width = group_width(recipe.granularity, cols);
     let per_row = recipe.granularity.groups_per_row(cols);
     let kept = &analysis.kept;
     let kept_positions = kept_positions(&kept.columns, &kept.elements, rows, cols);
-    let kept_values: Vec<f32> = kept_positions.iter().map(|&(r, c)| analysis.dequantized[[r, c]]).collect();
+    let kept_values: Vec<f32> = kept_positions.iter().map(|&(r, c)| dequantized[[r, c]]).collect();
     if kept_values.iter().any(|v| f16::from_f32(*v).to_f32().to_bits() != v.to_bits()) {
         return Err(Error::BadRecipe { detail: "a kept value is not an f16 value here (GPTQ with smoothing), so this result cannot be packed exactly".into() });
     }
@@ -205,7 +207,7 @@ pub fn pack(analysis: &Analysis, shape: &[usize]) -> Result<Vec<u8>> {
                 0
             } else {
                 let p = if recipe.format == Format::Codebook { GroupParams { scale: 1.0, zero: 0.0 } } else { params_at(&analysis.params, &recipe, per_row, width, r, c) };
-                let v = analysis.dequantized[[r, c]];
+                let v = dequantized[[r, c]];
                 // With column factors Ŵ = Q(w·s)/s: look for the code near v·s that divides back to v.
                 let factor = analysis.column_factors.as_ref().map_or(1.0, |s| s[c]);
                 let limit = 1u32 << codec.bits;
@@ -287,7 +289,7 @@ pub fn pack(analysis: &Analysis, shape: &[usize]) -> Result<Vec<u8>> {
         };
         bad(format!("the packed form does not read back ({why}); nothing was written"))
     })?;
-    if decoded.iter().zip(analysis.dequantized.iter()).any(|(a, b)| a.to_bits() != b.to_bits()) {
+    if decoded.iter().zip(dequantized.iter()).any(|(a, b)| a.to_bits() != b.to_bits()) {
         return Err(bad("the packed form would not reproduce the dequantized tensor exactly; nothing was written"));
     }
     Ok(bytes)
@@ -473,10 +475,10 @@ mod tests {
         ];
         for recipe in recipes {
             let a = analyze_with(&t, &recipe, Some(&calib), &mut |_, _| {}).unwrap();
-            let bytes = pack(&a, &t.shape).unwrap_or_else(|e| panic!("{}: {e}", recipe.label()));
+            let bytes = pack(&a, &t).unwrap_or_else(|e| panic!("{}: {e}", recipe.label()));
             let (shape, back) = unpack(&bytes[..]).unwrap();
             assert_eq!(shape, t.shape);
-            assert!(back.iter().zip(a.dequantized.iter()).all(|(x, y)| x.to_bits() == y.to_bits()), "{} does not round-trip bit for bit", recipe.label());
+            assert!(back.iter().zip(a.dequantized(&t).unwrap().iter()).all(|(x, y)| x.to_bits() == y.to_bits()), "{} does not round-trip bit for bit", recipe.label());
             let header = u64::from_le_bytes(bytes[..8].try_into().unwrap()) as usize + 8;
             let data = bytes.len() - header;
             let parts = 9; // at most one byte of rounding per stored part
@@ -488,7 +490,7 @@ mod tests {
     fn damaged_packed_files_are_refused() {
         let t = tensor(3, 64, 1);
         let a = analyze(&t, &Recipe { granularity: Granularity::Group(32), ..Recipe::default() }).unwrap();
-        let bytes = pack(&a, &t.shape).unwrap();
+        let bytes = pack(&a, &t).unwrap();
         assert!(unpack(&bytes[..bytes.len() - 5]).is_err());
         let plain = crate::tensor::npy::write_f32(&[1.0, 2.0], &[2]);
         assert!(unpack(&plain[..]).is_err());

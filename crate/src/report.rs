@@ -9,7 +9,7 @@ use crate::methods::smooth::SmoothingStudy;
 use crate::methods::MethodFigures;
 use crate::metrics::ErrorFigures;
 use crate::recipe::Recipe;
-use crate::tensor::{view_2d, DType, Tensor};
+use crate::tensor::{view_2d, Tensor};
 use serde::Serialize;
 
 /// Identifies the JSON report's layout; bumped on any incompatible change.
@@ -106,11 +106,6 @@ pub struct Report<'a> {
 impl<'a> Report<'a> {
     /// The report of `analysis` run on `tensor`.
     pub fn new(tensor: &'a Tensor, analysis: &'a Analysis) -> Self {
-        Self::of(&tensor.name, tensor.dtype, &tensor.shape, analysis)
-    }
-
-    /// The report of `analysis` run on a tensor known by its name, source type and shape.
-    pub fn of(name: &'a str, dtype: DType, shape: &'a [usize], analysis: &'a Analysis) -> Self {
         let columns = &analysis.columns;
         let outliers = columns.outliers();
         let outlier_column_count = outliers.len();
@@ -126,7 +121,7 @@ impl<'a> Report<'a> {
             .collect();
         Report {
             schema: SCHEMA,
-            tensor: TensorSummary { name, dtype: dtype.name(), shape },
+            tensor: TensorSummary { name: &tensor.name, dtype: tensor.dtype.name(), shape: &tensor.shape },
             recipe: analysis.recipe,
             label: analysis.recipe.label(),
             bits_per_weight: analysis.cost.bits_per_weight,

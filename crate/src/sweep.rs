@@ -152,7 +152,7 @@ fn fault(e: &Error) -> String {
     }
 }
 
-/// Plain recipes without calibration keep no reconstruction (see `analysis::headline`), so a
+/// Plain recipes without calibration keep no reconstruction (see `crate::analysis`), so a
 /// sweep runs up to this many of them side by side on the pool; any other recipe runs alone,
 /// spread over the pool itself. Side by side, no run waits for the pool to be handed its blocks
 /// and gathered again.

@@ -14,6 +14,7 @@ use crate::recipe::Recipe;
 use crate::report::Report;
 use crate::tensor::{self, ByteSource, ReadOptions, Tensor, ValueScan};
 use serde::Serialize;
+use std::rc::Rc;
 use wasm_bindgen::prelude::*;
 
 fn js_error(err: Error) -> JsError {
@@ -376,7 +377,9 @@ pub fn demo_weight() -> TensorHandle {
 /// A tensor held in wasm memory.
 #[wasm_bindgen]
 pub struct TensorHandle {
-    tensor: Tensor,
+    /// Shared with the results taken from it: a plain recipe's reconstruction is made again from
+    /// the tensor when it is exported.
+    tensor: Rc<Tensor>,
     /// Its range and non-finite values, found once: the tensor never changes.
     scan: ValueScan,
 }
@@ -384,7 +387,7 @@ pub struct TensorHandle {
 impl TensorHandle {
     fn new(tensor: Tensor) -> Self {
         let scan = tensor.scan();
-        TensorHandle { tensor, scan }
+        TensorHandle { tensor: Rc::new(tensor), scan }
     }
 }
 
@@ -495,8 +498,7 @@ impl TensorHandle {
         let calib = calibration.map(|c| &c.calib);
         let analysis = analyze_with(&self.tensor, &recipe, calib, &mut report).map_err(js_error)?;
         let summary = to_js(&Report::new(&self.tensor, &analysis).without_group_lists())?;
-        let t = &self.tensor;
-        Ok(AnalysisHandle { analysis, summary, name: t.name.clone(), dtype: t.dtype, shape: t.shape.clone() })
+        Ok(AnalysisHandle { analysis, summary, tensor: Rc::clone(&self.tensor) })
     }
 
     /// Run a sweep's `recipes` (see `sweepRecipes`) and mark the front against `by` ("sqnr",
@@ -566,9 +568,8 @@ impl TensorHandle {
 pub struct AnalysisHandle {
     analysis: Analysis,
     summary: JsValue,
-    name: String,
-    dtype: crate::tensor::DType,
-    shape: Vec<usize>,
+    /// The tensor it was taken from.
+    tensor: Rc<Tensor>,
 }
 
 #[wasm_bindgen]
@@ -579,7 +580,7 @@ impl AnalysisHandle {
     }
 
     fn report(&self) -> Report<'_> {
-        Report::of(&self.name, self.dtype, &self.shape, &self.analysis)
+        Report::new(&self.tensor, &self.analysis)
     }
 
     /// The complete JSON report.
@@ -601,7 +602,7 @@ impl AnalysisHandle {
 
     /// The packed `.safetensors` file of this result.
     pub fn packed(&self) -> Result<Vec<u8>, JsError> {
-        crate::packed::pack(&self.analysis, &self.shape).map_err(js_error)
+        crate::packed::pack(&self.analysis, &self.tensor).map_err(js_error)
     }
 
     /// MSE of every group, row-major over [groups.rows × groups.per_row].
@@ -649,7 +650,8 @@ impl AnalysisHandle {
 
     /// The dequantized tensor as a float32 `.npy` file in the source's stored shape.
     #[wasm_bindgen(js_name = dequantizedNpy)]
-    pub fn dequantized_npy(&self) -> Vec<u8> {
-        crate::tensor::npy::write_f32(self.analysis.dequantized.as_slice().expect("row-major"), &self.shape)
+    pub fn dequantized_npy(&self) -> Result<Vec<u8>, JsError> {
+        let values = self.analysis.dequantized(&self.tensor).map_err(js_error)?;
+        Ok(crate::tensor::npy::write_f32(values.as_slice().expect("row-major"), &self.tensor.shape))
     }
 }

@@ -136,38 +136,18 @@ pub fn rtn(w: ArrayView2<f32>, recipe: &Recipe, kept: &keep::Kept) -> Result<Qua
     if recipe.format == Format::Codebook {
         return codebooks(w, recipe, kept);
     }
-    Ok(rtn_rows(w, recipe, kept, &(), &mut |_, _| {})?.0)
-}
-
-/// Round to nearest over the rows of `w` in one pass, showing each finished run of groups and
-/// its reconstruction to `observer` while both are still in cache. This is the plain recipe's
-/// path, and the speed benchmark's subject.
-pub(crate) fn rtn_rows<O: RowObserver>(
-    w: ArrayView2<f32>,
-    recipe: &Recipe,
-    kept: &keep::Kept,
-    observer: &O,
-    progress: &mut dyn FnMut(usize, usize),
-) -> Result<(Quantized, O::Total)> {
-    let (mut grouped, double) = round_to_nearest(w, recipe, kept, observer, Reconstruction::Keep, progress)?;
-    let q = Quantized { double_quant: double, ..Quantized::plain(grouped.kept_out(), grouped.params) };
-    Ok((q, grouped.observed))
-}
-
-/// [`rtn_rows`] for the observer alone: the reconstruction is not kept.
-pub(crate) fn rtn_observe<O: RowObserver>(
-    w: ArrayView2<f32>,
-    recipe: &Recipe,
-    observer: &O,
-    progress: &mut dyn FnMut(usize, usize),
-) -> Result<O::Total> {
-    Ok(round_to_nearest(w, recipe, &keep::Kept::default(), observer, Reconstruction::Discard, progress)?.0.observed)
+    let (mut grouped, double_quant) = round_to_nearest(w, recipe, kept, &(), Reconstruction::Keep, &mut |_, _| {})?;
+    Ok(Quantized { double_quant, ..Quantized::plain(grouped.kept_out(), grouped.params) })
 }
 
 /// NF4's double-quantized block constants, when the recipe asks for them.
 type DoubleQuant = Option<DoubleQuantized>;
 
-fn round_to_nearest<O: RowObserver>(
+/// Round to nearest over the rows of `w` in one pass, showing each finished run of groups and
+/// its reconstruction to `observer` while both are still in cache, and keeping the
+/// reconstruction or not as `reconstruction` says. This is the plain recipe's path, and the
+/// speed benchmark's subject.
+pub(crate) fn round_to_nearest<O: RowObserver>(
     w: ArrayView2<f32>,
     recipe: &Recipe,
     kept: &keep::Kept,

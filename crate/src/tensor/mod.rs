@@ -21,8 +21,9 @@ use serde::Serialize;
 
 pub use dtype::{DType, Element};
 
-/// Largest element count the tool will load. In wasm the whole heap is 4 GiB and an analysis
-/// holds about 2.5 copies of the tensor in f32, so the cap keeps one copy at 1 GiB there.
+/// Largest element count the tool will load. In wasm the whole heap is 4 GiB, and an analysis by
+/// a method other than plain round to nearest holds about 2.5 copies of the tensor in f32 (the
+/// plain recipe about 1.1), so the cap keeps one copy at 1 GiB there.
 #[cfg(target_arch = "wasm32")]
 pub const MAX_ELEMENTS: usize = 1 << 28;
 /// Largest element count the tool will load natively (16 GiB of f32).
@@ -249,9 +250,10 @@ fn fortran_to_c(values: Vec<f32>, shape: &[usize]) -> Vec<f32> {
     array.as_standard_layout().iter().copied().collect()
 }
 
-/// Bytes a round-to-nearest analysis of `count` elements holds at its peak: the tensor's f32 copy
-/// and its reconstruction, plus a quarter for the per-group and per-column figures and the
-/// allocator (the speed table measures 2.3–2.5× the f32 size).
+/// Bytes a round-to-nearest analysis of `count` elements holds at its peak, at most: the tensor's
+/// f32 copy and, with calibration, its reconstruction until the output error is taken, plus a
+/// quarter for the figures and the allocator (without calibration the speed table measures
+/// 1.04–1.25× the f32 size).
 pub fn analysis_bytes(count: usize) -> u64 {
     count as u64 * 4 * 5 / 2
 }
