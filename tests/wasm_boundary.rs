@@ -2,7 +2,7 @@
 //! Errors must arrive as JS errors with the core's message, never as panics.
 #![cfg(target_arch = "wasm32")]
 
-use bitloupe::wasm::{calibration_from_bytes, demo_weight, open_bytes, open_file, parse_text, recipe_defaults, warm_up};
+use bitloupe::wasm::{calibration_from_bytes, demo_weight, open_bytes, open_file, parse_text, recipe_defaults, take_panic_message, warm_up};
 use bitloupe::{analyze, tensor, ReadOptions};
 use wasm_bindgen::prelude::*;
 use wasm_bindgen_test::*;
@@ -161,4 +161,21 @@ fn calibration_methods_run_in_wasm() {
     assert!(get(&study, "error_with").as_f64().unwrap() < get(&study, "error_without").as_f64().unwrap());
     let narrow = calibration_from_bytes(METHOD_ACTS, None, "sample", 300).err().unwrap();
     assert!(message(narrow).contains("192 columns but the weight has 300"));
+}
+
+/// Rust aborts once an allocation fails, and in WebAssembly that abort is a bare trap with no
+/// message; the allocator remembers the request so the page can say that memory ran out (in the
+/// words the compute worker's out-of-memory pattern looks for).
+#[wasm_bindgen_test]
+fn a_failed_allocation_is_reported_with_its_size() {
+    let _ = take_panic_message();
+    // Two requests of 2 GiB less 64 KiB: the first fits the 4 GiB a wasm32 memory can address
+    // (WebAssembly core specification: 32-bit memory indices), the second not beside it and the
+    // module's own stack and data. Untouched, the pages cost the test no resident memory.
+    let bytes = (1usize << 31) - (1 << 16);
+    let (mut held, mut more) = (Vec::<u8>::new(), Vec::<u8>::new());
+    held.try_reserve_exact(bytes).unwrap();
+    assert!(more.try_reserve_exact(bytes).is_err());
+    assert_eq!(take_panic_message(), Some(format!("memory allocation of {bytes} bytes failed")));
+    assert_eq!(take_panic_message(), None, "a failure is reported once");
 }

@@ -15,6 +15,20 @@ export class Cancelled extends Error {
 /** Restarts in a row whose worker never got ready, after which the bridge gives up. */
 const MAX_FAILED_STARTS = 3;
 
+/**
+ * How an exhausted wasm memory shows: Rust's allocation-failure messages (the core reports its
+ * own aborts in those words, see `takePanicMessage`), or the engine's.
+ */
+const OUT_OF_MEMORY = /AllocError|memory allocation of \d+ bytes failed|capacity overflow|Out of memory|out of memory|Array buffer allocation failed/;
+
+/** What the user reads of a trap inside the core, from the panic or engine message `reason`. */
+function trapText(reason, where) {
+  const exhausted = reason.match(OUT_OF_MEMORY);
+  return exhausted
+    ? `the core ran out of memory (${exhausted[0]}): this run needs more than the 4 GiB of WebAssembly memory a browser gives one page; try a smaller tensor, fewer calibration tokens, or the command-line tool`
+    : `the computation failed inside ${where} (${reason})`;
+}
+
 export class CoreBridge {
   /**
    * @param {() => Worker} makeWorker
@@ -45,7 +59,7 @@ export class CoreBridge {
     const channel = `bitloupe-pool-${Date.now()}-${Math.random()}`;
     if (this.threads) {
       this.pool = new BroadcastChannel(channel);
-      this.pool.onmessage = (event) => this.restart(new Error(`a compute pool worker failed (${event.data}); the last tensor was reloaded`));
+      this.pool.onmessage = (event) => this.restart(new Error(`${trapText(event.data, 'a compute pool worker')}; the last tensor was reloaded`));
     }
     try {
       const ready = await this.send('init', { wasm: this.wasm, threads: this.threads, channel });
@@ -70,7 +84,7 @@ export class CoreBridge {
       entry.resolve(message.result);
       return;
     }
-    entry.reject(new Error(message.error));
+    entry.reject(new Error(message.fatal ? trapText(message.error, 'the core') : message.error));
     if (message.fatal) this.restart(new Error('the compute worker was restarted and the last tensor reloaded'));
   }
 

@@ -14,7 +14,13 @@ self.onmessage = ({ data: { module, memory, channel } }) => {
     postMessage('ready');
     wasm_bindgen.poolThread();
   } catch (err) {
-    new BroadcastChannel(channel).postMessage(String((err && err.message) || err));
+    let panic = null;
+    try {
+      panic = wasm_bindgen.takePanicMessage();
+    } catch {
+      // The module never started: the error itself says why.
+    }
+    new BroadcastChannel(channel).postMessage(panic || String((err && err.message) || err));
     throw err;
   }
 };

@@ -4,9 +4,6 @@
 /* global wasm_bindgen, importScripts */
 'use strict';
 
-/** How an exhausted wasm memory shows: Rust's allocation-failure messages, or the engine's. */
-const OUT_OF_MEMORY = /AllocError|memory allocation of \d+ bytes failed|capacity overflow|Out of memory|out of memory|Array buffer allocation failed/;
-
 /** Pages of shared memory the threaded core starts with (more than its static data needs). */
 const SHARED_MEMORY_PAGES = 256;
 
@@ -255,16 +252,10 @@ async function handle(event) {
     const out = await handler(args, progress);
     self.postMessage({ id, ok: true, result: out.value, computeMs: performance.now() - started }, out.transfer || []);
   } catch (err) {
-    // A trap (a panic, or memory exhausted) leaves the wasm instance unusable: report it, and
-    // let the bridge start a fresh worker.
+    // A trap (a panic, or memory exhausted) leaves the wasm instance unusable: report it (the
+    // bridge words it), and let the bridge start a fresh worker.
     const fatal = err instanceof WebAssembly.RuntimeError;
     const panic = fatal && core ? core.takePanicMessage() : null;
-    const exhausted = fatal && `${panic} ${message(err)}`.match(OUT_OF_MEMORY);
-    const text = !fatal
-      ? message(err)
-      : exhausted
-        ? `the core ran out of memory (${exhausted[0]}): this run needs more than the 4 GiB of WebAssembly memory a browser gives one page; try a smaller tensor, fewer calibration tokens, or the command-line tool`
-        : `the computation failed inside the core (${panic || message(err)})`;
-    self.postMessage({ id, ok: false, error: text, fatal });
+    self.postMessage({ id, ok: false, error: panic || message(err), fatal });
   }
 }

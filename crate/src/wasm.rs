@@ -14,7 +14,9 @@ use crate::recipe::Recipe;
 use crate::report::Report;
 use crate::tensor::{self, ByteSource, ReadOptions, Tensor, ValueScan};
 use serde::Serialize;
+use std::alloc::{GlobalAlloc, Layout, System};
 use std::rc::Rc;
+use std::sync::atomic::{AtomicUsize, Ordering};
 use wasm_bindgen::prelude::*;
 
 fn js_error(err: Error) -> JsError {
@@ -30,6 +32,44 @@ fn to_js<T: Serialize + ?Sized>(value: &T) -> Result<JsValue, JsError> {
 thread_local! {
     static LAST_PANIC: std::cell::RefCell<Option<String>> = const { std::cell::RefCell::new(None) };
 }
+
+/// The wasm build's allocator: the standard one, remembering the size of the last request it
+/// could not meet. Rust aborts after such a failure, and in WebAssembly an abort is a bare trap
+/// (there is no error stream for the usual message), so [`take_panic_message`] gives that message
+/// instead and the page can say that memory ran out.
+struct RememberingFailures;
+
+/// Bytes of the last allocation that failed, 0 if none since the last [`take_panic_message`]
+/// (shared by every thread: a pool worker's failure is read from the compute worker too).
+static FAILED_ALLOCATION: AtomicUsize = AtomicUsize::new(0);
+
+impl RememberingFailures {
+    fn noted(p: *mut u8, bytes: usize) -> *mut u8 {
+        if p.is_null() {
+            FAILED_ALLOCATION.store(bytes, Ordering::Relaxed);
+        }
+        p
+    }
+}
+
+// SAFETY: every call goes to the standard allocator unchanged; a null result is only noted.
+unsafe impl GlobalAlloc for RememberingFailures {
+    unsafe fn alloc(&self, layout: Layout) -> *mut u8 {
+        Self::noted(System.alloc(layout), layout.size())
+    }
+    unsafe fn alloc_zeroed(&self, layout: Layout) -> *mut u8 {
+        Self::noted(System.alloc_zeroed(layout), layout.size())
+    }
+    unsafe fn dealloc(&self, ptr: *mut u8, layout: Layout) {
+        System.dealloc(ptr, layout)
+    }
+    unsafe fn realloc(&self, ptr: *mut u8, layout: Layout, new_size: usize) -> *mut u8 {
+        Self::noted(System.realloc(ptr, layout, new_size), new_size)
+    }
+}
+
+#[global_allocator]
+static ALLOCATOR: RememberingFailures = RememberingFailures;
 
 /// Install the panic hook when the module starts: it logs to the console and keeps the message
 /// so the worker can show it on the page.
@@ -79,10 +119,13 @@ pub fn pool_thread() -> Result<(), JsError> {
     Ok(())
 }
 
-/// The message of the last panic, if one happened since the last call.
+/// The message of the last panic on this thread, else of the last allocation that failed on any
+/// thread (in the words of Rust's own report), if either happened since the last call.
 #[wasm_bindgen(js_name = takePanicMessage)]
 pub fn take_panic_message() -> Option<String> {
-    LAST_PANIC.with(|last| last.borrow_mut().take())
+    let failed = FAILED_ALLOCATION.swap(0, Ordering::Relaxed);
+    let panic = LAST_PANIC.with(|last| last.borrow_mut().take());
+    panic.or_else(|| (failed > 0).then(|| format!("memory allocation of {failed} bytes failed")))
 }
 
 /// The default recipe and the allowed ranges: the page builds its controls from these.

@@ -151,9 +151,19 @@ test('a tensor too large for the browser is refused before any allocation', asyn
   const before = await pageState(page);
   const reportBefore = await reportFigures(page);
   // A sparse 2.2 GB file whose header lists one f32 tensor of 24576 × 24576 (2.25 GiB as f32).
-  const file = path.join(mkdtempSync(path.join(os.tmpdir(), 'bitloupe-')), 'huge.safetensors');
-  const bytes = 24576 * 24576 * 4;
-  const header = Buffer.from(JSON.stringify({ 'huge.weight': { dtype: 'F32', shape: [24576, 24576], data_offsets: [0, bytes] } }));
+  const file = sparseSafetensors('huge.weight', 'F32', [24576, 24576], 4);
+  await page.setInputFiles('#file-input', file);
+  await page.waitForSelector('#input-message:not([hidden])');
+  assert.match(await page.textContent('#input-message'), /603979776 elements need 2\.2 GiB as f32/);
+  await assertNothingLost(page, before, reportBefore, { bits: 3, label: 'int3 asym g128 f16 on demo' });
+  await context.close();
+});
+
+/** A sparse `.safetensors` file of one all-zero tensor (the file system reads the hole as zeros). */
+function sparseSafetensors(name, dtype, shape, bytesPerValue) {
+  const file = path.join(mkdtempSync(path.join(os.tmpdir(), 'bitloupe-')), `${name}.safetensors`);
+  const bytes = shape.reduce((a, b) => a * b, 1) * bytesPerValue;
+  const header = Buffer.from(JSON.stringify({ [name]: { dtype, shape, data_offsets: [0, bytes] } }));
   const size = Buffer.alloc(8);
   size.writeBigUInt64LE(BigInt(header.length));
   const fd = openSync(file, 'w');
@@ -161,10 +171,29 @@ test('a tensor too large for the browser is refused before any allocation', asyn
   writeSync(fd, header);
   ftruncateSync(fd, 8 + header.length + bytes);
   closeSync(fd);
+  return file;
+}
+
+test('the largest tensor the browser holds is analysed, and a method that needs more memory says so', async () => {
+  const { page, context } = await openPage(browser);
+  // 131071 × 4096 values, one row short of 2^29: 2 GiB less 16 KiB as f32, the largest array a
+  // wasm32 program can hold (Rust caps an allocation at isize::MAX bytes). Round to nearest
+  // keeps no reconstruction, so it fits the page's 4 GiB beside the tensor.
+  const file = sparseSafetensors('wide.embed', 'BF16', [131071, 4096], 2);
   await page.setInputFiles('#file-input', file);
-  await page.waitForSelector('#input-message:not([hidden])');
-  assert.match(await page.textContent('#input-message'), /603979776 elements need 2\.2 GiB as f32/);
-  await assertNothingLost(page, before, reportBefore, { bits: 3, label: 'int3 asym g128 f16 on demo' });
+  await page.waitForFunction(() => document.getElementById('status').textContent.includes('analysed in'), null, { timeout: 180_000 });
+  assert.match(await page.textContent('#status'), /int4 asym g128 f16 on wide\.embed/);
+  const before = await pageState(page);
+  // HQQ keeps its reconstruction: another 2 GiB, which the 4 GiB cannot give. The allocator's
+  // failure (a bare trap in WebAssembly) reaches the user as memory running out.
+  await page.selectOption('#method', 'hqq');
+  await page.waitForSelector('#recipe-message:not([hidden])', { timeout: 180_000 });
+  assert.match(await page.textContent('#recipe-message'), /ran out of memory \(memory allocation of \d+ bytes failed\)/);
+  await page.waitForFunction(() => /reloaded/.test(document.getElementById('input-message').textContent), null, { timeout: 180_000 });
+  await shot(page, '08-largest-tensor');
+  const after = await pageState(page);
+  assert.equal(after.tensor, before.tensor, 'the tensor stays');
+  assert.deepEqual(after.figures, before.figures, 'the last result stays on screen');
   await context.close();
 });
 

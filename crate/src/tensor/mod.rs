@@ -21,11 +21,13 @@ use serde::Serialize;
 
 pub use dtype::{DType, Element};
 
-/// Largest element count the tool will load. In wasm the whole heap is 4 GiB, and an analysis by
-/// a method other than plain round to nearest holds about 2.5 copies of the tensor in f32 (the
-/// plain recipe about 1.1), so the cap keeps one copy at 1 GiB there.
+/// Largest element count the tool will load. In wasm, the most f32 values one array can hold
+/// (wasm32 addresses 4 GiB, and Rust caps an allocation at `isize::MAX` bytes, 2 GiB): the plain
+/// round-to-nearest analysis needs about 1.1 copies of the tensor, so it runs on the largest; the
+/// other methods keep a reconstruction and more, and where the 4 GiB do not hold them the page
+/// says that memory ran out and reloads the tensor.
 #[cfg(target_arch = "wasm32")]
-pub const MAX_ELEMENTS: usize = 1 << 28;
+pub const MAX_ELEMENTS: usize = isize::MAX as usize / 4;
 /// Largest element count the tool will load natively (16 GiB of f32).
 #[cfg(not(target_arch = "wasm32"))]
 pub const MAX_ELEMENTS: usize = 1 << 32;
@@ -292,7 +294,7 @@ pub fn element_count(shape: &[usize]) -> Result<usize> {
             "it holds no elements, but its other axes span {extent}, more than the {MAX_ELEMENTS} this build holds"
         )),
         Some(count) if count > MAX_ELEMENTS => refused(format!(
-            "its {count} elements need {:.1} GiB as f32, and an analysis about twice that; this build holds at most {MAX_ELEMENTS} elements",
+            "its {count} elements need {:.1} GiB as f32; this build holds at most {MAX_ELEMENTS} elements",
             count as f64 * 4.0 / (1u64 << 30) as f64
         )),
         Some(_) if shape.contains(&0) => Ok(0),
