@@ -1,12 +1,12 @@
 //! One recipe run on one tensor (and, optionally, its calibration data): the dequantized values,
 //! the error figures per tensor, per group and per input column, the output error when there is
-//! calibration, and the bit budget.
+//! calibration, and the bit budget. Every front end reaches the core through [`analyze_with`]
+//! (or [`analyze`] without calibration).
 //!
 //! A plain round to nearest does not keep its reconstruction: it is measured row by row while in
 //! cache and made again only when asked for (an export), the same values bit for bit, since it
 //! is a function of the tensor and the recipe alone. Keeping it would double the memory of the
-//! most common analysis and add the tensor's size again to its memory traffic. Every front end reaches the core through [`analyze_with`]
-//! (or [`analyze`] without calibration).
+//! most common analysis and add the tensor's size again to its memory traffic.
 
 use crate::calib::{output_error, Calibration, OutputError};
 use crate::cost::BitCost;
