@@ -65,9 +65,9 @@ pub fn hessian(sample: ArrayView2<f32>, column_factors: Option<&[f32]>) -> Array
     h
 }
 
-/// Square matrices of the input width that GPTQ holds at once at its peak: the Hessian, its
-/// reversed copy, the Cholesky factor, its inverse and the upper factor of H⁻¹.
-const PEAK_SQUARE_MATRICES: usize = 5;
+/// Square matrices of the input width that GPTQ holds at once at its peak: the Hessian (factorised
+/// in place) and the upper factor of H⁻¹ (see [`linalg::inverse_cholesky_upper`]).
+const PEAK_SQUARE_MATRICES: usize = 2;
 
 /// Refuse a weight whose input width makes GPTQ's square matrices more than the `available`
 /// bytes of memory (when the caller knows them), or makes one of them more than this build can
@@ -140,8 +140,7 @@ pub fn quantize(
         work = Array2::from_shape_fn((rows, cols), |(r, c)| work[[r, perm[c]]]);
         h = Array2::from_shape_fn((cols, cols), |(i, j)| h[[perm[i], perm[j]]]);
     }
-    let u = linalg::inverse_cholesky_upper(&h)?;
-    drop(h);
+    let u = linalg::inverse_cholesky_upper(h)?;
 
     let width = group_width(recipe.granularity, cols);
     let per_row = recipe.granularity.groups_per_row(cols);
@@ -277,9 +276,10 @@ mod tests {
     #[test]
     fn too_wide_for_the_memory_is_refused_before_allocating() {
         assert!(check_width((4, 64), Some(1 << 30)).is_ok());
-        // 5 · 20000² · 4 bytes = 7.45 GiB.
-        let message = check_width((2, 20_000), Some(4 << 30)).unwrap_err().to_string();
-        assert!(message.contains("7.5 GiB") && message.contains("4.0 GiB of memory are available"), "{message}");
+        // 2 · 40000² · 4 bytes = 11.9 GiB.
+        let message = check_width((2, 40_000), Some(4 << 30)).unwrap_err().to_string();
+        assert!(message.contains("11.9 GiB") && message.contains("4.0 GiB of memory are available"), "{message}");
+        assert!(check_width((2, 20_000), Some(4 << 30)).is_ok(), "2 · 20000² · 4 bytes = 3.0 GiB");
         assert!(check_width((2, 20_000), None).is_ok());
         let message = check_width((2, 1 << 40), None).unwrap_err().to_string();
         assert!(message.contains("more than this build can address"), "{message}");
