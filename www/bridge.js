@@ -21,12 +21,15 @@ const MAX_FAILED_STARTS = 3;
  */
 const OUT_OF_MEMORY = /AllocError|memory allocation of \d+ bytes failed|capacity overflow|Out of memory|out of memory|Array buffer allocation failed/;
 
-/** What the user reads of a trap inside the core, from the panic or engine message `reason`. */
-function trapText(reason, where) {
+/**
+ * What the user reads of a trap inside the core: out of memory, or `failed` with the panic or
+ * engine message `reason`.
+ */
+function trapText(reason, failed) {
   const exhausted = reason.match(OUT_OF_MEMORY);
   return exhausted
     ? `the core ran out of memory (${exhausted[0]}): this run needs more than the 4 GiB of WebAssembly memory a browser gives one page; try a smaller tensor, fewer calibration tokens, or the command-line tool`
-    : `the computation failed inside ${where} (${reason})`;
+    : `${failed} (${reason})`;
 }
 
 export class CoreBridge {
@@ -59,7 +62,7 @@ export class CoreBridge {
     const channel = `bitloupe-pool-${Date.now()}-${Math.random()}`;
     if (this.threads) {
       this.pool = new BroadcastChannel(channel);
-      this.pool.onmessage = (event) => this.restart(new Error(`${trapText(event.data, 'a compute pool worker')}; the last tensor was reloaded`));
+      this.pool.onmessage = (event) => this.restart(new Error(`${trapText(event.data, 'a compute pool worker failed')}; the last tensor was reloaded`));
     }
     try {
       const ready = await this.send('init', { wasm: this.wasm, threads: this.threads, channel });
@@ -84,7 +87,7 @@ export class CoreBridge {
       entry.resolve(message.result);
       return;
     }
-    entry.reject(new Error(message.fatal ? trapText(message.error, 'the core') : message.error));
+    entry.reject(new Error(message.fatal ? trapText(message.error, 'the computation failed inside the core') : message.error));
     if (message.fatal) this.restart(new Error('the compute worker was restarted and the last tensor reloaded'));
   }
 

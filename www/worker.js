@@ -245,6 +245,8 @@ async function handle(event) {
     self.postMessage({ id, progress: [done, total], items });
     items = [];
   };
+  // A failure noted before this request (one the core handled, say) is not this request's.
+  core?.takePanicMessage();
   try {
     const handler = handlers[type];
     if (!handler) throw new Error(`unknown request ${type}`);

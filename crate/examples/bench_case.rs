@@ -98,7 +98,8 @@ fn main() -> Result<(), Box<dyn std::error::Error + Send + Sync>> {
     times.sort_by(f64::total_cmp);
     let median_ms = times[times.len() / 2];
     // The floor set by memory traffic: the same bytes read and written by a plain copy into
-    // fresh memory (the analysis reads each weight once and writes its reconstruction once).
+    // fresh memory (the analysis reads each weight once and writes a row of scratch per row;
+    // until the thirteenth session it wrote its reconstruction once, the copy's write).
     let mut copies = Vec::with_capacity(repeats);
     for _ in 0..repeats.max(1) {
         let start = Instant::now();

@@ -1,5 +1,5 @@
-//! One recipe run on one tensor (and, optionally, its calibration data): the dequantized values,
-//! the error figures per tensor, per group and per input column, the output error when there is
+//! One recipe run on one tensor (and, optionally, its calibration data): the reconstruction, the
+//! error figures per tensor, per group and per input column, the output error when there is
 //! calibration, and the bit budget. Every front end reaches the core through [`analyze_with`]
 //! (or [`analyze`] without calibration).
 //!
@@ -362,26 +362,24 @@ fn run(
 
 impl Analysis {
     /// The reconstruction x̂ in the 2-D view of `tensor`, which must be the tensor analysed: a
-    /// plain recipe's is made again from it (the same values bit for bit), any other's was kept.
-    /// A tensor whose fit differs from the analysed one's is refused.
+    /// plain recipe's is made again from it, and measured again on the way, so that a tensor
+    /// whose parameters or whole-tensor figures differ from the result's, bit for bit, is refused;
+    /// any other recipe's was kept.
     pub fn dequantized(&self, tensor: &Tensor) -> Result<Cow<'_, Array2<f32>>> {
         if let Some(x_hat) = &self.kept_reconstruction {
             return Ok(Cow::Borrowed(x_hat));
         }
-        let not_analysed = || Error::BadShape { shape: tensor.shape.clone(), detail: "it is not the tensor this result was taken from".into() };
+        let not_analysed = || Error::NotTheAnalysedTensor { shape: tensor.shape.clone() };
         if (tensor.rows(), tensor.cols()) != self.dim {
             return Err(not_analysed());
         }
-        let again = methods::rtn(tensor.values.view(), &self.recipe, &Kept::default())?;
-        if again.params != self.params {
-            return Err(not_analysed());
+        let measure = Measure::new(&self.recipe, self.dim.1, Detail::Totals);
+        let (again, _) = methods::round_to_nearest(tensor.values.view(), &self.recipe, &Kept::default(), &measure, Reconstruction::Keep, &mut |_, _| {})?;
+        let methods::Grouped { out, params, observed, .. } = again;
+        match out {
+            Some(x_hat) if params == self.params && measure.finish(observed).0 == self.totals => Ok(Cow::Owned(x_hat)),
+            _ => Err(not_analysed()),
         }
-        Ok(Cow::Owned(again.dequantized))
-    }
-
-    /// Rows and columns of the analysed tensor's 2-D view.
-    pub fn dim(&self) -> (usize, usize) {
-        self.dim
     }
 
     /// The rows and columns (of the 2-D view) that group `index` covers.
@@ -475,8 +473,13 @@ mod tests {
         let plain = analyze(&t, &Recipe::default()).unwrap();
         assert!(matches!(plain.dequantized(&t).unwrap(), Cow::Owned(_)));
         assert_eq!(*plain.dequantized(&t).unwrap(), methods::rtn(t.values.view(), &Recipe::default(), &Kept::default()).unwrap().dequantized);
-        assert!(matches!(plain.dequantized(&tensor(4, 300, 4)), Err(Error::BadShape { .. })), "same shape, other values");
-        assert!(matches!(plain.dequantized(&tensor(3, 400, 3)), Err(Error::BadShape { .. })), "other shape");
+        assert!(matches!(plain.dequantized(&tensor(4, 300, 4)), Err(Error::NotTheAnalysedTensor { .. })), "same shape, other values");
+        assert!(matches!(plain.dequantized(&tensor(3, 400, 3)), Err(Error::NotTheAnalysedTensor { .. })), "other shape");
+        // The same fit, other values: [0, 0.5, 1] and [0, 0.3, 1] share their range.
+        let row = |v: Vec<f32>| Tensor::from_values("r", DType::F32, Array2::from_shape_vec((1, 3), v).unwrap());
+        let per_row = Recipe { granularity: Granularity::Row, ..Recipe::default() };
+        let a = analyze(&row(vec![0.0, 0.5, 1.0]), &per_row).unwrap();
+        assert!(matches!(a.dequantized(&row(vec![0.0, 0.3, 1.0])), Err(Error::NotTheAnalysedTensor { .. })), "same parameters, other values");
         let hqq = analyze(&t, &Recipe { method: Method::Hqq, ..Recipe::default() }).unwrap();
         assert!(matches!(hqq.dequantized(&t).unwrap(), Cow::Borrowed(_)), "other methods keep theirs");
     }

@@ -2,7 +2,8 @@
 //! files is read, quantized and measured, and the figures are summed into whole-model totals.
 //!
 //! Tensors are taken strictly one at a time, so peak memory is that of the largest single
-//! analysis (the tensor in f32 and its figures) whatever the size of
+//! analysis (the tensor in f32, its figures, and a reconstruction for methods other than plain
+//! round to nearest) whatever the size of
 //! the checkpoint; each analysis spreads its row blocks over every thread ([`crate::rows`]), so
 //! no figure depends on the thread count.
 //!

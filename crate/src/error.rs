@@ -110,6 +110,12 @@ pub enum Error {
         /// The scale fits its type, but the grid's far end passes the largest f32.
         beyond_f32: bool,
     },
+    /// A tensor other than the one a result was taken from, given to make that result's
+    /// reconstruction again.
+    NotTheAnalysedTensor {
+        /// The shape of the tensor given.
+        shape: Vec<usize>,
+    },
     /// A codebook whose levels cannot be stored in the f16 that codebooks keep them in.
     LevelOverflow {
         /// The row whose codebook it is, or `None` for one codebook of the whole tensor.
@@ -169,6 +175,9 @@ impl fmt::Display for Error {
                 write!(f, "line {line}, column {column}: {detail}")
             }
             Error::BadShape { shape, detail } => write!(f, "shape {shape:?} cannot be analysed: {detail}"),
+            Error::NotTheAnalysedTensor { shape } => {
+                write!(f, "this result was taken from another tensor, so its reconstruction cannot be made from this one (shape {shape:?})")
+            }
             Error::NonFinite { nan, inf, first_row, first_col } => write!(
                 f,
                 "the tensor holds {nan} NaN and {inf} infinite values (first at row {first_row}, column {first_col}); \

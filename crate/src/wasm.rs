@@ -606,6 +606,11 @@ impl TensorHandle {
     }
 }
 
+/// Most values whose reconstruction the page exports: three copies of them in f32 (the tensor, the
+/// reconstruction, the file) take 3 GiB of the 4 GiB, and this was the page's cap for any tensor
+/// while every analysis kept its reconstruction.
+const EXPORT_MAX_ELEMENTS: usize = 1 << 28;
+
 /// The result of one recipe on one tensor.
 #[wasm_bindgen]
 pub struct AnalysisHandle {
@@ -645,7 +650,22 @@ impl AnalysisHandle {
 
     /// The packed `.safetensors` file of this result.
     pub fn packed(&self) -> Result<Vec<u8>, JsError> {
+        self.check_export()?;
         crate::packed::pack(&self.analysis, &self.tensor).map_err(js_error)
+    }
+
+    /// Refuse an export that cannot fit the page's memory, before anything is allocated for it:
+    /// the reconstruction (made again for a plain recipe) and the file's bytes sit beside the
+    /// tensor, about three times its f32 size.
+    fn check_export(&self) -> Result<(), JsError> {
+        let count = self.tensor.values.len();
+        if count <= EXPORT_MAX_ELEMENTS {
+            return Ok(());
+        }
+        let gib = 3.0 * count as f64 * 4.0 / f64::from(1u32 << 30);
+        Err(JsError::new(&format!(
+            "exporting the reconstruction of these {count} values needs about {gib:.1} GiB beside the page's other memory, more than the 4 GiB a browser gives one page; the command-line tool writes it (bitloupe quantize FILE --out … or --packed …)"
+        )))
     }
 
     /// MSE of every group, row-major over [groups.rows × groups.per_row].
@@ -694,6 +714,7 @@ impl AnalysisHandle {
     /// The dequantized tensor as a float32 `.npy` file in the source's stored shape.
     #[wasm_bindgen(js_name = dequantizedNpy)]
     pub fn dequantized_npy(&self) -> Result<Vec<u8>, JsError> {
+        self.check_export()?;
         let values = self.analysis.dequantized(&self.tensor).map_err(js_error)?;
         Ok(crate::tensor::npy::write_f32(values.as_slice().expect("row-major"), &self.tensor.shape))
     }

@@ -191,6 +191,11 @@ test('the largest tensor the browser holds is analysed, and a method that needs 
   assert.match(await page.textContent('#recipe-message'), /ran out of memory \(memory allocation of \d+ bytes failed\)/);
   await page.waitForFunction(() => /reloaded/.test(document.getElementById('input-message').textContent), null, { timeout: 180_000 });
   await shot(page, '08-largest-tensor');
+  // Its reconstruction, made again for the export, and the file would not fit beside it: refused
+  // before anything is allocated, with the way to get it.
+  await page.click('#download-npy');
+  await page.waitForFunction(() => /Nothing was saved/.test(document.getElementById('export-message').textContent));
+  assert.match(await page.textContent('#export-message'), /needs about 6\.0 GiB .* command-line tool/);
   const after = await pageState(page);
   assert.equal(after.tensor, before.tensor, 'the tensor stays');
   assert.deepEqual(after.figures, before.figures, 'the last result stays on screen');

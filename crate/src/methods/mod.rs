@@ -274,8 +274,9 @@ pub(crate) enum Reconstruction {
     /// Return it: the tensor's size again in fresh memory.
     Keep,
     /// Write each row into one reused row of scratch and drop it once observed: for figures that
-    /// need nothing else of it (a sweep's row, a checkpoint report), or fits that only need the
-    /// parameters. The memory traffic of writing the tensor out again is saved too.
+    /// need nothing else of it (every plain analysis without calibration, whose reconstruction
+    /// is made again on request), or fits that only need the parameters. The memory traffic of
+    /// writing the tensor out again is saved too.
     Discard,
 }
 

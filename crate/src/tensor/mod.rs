@@ -23,9 +23,9 @@ pub use dtype::{DType, Element};
 
 /// Largest element count the tool will load. In wasm, the most f32 values one array can hold
 /// (wasm32 addresses 4 GiB, and Rust caps an allocation at `isize::MAX` bytes, 2 GiB): the plain
-/// round-to-nearest analysis needs about 1.1 copies of the tensor, so it runs on the largest; the
-/// other methods keep a reconstruction and more, and where the 4 GiB do not hold them the page
-/// says that memory ran out and reloads the tensor.
+/// round-to-nearest analysis without calibration needs about 1.1 copies of the tensor, so it runs
+/// on the largest; other runs keep a reconstruction and more, and where the 4 GiB do not hold
+/// them the page says that memory ran out and reloads the tensor.
 #[cfg(target_arch = "wasm32")]
 pub const MAX_ELEMENTS: usize = isize::MAX as usize / 4;
 /// Largest element count the tool will load natively (16 GiB of f32).
