@@ -89,6 +89,7 @@ export class CoreBridge {
     }
     entry.reject(new Error(message.fatal ? trapText(message.error, 'the computation failed inside the core') : message.error));
     if (message.fatal) this.restart(new Error('the compute worker was restarted and the last tensor reloaded'));
+    else if (message.restart) this.restart(new Error(`${message.error}; the last tensor was reloaded`));
   }
 
   send(type, payload = {}, { onProgress, transfer = [] } = {}) {

@@ -7,6 +7,15 @@
 /** Pages of shared memory the threaded core starts with (more than its static data needs). */
 const SHARED_MEMORY_PAGES = 256;
 
+/**
+ * Values of two tensors (in f32) beyond which the tensor on screen is freed before another is
+ * read: 3 GiB of the page's 4 GiB, which leaves room for the new tensor's first analysis.
+ */
+const ROOM_FOR_TWO = 3 * 2 ** 28;
+
+/** A refusal after which the worker no longer holds the tensor on screen: the bridge restarts it. */
+class RestartAfter extends Error {}
+
 let core = null;
 let tensor = null;
 let analysis = null;
@@ -55,17 +64,25 @@ function run(t, recipe, progress) {
  * because of NaN or infinite values is refused like a bad file (with the core's count and
  * place), so the tensor on screen, its result and the calibration stay.
  */
-function openAndAnalyze(open, recipe, view, progress) {
-  const next = open();
-  const info = next.info();
-  if (info.nan + info.inf > 0) {
-    try {
-      next.checkFinite();
-    } catch (err) {
-      next.free();
-      throw err;
-    }
+function openAndAnalyze(open, recipe, view, progress, incoming = 0) {
+  // Two tensors too large to sit side by side in the page's memory: the one on screen gives way
+  // before the new one is read, and should the new one then be refused, the bridge is asked to
+  // restart the worker, which reopens the old one (its remembered open).
+  const makeRoom = tensor !== null && tensor.info().elements + incoming > ROOM_FOR_TWO;
+  if (makeRoom) {
+    tensor = replace(tensor, null);
+    analysis = replace(analysis, null);
   }
+  let next = null;
+  try {
+    next = open();
+    if (next.info().nan + next.info().inf > 0) next.checkFinite();
+  } catch (err) {
+    next?.free();
+    if (makeRoom && !(err instanceof WebAssembly.RuntimeError)) throw new RestartAfter(message(err));
+    throw err;
+  }
+  const info = next.info();
   // The new tensor replaces the one on screen whatever its first run gives, so that one and its
   // result give way now and their memory serves the run: a large layer opened after another
   // would otherwise hold both layers and both results at once, and fresh memory for the second
@@ -87,6 +104,17 @@ function openAndAnalyze(open, recipe, view, progress) {
   if (!analysis) return { value: { info, recipeError, calibDropped } };
   const out = analysisResult(analysis, view);
   return { value: { info, calibDropped, ...out.value }, transfer: out.transfer };
+}
+
+/** Values of the tensor `name` of `file` (the only one when `name` is null) from its header; 0 when it cannot be listed (opening it will say why). */
+function elementsOf(file, name, bf16) {
+  try {
+    const { entries } = core.listFile(file, bf16);
+    const entry = name === null || name === undefined ? entries[0] : entries.find((e) => e.name === name);
+    return entry ? entry.shape.reduce((a, b) => a * b, 1) : 0;
+  } catch {
+    return 0;
+  }
 }
 
 function tensorCols() {
@@ -154,7 +182,7 @@ const handlers = {
     return openAndAnalyze(() => core.demoWeight(), recipe, view, progress);
   },
   openFile({ file, name, bf16, recipe, view }, progress) {
-    return openAndAnalyze(() => core.openFile(file, name ?? undefined, bf16), recipe, view, progress);
+    return openAndAnalyze(() => core.openFile(file, name ?? undefined, bf16), recipe, view, progress, elementsOf(file, name, bf16));
   },
   openText({ text, recipe, view }, progress) {
     return openAndAnalyze(() => core.parseText(text), recipe, view, progress);
@@ -258,6 +286,6 @@ async function handle(event) {
     // bridge words it), and let the bridge start a fresh worker.
     const fatal = err instanceof WebAssembly.RuntimeError;
     const panic = fatal && core ? core.takePanicMessage() : null;
-    self.postMessage({ id, ok: false, error: panic || message(err), fatal });
+    self.postMessage({ id, ok: false, error: panic || message(err), fatal, restart: err instanceof RestartAfter });
   }
 }

@@ -2,7 +2,7 @@
 import { test, before, after } from 'node:test';
 import assert from 'node:assert/strict';
 import { pathToFileURL } from 'node:url';
-import { openSync, writeSync, ftruncateSync, closeSync, mkdtempSync } from 'node:fs';
+import { openSync, readSync, writeSync, ftruncateSync, closeSync, mkdtempSync } from 'node:fs';
 import os from 'node:os';
 import path from 'node:path';
 import { launch, openPage, fixture, shot, dropFile, waitForAnalysis, sameOrigin, pageState, reportFigures, assertNothingLost } from './harness.mjs';
@@ -199,6 +199,36 @@ test('the largest tensor the browser holds is analysed, and a method that needs 
   const after = await pageState(page);
   assert.equal(after.tensor, before.tensor, 'the tensor stays');
   assert.deepEqual(after.figures, before.figures, 'the last result stays on screen');
+  await context.close();
+});
+
+test('a second tensor as large opens in place of the first, and a refused one brings it back', async () => {
+  const { page, context } = await openPage(browser);
+  // Two tensors of 2 GiB as f32 cannot sit side by side in the page's 4 GiB: the one on screen
+  // gives way before the next is read.
+  const bigStatus = { timeout: 180_000 };
+  const analysedOn = (name) => page.waitForFunction((n) => document.getElementById('status').textContent.includes(`analysed in`) && document.getElementById('status').textContent.includes(n), name, bigStatus);
+  await page.setInputFiles('#file-input', sparseSafetensors('first.embed', 'BF16', [131071, 4096], 2));
+  await analysedOn('on first.embed');
+  await page.setInputFiles('#file-input', sparseSafetensors('second.embed', 'BF16', [131071, 4096], 2));
+  await analysedOn('on second.embed');
+  const before = await pageState(page);
+  // A third whose one NaN is found only once it is read: refused, and the worker, which had let
+  // the second go, reads the second again.
+  const nanFile = sparseSafetensors('third.embed', 'BF16', [131071, 4096], 2);
+  const fd = openSync(nanFile, 'r+');
+  const headerSize = Buffer.alloc(8);
+  readSync(fd, headerSize, 0, 8, 0);
+  // bf16 NaN 0x7fc0, little-endian, at value 1000 (row 0, column 1000).
+  writeSync(fd, Buffer.from([0xc0, 0x7f]), 0, 2, 8 + Number(headerSize.readBigUInt64LE()) + 2 * 1000);
+  closeSync(fd);
+  await page.setInputFiles('#file-input', nanFile);
+  await page.waitForFunction(() => /reloaded/.test(document.getElementById('input-message').textContent), null, bigStatus);
+  assert.match(await page.textContent('#input-message'), /1 NaN and 0 infinite values \(first at row 0, column 1000\).*reloaded/);
+  await analysedOn('on second.embed');
+  const after = await pageState(page);
+  assert.equal(after.tensor, before.tensor, 'the second tensor is back');
+  assert.deepEqual(after.figures, before.figures);
   await context.close();
 });
 
