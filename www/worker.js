@@ -64,25 +64,26 @@ function run(t, recipe, progress) {
  * because of NaN or infinite values is refused like a bad file (with the core's count and
  * place), so the tensor on screen, its result and the calibration stay.
  */
-function openAndAnalyze(open, recipe, view, progress, incoming = 0) {
+function openAndAnalyze(open, recipe, view, progress, incoming = () => 0) {
   // Two tensors too large to sit side by side in the page's memory: the one on screen gives way
   // before the new one is read, and should the new one then be refused, the bridge is asked to
   // restart the worker, which reopens the old one (its remembered open).
-  const makeRoom = tensor !== null && tensor.info().elements + incoming > ROOM_FOR_TWO;
+  const makeRoom = tensor !== null && tensor.info().elements + incoming() > ROOM_FOR_TWO;
   if (makeRoom) {
     tensor = replace(tensor, null);
     analysis = replace(analysis, null);
   }
   let next = null;
+  let info;
   try {
     next = open();
-    if (next.info().nan + next.info().inf > 0) next.checkFinite();
+    info = next.info();
+    if (info.nan + info.inf > 0) next.checkFinite();
   } catch (err) {
     next?.free();
     if (makeRoom && !(err instanceof WebAssembly.RuntimeError)) throw new RestartAfter(message(err));
     throw err;
   }
-  const info = next.info();
   // The new tensor replaces the one on screen whatever its first run gives, so that one and its
   // result give way now and their memory serves the run: a large layer opened after another
   // would otherwise hold both layers and both results at once, and fresh memory for the second
@@ -182,7 +183,7 @@ const handlers = {
     return openAndAnalyze(() => core.demoWeight(), recipe, view, progress);
   },
   openFile({ file, name, bf16, recipe, view }, progress) {
-    return openAndAnalyze(() => core.openFile(file, name ?? undefined, bf16), recipe, view, progress, elementsOf(file, name, bf16));
+    return openAndAnalyze(() => core.openFile(file, name ?? undefined, bf16), recipe, view, progress, () => elementsOf(file, name, bf16));
   },
   openText({ text, recipe, view }, progress) {
     return openAndAnalyze(() => core.parseText(text), recipe, view, progress);
