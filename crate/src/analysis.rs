@@ -4,11 +4,12 @@
 //! (or [`analyze`] without calibration).
 //!
 //! A plain round to nearest does not keep its reconstruction: it is measured row by row while in
-//! cache and made again only when asked for (an export), the same values bit for bit, since it
-//! is a function of the tensor and the recipe alone. Keeping it would double the memory of the
+//! cache (with calibration, its output error one row block at a time) and made again only when
+//! asked for (an export), the same values bit for bit, since it is a function of the tensor and
+//! the recipe alone. Keeping it would double the memory of the
 //! most common analysis and add the tensor's size again to its memory traffic.
 
-use crate::calib::{output_error, Calibration, OutputError};
+use crate::calib::{output_error, Calibration, OutputError, RowSums};
 use crate::cost::BitCost;
 use crate::error::{Error, Result};
 use crate::formats::{DoubleQuantized, Format, Grid};
@@ -19,7 +20,7 @@ use crate::metrics::{ColumnBlock, ColumnFigures, ColumnSums, ErrorFigures, Error
 use crate::rows::{self, ROW_BLOCK};
 use crate::recipe::{Granularity, Method, Recipe};
 use crate::tensor::Tensor;
-use ndarray::{Array2, ArrayView2};
+use ndarray::{s, Array2, ArrayView1, ArrayView2};
 use std::borrow::Cow;
 use std::ops::Range;
 
@@ -299,6 +300,54 @@ impl RowObserver for Measure {
     }
 }
 
+/// Takes the output error of a reconstruction one row block at a time as the plain path makes
+/// it: the block's rows are gathered into scratch and multiplied there, so the reconstruction is
+/// never held whole. The figures are those of [`output_error`] on the whole reconstruction, bit
+/// for bit (the same blocks, the same sums).
+struct OutputObserver<'a> {
+    calib: &'a Calibration,
+    weight: ArrayView2<'a, f32>,
+    reference: Option<&'a Array2<f32>>,
+}
+
+/// One row block's reconstruction, and its sums once complete.
+struct OutputBlock {
+    first_row: usize,
+    x_hat: Array2<f32>,
+    sums: RowSums,
+}
+
+impl RowObserver for OutputObserver<'_> {
+    type Block = OutputBlock;
+    type Total = RowSums;
+
+    fn start(&self, first_row: usize, rows: usize) -> OutputBlock {
+        OutputBlock { first_row, x_hat: Array2::zeros((rows, self.weight.ncols())), sums: RowSums::default() }
+    }
+
+    fn groups(&self, block: &mut OutputBlock, r: usize, first_col: usize, _: &[f32], x_hat: &[f32]) {
+        let mut row = block.x_hat.row_mut(r - block.first_row);
+        row.slice_mut(s![first_col..first_col + x_hat.len()]).assign(&ArrayView1::from(x_hat));
+    }
+
+    fn end_row(&self, _: &mut OutputBlock, _: usize) {}
+
+    fn end_block(&self, block: &mut OutputBlock) {
+        let rows = block.first_row..block.first_row + block.x_hat.nrows();
+        let weight = self.weight.slice(s![rows, ..]);
+        block.sums.add_rows(self.calib, weight, block.x_hat.view(), self.reference, block.first_row);
+        block.x_hat = Array2::zeros((0, 0));
+    }
+
+    fn empty_total(&self, _: usize) -> RowSums {
+        RowSums::default()
+    }
+
+    fn fold(&self, total: &mut RowSums, block: OutputBlock) {
+        total.append(block.sums);
+    }
+}
+
 fn run(
     tensor: &Tensor,
     recipe: &Recipe,
@@ -311,17 +360,28 @@ fn run(
     let reference = calib.and_then(|c| c.reference_output(tensor.values.view()));
     let cost = BitCost::of(recipe, rows, cols, tensor.dtype.bits());
     if is_plain(recipe) {
-        // The hot path: each row is measured while it is still in cache; the reconstruction is
-        // kept only while the output error needs it.
-        let keep = if calib.is_some() { Reconstruction::Keep } else { Reconstruction::Discard };
-        let (grouped, double_quant) = methods::round_to_nearest(tensor.values.view(), recipe, &Kept::default(), &measure, keep, progress)?;
-        let output = calib.zip(grouped.out).map(|(c, x_hat)| output_error(c, tensor.values.view(), x_hat.view(), reference.as_deref()));
-        let (totals, groups, columns) = measure.finish(grouped.observed);
+        // The hot path: each row is measured while it is still in cache, and with calibration
+        // its output error is taken one row block at a time; the reconstruction is not kept.
+        let view = tensor.values.view();
+        let discard = Reconstruction::Discard;
+        let (params, observed, double_quant, output) = match calib {
+            None => {
+                let (grouped, double_quant) = methods::round_to_nearest(view, recipe, &Kept::default(), &measure, discard, progress)?;
+                (grouped.params, grouped.observed, double_quant, None)
+            }
+            Some(calib) => {
+                let outputs = OutputObserver { calib, weight: view, reference: reference.as_deref() };
+                let (grouped, double_quant) = methods::round_to_nearest(view, recipe, &Kept::default(), &(&measure, &outputs), discard, progress)?;
+                let (observed, sums) = grouped.observed;
+                (grouped.params, observed, double_quant, Some(sums.output_error(calib)))
+            }
+        };
+        let (totals, groups, columns) = measure.finish(observed);
         return Ok(Analysis {
             recipe: *recipe,
             kept_reconstruction: None,
             dim: (rows, cols),
-            params: grouped.params,
+            params,
             totals,
             groups,
             columns,
@@ -482,6 +542,35 @@ mod tests {
         assert!(matches!(a.dequantized(&row(vec![0.0, 0.3, 1.0])), Err(Error::NotTheAnalysedTensor { .. })), "same parameters, other values");
         let hqq = analyze(&t, &Recipe { method: Method::Hqq, ..Recipe::default() }).unwrap();
         assert!(matches!(hqq.dequantized(&t).unwrap(), Cow::Borrowed(_)), "other methods keep theirs");
+    }
+
+    /// The plain path's output error, taken block by block as the rows are made, against
+    /// `output_error` on the whole reconstruction made again: the same bits, over row counts of
+    /// one, one whole row block and not a multiple of it, for a sample and for per-column statistics, on
+    /// one thread and four.
+    #[test]
+    fn a_plain_output_error_taken_block_by_block_is_the_whole_one() {
+        use crate::calib::CalibKind;
+        for (rows, cols) in [(1, 7), (64, 3), (70, 33), (129, 300)] {
+            let t = tensor(rows, cols, 11);
+            let sample = Calibration::from_sample(tensor(9, cols, 12).values);
+            let stats = Calibration::from_tensor(&Tensor::from_values("s", DType::F32, Array2::from_elem((1, cols), 0.5)), CalibKind::MaxAbs, cols).unwrap();
+            for calib in [&sample, &stats] {
+                for recipe in [Recipe::default(), Recipe { granularity: Granularity::Tensor, bits: 3, ..Recipe::default() }] {
+                    let on = |threads| rayon::ThreadPoolBuilder::new().num_threads(threads).build().unwrap().install(|| analyze_with(&t, &recipe, Some(calib), &mut |_, _| {}).unwrap());
+                    let (one, four) = (on(1), on(4));
+                    let x_hat = one.dequantized(&t).unwrap();
+                    let whole = output_error(calib, t.values.view(), x_hat.view(), calib.reference_output(t.values.view()).as_deref());
+                    for a in [&one, &four] {
+                        let got = a.output.as_ref().unwrap();
+                        assert_eq!(got.rel_err.to_bits(), whole.rel_err.to_bits(), "{rows}x{cols} {}", recipe.label());
+                        assert!(got.per_row.iter().zip(&whole.per_row).all(|(a, b)| a.to_bits() == b.to_bits()));
+                        assert_eq!((got.per_row.len(), got.estimated), (rows, calib.sample.is_none()));
+                    }
+                    assert!(whole.rel_err > 0.0, "a 3- or 4-bit grid leaves an error");
+                }
+            }
+        }
     }
 
     #[test]

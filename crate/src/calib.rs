@@ -9,8 +9,9 @@
 
 use crate::error::{Error, Result};
 use crate::linalg;
+use crate::rows;
 use crate::tensor::Tensor;
-use ndarray::{Array2, ArrayView2};
+use ndarray::{s, Array2, ArrayView2};
 use serde::{Deserialize, Serialize};
 use std::str::FromStr;
 use std::sync::{Arc, Mutex};
@@ -203,35 +204,78 @@ pub fn output_error(
     reconstruction: ArrayView2<f32>,
     reference: Option<&Array2<f32>>,
 ) -> OutputError {
-    let rows = weight.nrows();
-    let mut err = vec![0f64; rows];
-    let mut sig = vec![0f64; rows];
-    match (&calib.sample, reference) {
-        (Some(x), Some(y)) => {
-            let y_hat = linalg::matmul_transposed(x.view(), reconstruction);
-            for (yr, hr) in y.rows().into_iter().zip(y_hat.rows()) {
-                for (r, (&a, &b)) in yr.iter().zip(hr.iter()).enumerate() {
-                    let d = f64::from(b) - f64::from(a);
-                    err[r] += d * d;
-                    sig[r] += f64::from(a) * f64::from(a);
+    let blocks = rows::map_blocks(weight.nrows(), |range| {
+        let mut sums = RowSums::default();
+        sums.add_rows(calib, weight.slice(s![range.clone(), ..]), reconstruction.slice(s![range.clone(), ..]), reference, range.start);
+        sums
+    });
+    let mut sums = RowSums::default();
+    blocks.into_iter().for_each(|block| sums.append(block));
+    sums.output_error(calib)
+}
+
+/// The sums of squares behind an output error, one of each per output row in row order: the
+/// error ‖ŷ_r − y_r‖² and the signal ‖y_r‖² (both weighted by E[x_j²] for the diagonal estimate).
+/// Rows are independent, so they can be taken one row block at a time as a reconstruction is made.
+#[derive(Debug, Default)]
+pub(crate) struct RowSums {
+    err: Vec<f64>,
+    sig: Vec<f64>,
+}
+
+impl RowSums {
+    /// Add rows `first..` of the weight (`weight` and `reconstruction` hold those rows only).
+    /// With a sample, X·Ŵᵀ of the rows is one block of [`linalg::matmul_transposed`], the same
+    /// bits as the reference's columns for the same values.
+    pub(crate) fn add_rows(
+        &mut self,
+        calib: &Calibration,
+        weight: ArrayView2<f32>,
+        reconstruction: ArrayView2<f32>,
+        reference: Option<&Array2<f32>>,
+        first: usize,
+    ) {
+        let rows = weight.nrows();
+        let (mut err, mut sig) = (vec![0f64; rows], vec![0f64; rows]);
+        match (&calib.sample, reference) {
+            (Some(x), Some(y)) => {
+                let y_hat = linalg::matmul_transposed_block(x.view(), reconstruction);
+                for (yr, hr) in y.slice(s![.., first..first + rows]).rows().into_iter().zip(y_hat.rows()) {
+                    for (r, (&a, &b)) in yr.iter().zip(hr.iter()).enumerate() {
+                        let d = f64::from(b) - f64::from(a);
+                        err[r] += d * d;
+                        sig[r] += f64::from(a) * f64::from(a);
+                    }
+                }
+            }
+            _ => {
+                for (r, (w, h)) in weight.rows().into_iter().zip(reconstruction.rows()).enumerate() {
+                    for ((&a, &b), &m) in w.iter().zip(h.iter()).zip(&calib.mean_sq) {
+                        let d = f64::from(b) - f64::from(a);
+                        err[r] += d * d * f64::from(m);
+                        sig[r] += f64::from(a) * f64::from(a) * f64::from(m);
+                    }
                 }
             }
         }
-        _ => {
-            for (r, (w, h)) in weight.rows().into_iter().zip(reconstruction.rows()).enumerate() {
-                for ((&a, &b), &m) in w.iter().zip(h.iter()).zip(&calib.mean_sq) {
-                    let d = f64::from(b) - f64::from(a);
-                    err[r] += d * d * f64::from(m);
-                    sig[r] += f64::from(a) * f64::from(a) * f64::from(m);
-                }
-            }
-        }
+        self.err.extend(err);
+        self.sig.extend(sig);
     }
-    let ratio = |e: f64, s: f64| if e == 0.0 { 0.0 } else { (e / s).sqrt() };
-    OutputError {
-        rel_err: ratio(err.iter().sum(), sig.iter().sum()),
-        per_row: err.iter().zip(&sig).map(|(&e, &s)| ratio(e, s) as f32).collect(),
-        estimated: calib.sample.is_none(),
+
+    /// Add the rows that follow.
+    pub(crate) fn append(&mut self, next: RowSums) {
+        self.err.extend(next.err);
+        self.sig.extend(next.sig);
+    }
+
+    /// The output error of every row added.
+    pub(crate) fn output_error(&self, calib: &Calibration) -> OutputError {
+        let ratio = |e: f64, s: f64| if e == 0.0 { 0.0 } else { (e / s).sqrt() };
+        OutputError {
+            rel_err: ratio(self.err.iter().sum(), self.sig.iter().sum()),
+            per_row: self.err.iter().zip(&self.sig).map(|(&e, &s)| ratio(e, s) as f32).collect(),
+            estimated: calib.sample.is_none(),
+        }
     }
 }
 

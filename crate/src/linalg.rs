@@ -49,26 +49,27 @@ fn clean_after<R>(call: impl FnOnce() -> R) -> R {
     result
 }
 
-/// Columns of a product per block of [`matmul_transposed`]: a fixed constant, so that the split
-/// never depends on the thread count.
-const PRODUCT_COLUMNS: usize = 512;
-
-/// a·bᵀ for a: [m, k], b: [n, k]. The rows of b (the product's columns) are taken in fixed blocks,
-/// one single-threaded product each, spread over the pool: an output error on 512 tokens of a
-/// 4096 × 4096 layer is 8.6 GFLOP. Blocks of b rather than of a, because each product packs its
-/// right-hand operand whole: blocks of a would pack all of b once per block.
+/// a·bᵀ for a: [m, k], b: [n, k]. The rows of b (the product's columns) are taken in the fixed
+/// row blocks of [`rows`], one single-threaded product each ([`matmul_transposed_block`]), spread
+/// over the pool: an output error on 512 tokens of a 4096 × 4096 layer is 8.6 GFLOP. Blocks of b
+/// rather than of a, because each product packs its right-hand operand whole: blocks of a would
+/// pack all of b once per block. The same blocks as every row-wise computation, so that a
+/// reconstruction's output error taken block by block as it is made (`analysis`) sees exactly the
+/// columns this product gives.
 pub fn matmul_transposed(a: ArrayView2<f32>, b: ArrayView2<f32>) -> Array2<f32> {
     let (m, n) = (a.nrows(), b.nrows());
-    let parts = rows::map_items(n.div_ceil(PRODUCT_COLUMNS), |i| {
-        let part = b.slice(s![i * PRODUCT_COLUMNS..((i + 1) * PRODUCT_COLUMNS).min(n), ..]);
-        let mut out = Array2::<f32>::zeros((m, part.nrows()));
-        clean_after(|| matmul(view_mut(&mut out.view_mut()), Accum::Replace, view(&a), view(&part).transpose(), 1.0, Par::Seq));
-        out
-    });
+    let parts = rows::map_blocks(n, |range| matmul_transposed_block(a, b.slice(s![range, ..])));
     let mut out = Array2::<f32>::zeros((m, n));
     for (i, part) in parts.iter().enumerate() {
-        out.slice_mut(s![.., i * PRODUCT_COLUMNS..i * PRODUCT_COLUMNS + part.ncols()]).assign(part);
+        out.slice_mut(s![.., rows::block_rows(i, n)]).assign(part);
     }
+    out
+}
+
+/// a·bᵀ on the calling thread: one block of [`matmul_transposed`].
+pub fn matmul_transposed_block(a: ArrayView2<f32>, b: ArrayView2<f32>) -> Array2<f32> {
+    let mut out = Array2::<f32>::zeros((a.nrows(), b.nrows()));
+    clean_after(|| matmul(view_mut(&mut out.view_mut()), Accum::Replace, view(&a), view(&b).transpose(), 1.0, Par::Seq));
     out
 }
 

@@ -257,6 +257,34 @@ impl RowObserver for () {
     fn fold(&self, _: &mut (), _: ()) {}
 }
 
+/// Two observers seeing the same rows, each with its own blocks and total.
+impl<A: RowObserver, B: RowObserver> RowObserver for (&A, &B) {
+    type Block = (A::Block, B::Block);
+    type Total = (A::Total, B::Total);
+    fn start(&self, first_row: usize, rows: usize) -> Self::Block {
+        (self.0.start(first_row, rows), self.1.start(first_row, rows))
+    }
+    fn groups(&self, block: &mut Self::Block, r: usize, first_col: usize, x: &[f32], x_hat: &[f32]) {
+        self.0.groups(&mut block.0, r, first_col, x, x_hat);
+        self.1.groups(&mut block.1, r, first_col, x, x_hat);
+    }
+    fn end_row(&self, block: &mut Self::Block, r: usize) {
+        self.0.end_row(&mut block.0, r);
+        self.1.end_row(&mut block.1, r);
+    }
+    fn end_block(&self, block: &mut Self::Block) {
+        self.0.end_block(&mut block.0);
+        self.1.end_block(&mut block.1);
+    }
+    fn empty_total(&self, rows: usize) -> Self::Total {
+        (self.0.empty_total(rows), self.1.empty_total(rows))
+    }
+    fn fold(&self, total: &mut Self::Total, block: Self::Block) {
+        self.0.fold(&mut total.0, block.0);
+        self.1.fold(&mut total.1, block.1);
+    }
+}
+
 /// Columns a run of groups spans at most (unless one group is wider): a run's values, its
 /// reconstruction and its three per-column sums (20 KiB in all) are still in L1 when the
 /// observer reads them; a whole wide row would not be (14336 columns: 280 KiB).
@@ -274,8 +302,8 @@ pub(crate) enum Reconstruction {
     /// Return it: the tensor's size again in fresh memory.
     Keep,
     /// Write each row into one reused row of scratch and drop it once observed: for figures that
-    /// need nothing else of it (every plain analysis without calibration, whose reconstruction
-    /// is made again on request), or fits that only need the parameters. The memory traffic of
+    /// need nothing else of it (every plain analysis, whose reconstruction is made again on
+    /// request), or fits that only need the parameters. The memory traffic of
     /// writing the tensor out again is saved too.
     Discard,
 }
