@@ -25,10 +25,11 @@ const OUT_OF_MEMORY = /AllocError|memory allocation of \d+ bytes failed|capacity
  * What the user reads of a trap inside the core: out of memory, or `failed` with the panic or
  * engine message `reason`.
  */
-function trapText(reason, failed) {
+function trapText(reason, failed, withCalibration) {
   const exhausted = reason.match(OUT_OF_MEMORY);
+  const fewer = withCalibration ? ', fewer calibration tokens' : '';
   return exhausted
-    ? `the core ran out of memory (${exhausted[0]}): this run needs more than the 4 GiB of WebAssembly memory a browser gives one page; try a smaller tensor, fewer calibration tokens, or the command-line tool`
+    ? `the core ran out of memory (${exhausted[0]}): this run needs more than the 4 GiB of WebAssembly memory a browser gives one page; try a smaller tensor${fewer} or the command-line tool`
     : `${failed} (${reason})`;
 }
 
@@ -62,7 +63,7 @@ export class CoreBridge {
     const channel = `bitloupe-pool-${Date.now()}-${Math.random()}`;
     if (this.threads) {
       this.pool = new BroadcastChannel(channel);
-      this.pool.onmessage = (event) => this.restart(new Error(`${trapText(event.data, 'a compute pool worker failed')}; the last tensor was reloaded`));
+      this.pool.onmessage = (event) => this.restart(new Error(`${trapText(event.data, 'a compute pool worker failed', this.remembered.calib !== null)}; the last tensor was reloaded`));
     }
     try {
       const ready = await this.send('init', { wasm: this.wasm, threads: this.threads, channel });
@@ -87,7 +88,7 @@ export class CoreBridge {
       entry.resolve(message.result);
       return;
     }
-    entry.reject(new Error(message.fatal ? trapText(message.error, 'the computation failed inside the core') : message.error));
+    entry.reject(new Error(message.fatal ? trapText(message.error, 'the computation failed inside the core', this.remembered.calib !== null) : message.error));
     if (message.fatal) this.restart(new Error('the compute worker was restarted and the last tensor reloaded'));
     else if (message.restart) this.restart(new Error(`${message.error}; the last tensor was reloaded`));
   }

@@ -15,6 +15,8 @@
 //!   do in the model, and a tensor's MSE is not compared across scales); SQNR is its 10·log₁₀
 //!   of the inverse square.
 
+use crate::footprint;
+use crate::rows;
 use crate::analysis::headline;
 use crate::error::{Error, Result};
 use crate::recipe::{Method, Recipe};
@@ -35,7 +37,7 @@ pub struct Selection {
     /// default, as a model's quantization usually leaves them.
     pub include_1d: bool,
     /// Memory the analyses may use, when known: a tensor whose analysis needs more is a failed
-    /// row, refused before it is read ([`tensor::check_fits`]).
+    /// row, refused before it is read ([`footprint::check`]).
     pub available_memory: Option<u64>,
 }
 
@@ -309,7 +311,7 @@ pub fn run<S: ByteSource + ?Sized>(
             } else {
                 let at = |fraction: f64| bytes_done + (entry.bytes as f64 * fraction.clamp(0.0, 1.0)) as u64;
                 progress(&Progress { tensors_done, tensors, bytes_done, bytes, current: &entry.name });
-                let fits = selection.available_memory.map_or(Ok(()), |available| tensor::check_fits(entry, available));
+                let fits = selection.available_memory.map_or(Ok(()), |available| footprint::check(&entry.shape, &[*recipe], None, rows::threads(), false, available));
                 let measured = fits.and_then(|()| {
                     measure(&shard.label, shard.source, entry, recipe, &mut |done, total| {
                         let fraction = if total == 0 { 0.0 } else { done as f64 / total as f64 };

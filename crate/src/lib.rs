@@ -14,6 +14,7 @@ pub mod checkpoint;
 pub mod cost;
 pub mod demo;
 pub mod error;
+pub mod footprint;
 pub mod formats;
 pub mod grid;
 pub mod linalg;

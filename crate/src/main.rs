@@ -27,6 +27,7 @@ mod cli {
     use bitloupe::sweep::{self, ParetoBy, SweepSpec};
     use bitloupe::{analyze_with, Granularity, ReadOptions, Recipe, ScaleDType, Tensor};
     use bitloupe::checkpoint::{self, Progress, Selection, Shard};
+    use bitloupe::footprint;
     use clap::{Args, Parser, Subcommand};
     use indicatif::{ProgressBar, ProgressDrawTarget, ProgressStyle};
     use std::io::IsTerminal;
@@ -304,7 +305,8 @@ Per-tensor error is only a proxy: check any recipe on the model's own task befor
         fn load(&self, cols: usize, options: ReadOptions) -> Result<Option<Calibration>, Failure> {
             let Some(path) = &self.calib else { return Ok(None) };
             let kind = self.calib_kind.parse::<CalibKind>()?;
-            let data = load(path, self.calib_tensor.as_deref(), options)?;
+            // A calibration tensor is held as a weight is under the plain recipe, at most.
+            let data = load(path, self.calib_tensor.as_deref(), options, &[Recipe::default()])?;
             Ok(Some(Calibration::from_tensor(&data, kind, cols).map_err(Failure::at(path))?))
         }
     }
@@ -347,9 +349,9 @@ Per-tensor error is only a proxy: check any recipe on the model's own task befor
             Command::Quantize { file, tensor, read, recipe, calib, w8a8, out, report, markdown, groups_csv, packed } => {
                 let recipe = recipe.recipe()?;
                 let w8a8 = w8a8.as_deref().map(str::parse::<ActQuant>).transpose()?;
-                let tensor = load(&file, tensor.as_deref(), read.options())?;
+                let tensor = load(&file, tensor.as_deref(), read.options(), &[recipe])?;
                 let calibration = calib.load(tensor.cols(), read.options())?;
-                check_gptq_fits(&file, &tensor, recipe.method == Method::Gptq && calibration.is_some())?;
+                check_room(&file, &tensor, &[recipe], calibration.as_ref())?;
                 let analysis = analyze_with(&tensor, &recipe, calibration.as_ref(), &mut |_, _| {}).map_err(Failure::at(&file))?;
                 let study = match (w8a8, &calibration) {
                     (Some(act), Some(c)) => {
@@ -416,15 +418,15 @@ Per-tensor error is only a proxy: check any recipe on the model's own task befor
                         .map(|f| f.trim().parse::<f32>().map_err(|_| Failure(format!("--keep-frac: '{f}' is not a fraction"))))
                         .collect::<Result<_, _>>()?,
                 };
-                let tensor = load(&file, tensor.as_deref(), read.options())?;
+                let (recipes, skipped) = sweep::recipes(&spec)?;
+                let tensor = load(&file, tensor.as_deref(), read.options(), &recipes)?;
                 let calibration = calib.load(tensor.cols(), read.options())?;
-                check_gptq_fits(&file, &tensor, spec.methods.contains(&Method::Gptq) && calibration.is_some())?;
+                check_room(&file, &tensor, &recipes, calibration.as_ref())?;
                 let by = match pareto_by {
                     Some(by) => by.parse::<ParetoBy>()?,
                     None if calibration.is_some() => ParetoBy::Output,
                     None => ParetoBy::Mse,
                 };
-                let (recipes, skipped) = sweep::recipes(&spec)?;
                 // A counter redrawn in place is for a terminal; a log would collect every step.
                 let on_terminal = std::io::IsTerminal::is_terminal(&std::io::stderr());
                 let (rows, failed) = sweep::run(&tensor, calibration.as_ref(), &recipes, by, &mut |done, total, _| {
@@ -569,7 +571,9 @@ Per-tensor error is only a proxy: check any recipe on the model's own task befor
         Ok((file, listing))
     }
 
-    fn load(path: &Path, name: Option<&str>, options: ReadOptions) -> Result<Tensor, Failure> {
+    /// Read a tensor, first refusing it when the most demanding of `recipes` could not run on it
+    /// in the memory the system can still give.
+    fn load(path: &Path, name: Option<&str>, options: ReadOptions, recipes: &[Recipe]) -> Result<Tensor, Failure> {
         if is_text(path) {
             let content = std::fs::read_to_string(path).map_err(|e| Failure(format!("{}: cannot read: {e}", path.display())))?;
             let mut tensor = text::parse(&content).map_err(Failure::at(path))?;
@@ -579,20 +583,20 @@ Per-tensor error is only a proxy: check any recipe on the model's own task befor
         let (file, listing) = open(path, options)?;
         let entry = listing.choose(name).map_err(Failure::at(path))?;
         if let Some(available) = available_memory() {
-            tensor::check_fits(entry, available).map_err(Failure::at(path))?;
+            footprint::check(&entry.shape, recipes, None, bitloupe::rows::threads(), false, available).map_err(Failure::at(path))?;
         }
         let mut tensor = tensor::read(&file, entry).map_err(Failure::at(path))?;
         tensor.name_after_file(&path.to_string_lossy());
         Ok(tensor)
     }
 
-    /// GPTQ's square matrices checked against the memory the system can still give, before the
-    /// analysis allocates them.
-    fn check_gptq_fits(path: &Path, tensor: &Tensor, uses_gptq: bool) -> Result<(), Failure> {
-        if uses_gptq {
-            bitloupe::methods::gptq::check_width(tensor.values.dim(), available_memory()).map_err(Failure::at(path))?;
-        }
-        Ok(())
+    /// The recipes checked again once the tensor and the calibration are read, with the
+    /// calibration's tokens (GPTQ's square matrices, the output products), before the analysis
+    /// allocates anything.
+    fn check_room(path: &Path, tensor: &Tensor, recipes: &[Recipe], calibration: Option<&Calibration>) -> Result<(), Failure> {
+        let Some(available) = available_memory() else { return Ok(()) };
+        let tokens = calibration.and_then(|c| c.sample.as_ref()).map(|x| x.nrows());
+        footprint::check(&tensor.shape, recipes, tokens, bitloupe::rows::threads(), true, available).map_err(Failure::at(path))
     }
 
     /// Memory the system can still give this process (Linux's MemAvailable), when it says.

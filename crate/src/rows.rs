@@ -25,6 +25,15 @@ pub fn block_count(rows: usize) -> usize {
     rows.div_ceil(ROW_BLOCK)
 }
 
+/// Threads the row blocks are spread over: rayon's pool, or one in the single-threaded
+/// WebAssembly build.
+pub fn threads() -> usize {
+    #[cfg(any(not(target_arch = "wasm32"), target_feature = "atomics"))]
+    return rayon::current_num_threads();
+    #[cfg(all(target_arch = "wasm32", not(target_feature = "atomics")))]
+    return 1;
+}
+
 /// How often the calling thread reports progress while the pool works.
 #[cfg(any(not(target_arch = "wasm32"), target_feature = "atomics"))]
 const PROGRESS_EVERY: std::time::Duration = std::time::Duration::from_millis(40);

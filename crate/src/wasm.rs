@@ -43,16 +43,21 @@ struct RememberingFailures;
 /// (shared by every thread: a pool worker's failure is read from the compute worker too).
 static FAILED_ALLOCATION: AtomicUsize = AtomicUsize::new(0);
 
+/// Bytes allocated and not yet freed, by every thread: what an analysis's memory estimate is
+/// weighed against ([`check_room`]).
+static LIVE_BYTES: AtomicUsize = AtomicUsize::new(0);
+
 impl RememberingFailures {
     fn noted(p: *mut u8, bytes: usize) -> *mut u8 {
-        if p.is_null() {
-            FAILED_ALLOCATION.store(bytes, Ordering::Relaxed);
+        match p.is_null() {
+            true => FAILED_ALLOCATION.store(bytes, Ordering::Relaxed),
+            false => _ = LIVE_BYTES.fetch_add(bytes, Ordering::Relaxed),
         }
         p
     }
 }
 
-// SAFETY: every call goes to the standard allocator unchanged; a null result is only noted.
+// SAFETY: every call goes to the standard allocator unchanged; the results are only noted.
 unsafe impl GlobalAlloc for RememberingFailures {
     unsafe fn alloc(&self, layout: Layout) -> *mut u8 {
         Self::noted(System.alloc(layout), layout.size())
@@ -61,11 +66,31 @@ unsafe impl GlobalAlloc for RememberingFailures {
         Self::noted(System.alloc_zeroed(layout), layout.size())
     }
     unsafe fn dealloc(&self, ptr: *mut u8, layout: Layout) {
-        System.dealloc(ptr, layout)
+        System.dealloc(ptr, layout);
+        LIVE_BYTES.fetch_sub(layout.size(), Ordering::Relaxed);
     }
     unsafe fn realloc(&self, ptr: *mut u8, layout: Layout, new_size: usize) -> *mut u8 {
-        Self::noted(System.realloc(ptr, layout, new_size), new_size)
+        let p = Self::noted(System.realloc(ptr, layout, new_size), new_size);
+        if !p.is_null() {
+            LIVE_BYTES.fetch_sub(layout.size(), Ordering::Relaxed);
+        }
+        p
     }
+}
+
+/// The most memory a WebAssembly page can have: wasm32 addresses 4 GiB, and the threaded build
+/// declares that as its maximum.
+const MEMORY_CEILING: u64 = 1 << 32;
+
+/// Refuse to run `recipes` on `tensor` when the largest of their memory estimates
+/// ([`crate::footprint`]) is more than the WebAssembly memory has left, before anything is
+/// allocated: an allocation that fails ends the instance, and the page must then restart its
+/// worker and read the tensor again.
+fn check_room(tensor: &Tensor, recipes: &[Recipe], calib: Option<&Calibration>) -> Result<(), JsError> {
+    let left = MEMORY_CEILING.saturating_sub(LIVE_BYTES.load(Ordering::Relaxed) as u64);
+    let tokens = calib.and_then(|c| c.sample.as_ref()).map(|x| x.nrows());
+    crate::footprint::check(&tensor.shape, recipes, tokens, crate::rows::threads(), true, left)
+        .map_err(|e| JsError::new(&format!("{e} of the page's 4 GiB; the command-line tool has no such limit")))
 }
 
 #[global_allocator]
@@ -539,6 +564,7 @@ impl TensorHandle {
         let recipe = parse_recipe(recipe)?;
         let mut report = reporter(progress);
         let calib = calibration.map(|c| &c.calib);
+        check_room(&self.tensor, &[recipe], calib)?;
         let analysis = analyze_with(&self.tensor, &recipe, calib, &mut report).map_err(js_error)?;
         let summary = to_js(&Report::new(&self.tensor, &analysis).without_group_lists())?;
         Ok(AnalysisHandle { analysis, summary, tensor: Rc::clone(&self.tensor) })
@@ -570,6 +596,7 @@ impl TensorHandle {
             let row = row.and_then(|r| to_js(r).ok()).unwrap_or(JsValue::UNDEFINED);
             let _ = progress.call3(&JsValue::NULL, &JsValue::from(done as f64), &JsValue::from(total as f64), &row);
         };
+        check_room(&self.tensor, &recipes, calib)?;
         let (rows, failed) = crate::sweep::run(&self.tensor, calib, &recipes, by, &mut report).map_err(js_error)?;
         to_js(&Swept { rows, failed })
     }

@@ -23,9 +23,9 @@ pub use dtype::{DType, Element};
 
 /// Largest element count the tool will load. In wasm, the most f32 values one array can hold
 /// (wasm32 addresses 4 GiB, and Rust caps an allocation at `isize::MAX` bytes, 2 GiB): the plain
-/// round-to-nearest analysis without calibration needs about 1.1 copies of the tensor, so it runs
-/// on the largest; other runs keep a reconstruction and more, and where the 4 GiB do not hold
-/// them the page says that memory ran out and reloads the tensor.
+/// round-to-nearest analysis needs about 1.1 copies of the tensor, so it runs on the largest;
+/// other runs keep a reconstruction and more, and where the 4 GiB do not hold them the page
+/// refuses them first ([`crate::footprint`]).
 #[cfg(target_arch = "wasm32")]
 pub const MAX_ELEMENTS: usize = isize::MAX as usize / 4;
 /// Largest element count the tool will load natively (16 GiB of f32).
@@ -250,33 +250,6 @@ fn fortran_to_c(values: Vec<f32>, shape: &[usize]) -> Vec<f32> {
     use ndarray::{ArrayD, IxDyn, ShapeBuilder};
     let array = ArrayD::from_shape_vec(IxDyn(shape).f(), values).expect("length matches shape");
     array.as_standard_layout().iter().copied().collect()
-}
-
-/// Bytes a round-to-nearest analysis of `count` elements holds at its peak, at most: the tensor's
-/// f32 copy and, with calibration, its reconstruction until the output error is taken, plus a
-/// quarter for the figures and the allocator (without calibration the speed table measures
-/// 1.04–1.25× the f32 size).
-pub fn analysis_bytes(count: usize) -> u64 {
-    count as u64 * 4 * 5 / 2
-}
-
-/// Refuse `entry` before anything is allocated for it when its analysis needs more than the
-/// `available` bytes of memory, with both sizes in the message.
-pub fn check_fits(entry: &TensorEntry, available: u64) -> Result<()> {
-    let count = element_count(&entry.shape)?;
-    let needed = analysis_bytes(count);
-    if needed <= available {
-        return Ok(());
-    }
-    let gib = |b: u64| b as f64 / (1u64 << 30) as f64;
-    Err(Error::BadShape {
-        shape: entry.shape.clone(),
-        detail: format!(
-            "an analysis of its {count} elements needs about {:.1} GiB of memory and {:.1} GiB are available",
-            gib(needed),
-            gib(available)
-        ),
-    })
 }
 
 /// The number of elements of a shape, refusing shapes this build cannot hold, before anything
@@ -611,23 +584,5 @@ mod tests {
         let src = &bytes[..];
         assert!(matches!(read_range(src, 2, 2, "x"), Err(Error::Truncated { needed: 4, available: 3, .. })));
         assert_eq!(read_range(src, 1, 2, "x").unwrap(), vec![2, 3]);
-    }
-
-    #[test]
-    fn an_analysis_that_cannot_fit_is_refused_before_reading() {
-        let entry = TensorEntry {
-            name: "w".into(),
-            dtype_label: "F16".into(),
-            element: None,
-            shape: vec![4096, 14336],
-            offset: 0,
-            bytes: 4096 * 14336 * 2,
-            fortran_order: false,
-        };
-        // 4096 × 14336 f32 is 224 MiB; its analysis needs 2.5 times that, 560 MiB.
-        assert_eq!(analysis_bytes(4096 * 14336), 587_202_560);
-        assert!(check_fits(&entry, 600 << 20).is_ok());
-        let err = check_fits(&entry, 512 << 20).unwrap_err().to_string();
-        assert!(err.contains("needs about 0.5 GiB") && err.contains("0.5 GiB are available"), "{err}");
     }
 }

@@ -1,0 +1,162 @@
+//! The memory one analysis holds at its peak, by recipe, so that a run that cannot fit is refused
+//! with a message before anything is allocated for it: the command asks the system what it can
+//! still give, the page what its WebAssembly memory (4 GiB at most) has left.
+//!
+//! An upper estimate built from what each step holds at once, with w the tensor's size as f32
+//! (4 bytes per element):
+//!
+//! - the tensor itself, w (counted only when it is not yet read);
+//! - every group's parameters and figures, [`BYTES_PER_GROUP`] (HQQ's fits hold more,
+//!   [`BYTES_PER_HQQ_GROUP`], and double quantization the first fit's parameters), and as much
+//!   again for the groups of the row blocks in flight (two per thread: one being computed, one
+//!   waiting to be added in row order);
+//! - whole copies of the tensor beside it ([`copies`]): none for the plain recipe, which keeps no
+//!   reconstruction; one for the reconstruction of every other recipe; one more for a weight
+//!   seen through factors or with kept values masked out (smoothing, AWQ, kept columns), two more
+//!   for the magnitudes that choose the kept fraction and the masked copy, one more for AWQ's
+//!   clipping search and for GPTQ's working copy of W;
+//! - GPTQ's two square matrices of the input width ([`crate::methods::gptq`]);
+//! - with an activation sample, the reference output X·Wᵀ (tokens × rows) and as much again
+//!   while it is put together from its blocks (or for the smoothed output);
+//! - the per-column totals and figures, and the per-column sums of the row blocks in flight;
+//! - per thread, the row in flight, and with a sample the row block gathered for the output
+//!   error and its product with the sample;
+//! - a codebook's levels;
+//! - a sixteenth of the tensor for row blocks that finish early and wait for those before them
+//!   to be added (each holds its per-column sums), and the allocator's rounding;
+//! - [`FIXED_BYTES`] for what does not grow with the tensor (the linear algebra's workspaces).
+//!
+//! Each term is taken from the code's structure and checked against a counting allocator over
+//! every kind of recipe and several shapes (`tests/memory.rs`): the estimate is never below the
+//! measured peak, and at most twice it plus a quarter of the tensor's size (the fixed part
+//! aside); on a 4096 × 2048 layer it was 1.03–1.25 times the peak for every method but the
+//! plain recipe's small figures.
+
+use crate::analysis::is_plain;
+use crate::error::{Error, Result};
+use crate::formats::Format;
+use crate::methods::gptq::PEAK_SQUARE_MATRICES;
+use crate::recipe::{Method, Recipe};
+use crate::rows::ROW_BLOCK;
+use crate::tensor::{element_count, view_2d};
+
+/// Parameters (8 bytes), their notes and the per-group figures, with room for the vectors' growth.
+pub const BYTES_PER_GROUP: u64 = 48;
+
+/// HQQ keeps the fitted zero point and its iterations' state per group as well.
+pub const BYTES_PER_HQQ_GROUP: u64 = 64;
+
+/// Per-column sums of a row block in flight (three per column).
+const COLUMN_SUM_BYTES: u64 = 24;
+
+/// Per-column totals and figures of the whole tensor.
+const COLUMN_BYTES: u64 = 48;
+
+/// A vector's own header, for the codebooks' one per row.
+const VEC_BYTES: u64 = 24;
+
+/// Workspaces that do not grow with the tensor: the linear algebra's per-thread scratch, the
+/// allocator's own books.
+pub const FIXED_BYTES: u64 = 16 << 20;
+
+/// Whole copies of the tensor an analysis under `recipe` holds beside the tensor at its peak.
+pub fn copies(recipe: &Recipe) -> u64 {
+    if is_plain(recipe) {
+        return 0;
+    }
+    let reconstruction = 1;
+    let transformed = u64::from(recipe.smooth.is_some() || recipe.method == Method::Awq || recipe.keep_cols > 0);
+    let kept_fraction = if recipe.keep_frac > 0.0 { 2 } else { 0 };
+    let search_or_working_copy = u64::from((recipe.method == Method::Awq && recipe.awq_clip) || recipe.method == Method::Gptq);
+    reconstruction + transformed.max(kept_fraction) + search_or_working_copy
+}
+
+/// Bytes an analysis of a `rows × cols` tensor under `recipe` holds at its peak beyond the tensor's
+/// own f32 copy, with `tokens` rows of activation sample (if any) on `threads` threads.
+pub fn working_bytes(rows: usize, cols: usize, recipe: &Recipe, tokens: Option<usize>, threads: usize) -> u64 {
+    let (rows, cols, threads) = (rows as u64, cols as u64, threads.max(1) as u64);
+    let tensor = rows * cols * 4;
+    let per_group = if recipe.method == Method::Hqq { BYTES_PER_HQQ_GROUP } else { BYTES_PER_GROUP };
+    let per_group = per_group + if recipe.double_quant { 8 } else { 0 };
+    // Each thread's row block, and one more waiting for its turn to be added (`rows`).
+    let groups_in_flight = (2 * threads * ROW_BLOCK as u64).min(rows) * recipe.granularity.groups_per_row(cols as usize) as u64;
+    let groups = (recipe.granularity.group_count(rows as usize, cols as usize) as u64 + groups_in_flight) * per_group;
+    let squares = if recipe.method == Method::Gptq { PEAK_SQUARE_MATRICES as u64 * cols * cols * 4 } else { 0 };
+    let tokens = tokens.unwrap_or(0) as u64;
+    let outputs = 2 * tokens * rows * 4;
+    let columns = COLUMN_BYTES * cols + 2 * threads * COLUMN_SUM_BYTES * cols;
+    let row_scratch = cols * 4;
+    let output_block = if tokens > 0 { ROW_BLOCK as u64 * (cols + tokens) * 4 } else { 0 };
+    let books = recipe.granularity.group_count(rows as usize, cols as usize) as u64;
+    let codebooks = if recipe.format == Format::Codebook { books * ((1 << recipe.bits) * 4 + VEC_BYTES) } else { 0 };
+    copies(recipe) * tensor + groups + squares + outputs + columns + threads * (row_scratch + output_block) + codebooks + tensor / 16 + FIXED_BYTES
+}
+
+/// Refuse to analyse a tensor of `shape` under the most demanding of `recipes` (one at a time,
+/// as a sweep runs them) when that needs more than the `available` bytes: the tensor's f32 copy
+/// and the working memory when the tensor is not yet read (`tensor_held` false), the working
+/// memory alone when it is. The message names the recipe and gives both sizes.
+pub fn check(shape: &[usize], recipes: &[Recipe], tokens: Option<usize>, threads: usize, tensor_held: bool, available: u64) -> Result<()> {
+    let count = element_count(shape)?;
+    let (rows, cols) = view_2d(shape)?;
+    let working = |recipe: &&Recipe| working_bytes(rows, cols, recipe, tokens, threads);
+    let Some(recipe) = recipes.iter().max_by_key(working) else { return Ok(()) };
+    let tensor = count as u64 * 4;
+    let needed = working(&recipe) + if tensor_held { 0 } else { tensor };
+    if needed <= available {
+        return Ok(());
+    }
+    let what = match tensor_held {
+        true => format!("{} of memory beside the tensor's own {},", size(needed), size(tensor)),
+        false => format!("{} of memory", size(needed)),
+    };
+    Err(Error::BadShape {
+        shape: shape.to_vec(),
+        detail: format!("{} on its {count} elements needs about {what} and {} are available", recipe.label(), size(available)),
+    })
+}
+
+/// Bytes in GiB with two decimals (a need just above what is left must not read the same), or in
+/// MiB below one GiB.
+fn size(bytes: u64) -> String {
+    match bytes >= 1 << 30 {
+        true => format!("{:.2} GiB", bytes as f64 / (1u64 << 30) as f64),
+        false => format!("{:.1} MiB", bytes as f64 / (1u64 << 20) as f64),
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::recipe::Granularity;
+
+    #[test]
+    fn the_plain_recipe_needs_little_beyond_the_tensor_and_gptq_its_squares() {
+        let plain = Recipe::default();
+        // 4096 × 14336 in groups of 128: 458 752 groups of 48 bytes, the row blocks in flight, the
+        // columns' sums, a sixteenth of the tensor and the fixed part, about 0.25 of its 224 MiB.
+        let working = working_bytes(4096, 14336, &plain, None, 2);
+        assert_eq!(working, (458_752 + 2 * 2 * 64 * 112) * 48 + 14336 * 48 + 2 * 2 * 14336 * 24 + 2 * 14336 * 4 + 4096 * 14336 * 4 / 16 + (16 << 20));
+        let gptq = Recipe { method: Method::Gptq, ..plain };
+        let squares = 2 * 14336 * 14336 * 4;
+        assert!(working_bytes(4096, 14336, &gptq, Some(512), 2) > squares + 2 * 4096 * 14336 * 4);
+        let kept = Recipe { keep_frac: 0.01, granularity: Granularity::Row, ..plain };
+        assert_eq!(copies(&kept), 3);
+    }
+
+    #[test]
+    fn a_run_that_cannot_fit_is_refused_with_both_sizes() {
+        let shape = [4096, 14336];
+        let plain = Recipe::default();
+        let needed = working_bytes(4096, 14336, &plain, None, 2) + 4096 * 14336 * 4;
+        assert!(check(&shape, &[plain], None, 2, false, needed).is_ok());
+        let err = check(&shape, &[plain], None, 2, false, needed - 1).unwrap_err().to_string();
+        assert!(err.contains("int4 asym g128") && err.contains("58720256 elements needs about 278.4 MiB of memory and 278.4 MiB are available"), "{err}");
+        let hqq = Recipe { method: Method::Hqq, ..plain };
+        let err = check(&shape, &[plain, hqq, plain], None, 2, true, 100 << 20).unwrap_err().to_string();
+        assert!(err.ends_with("int4 asym g128 f16 hqq on its 58720256 elements needs about 285.8 MiB of memory beside the tensor's own 224.0 MiB, and 100.0 MiB are available"), "{err}");
+        let err = check(&[65536, 8192], &[hqq], None, 2, false, 3 << 30).unwrap_err().to_string();
+        assert!(err.contains("needs about 4.") && err.contains("and 3.00 GiB are available"), "{err}");
+        assert!(check(&shape, &[], None, 2, true, 0).is_ok(), "nothing to run");
+    }
+}

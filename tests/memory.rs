@@ -1,0 +1,112 @@
+//! The memory estimate of `footprint` against the peak a counting allocator measures, for every
+//! kind of recipe over shapes with a partial row block and a partial group: never below it, and
+//! at most twice it plus a quarter of the tensor's size (the fixed part aside).
+
+use bitloupe::calib::Calibration;
+use bitloupe::footprint::{working_bytes, FIXED_BYTES};
+use bitloupe::formats::Format;
+use bitloupe::recipe::Method;
+use bitloupe::tensor::DType;
+use bitloupe::{analyze_with, Granularity, Recipe, Tensor};
+use ndarray::Array2;
+use std::alloc::{GlobalAlloc, Layout, System};
+use std::sync::atomic::{AtomicUsize, Ordering::Relaxed};
+
+/// The system allocator, counting the bytes live and their peak.
+struct Counting;
+
+static LIVE: AtomicUsize = AtomicUsize::new(0);
+static PEAK: AtomicUsize = AtomicUsize::new(0);
+
+fn grew(bytes: usize) {
+    let now = LIVE.fetch_add(bytes, Relaxed) + bytes;
+    PEAK.fetch_max(now, Relaxed);
+}
+
+// SAFETY: every call goes to the system allocator unchanged; the counters only observe.
+unsafe impl GlobalAlloc for Counting {
+    unsafe fn alloc(&self, layout: Layout) -> *mut u8 {
+        let p = System.alloc(layout);
+        if !p.is_null() {
+            grew(layout.size());
+        }
+        p
+    }
+    unsafe fn alloc_zeroed(&self, layout: Layout) -> *mut u8 {
+        let p = System.alloc_zeroed(layout);
+        if !p.is_null() {
+            grew(layout.size());
+        }
+        p
+    }
+    unsafe fn dealloc(&self, ptr: *mut u8, layout: Layout) {
+        System.dealloc(ptr, layout);
+        LIVE.fetch_sub(layout.size(), Relaxed);
+    }
+    unsafe fn realloc(&self, ptr: *mut u8, layout: Layout, new_size: usize) -> *mut u8 {
+        let p = System.realloc(ptr, layout, new_size);
+        if !p.is_null() {
+            LIVE.fetch_sub(layout.size(), Relaxed);
+            grew(new_size);
+        }
+        p
+    }
+}
+
+#[global_allocator]
+static ALLOCATOR: Counting = Counting;
+
+fn recipes() -> Vec<(Recipe, bool)> {
+    let plain = Recipe::default();
+    vec![
+        (plain, false),
+        (Recipe { granularity: Granularity::Group(8), ..plain }, false),
+        (plain, true),
+        (Recipe { granularity: Granularity::Row, ..plain }, false),
+        (Recipe { granularity: Granularity::Tensor, ..plain }, true),
+        (Recipe { method: Method::Clip, ..plain }, false),
+        (Recipe { method: Method::Hqq, ..plain }, false),
+        (Recipe { method: Method::Hqq, granularity: Granularity::Group(8), ..plain }, false),
+        (Recipe::for_format(Format::Nf4), false),
+        (Recipe { double_quant: true, ..Recipe::for_format(Format::Nf4) }, false),
+        (Recipe::for_format(Format::E2m1), false),
+        (Recipe::for_format(Format::Codebook), false),
+        (Recipe { keep_frac: 0.005, ..plain }, false),
+        (Recipe { keep_cols: 8, ..plain }, true),
+        (Recipe { smooth: Some(0.5), ..plain }, true),
+        (Recipe { method: Method::Gptq, ..plain }, true),
+        (Recipe { method: Method::Gptq, act_order: true, granularity: Granularity::Group(32), ..plain }, true),
+        (Recipe { method: Method::Awq, ..plain }, true),
+        (Recipe { method: Method::Awq, awq_clip: true, ..plain }, true),
+    ]
+}
+
+#[test]
+fn the_estimate_covers_the_measured_peak_of_every_recipe() {
+    const THREADS: usize = 2;
+    let pool = rayon::ThreadPoolBuilder::new().num_threads(THREADS).build().unwrap();
+    let mut rng = bitloupe::demo::Rng::new(7);
+    let mut normal = |shape: (usize, usize)| Array2::from_shape_fn(shape, |_| rng.normal() as f32);
+    for (rows, cols, tokens) in [(520, 600, 200), (129, 1000, 64), (1500, 136, 300)] {
+        let t = Tensor::from_values("w", DType::F32, normal((rows, cols)));
+        let sample = normal((tokens, cols));
+        let tensor_bytes = (rows * cols * 4) as u64;
+        // The linear algebra's per-thread workspaces are made on first use and kept: made here.
+        let warm = Calibration::from_sample(sample.clone());
+        for (recipe, _) in recipes().into_iter().filter(|(r, with)| *with && !r.act_order) {
+            pool.install(|| analyze_with(&t, &recipe, Some(&warm), &mut |_, _| {})).unwrap();
+        }
+        for (recipe, with_sample) in recipes() {
+            let calib = with_sample.then(|| Calibration::from_sample(sample.clone()));
+            let before = LIVE.load(Relaxed);
+            PEAK.store(before, Relaxed);
+            let analysis = pool.install(|| analyze_with(&t, &recipe, calib.as_ref(), &mut |_, _| {})).unwrap();
+            let peak = (PEAK.load(Relaxed) - before) as u64;
+            drop(analysis);
+            let estimate = working_bytes(rows, cols, &recipe, with_sample.then_some(tokens), THREADS) - FIXED_BYTES;
+            let case = format!("{} on {rows} × {cols}, sample {with_sample}: peak {peak}, estimate {estimate}", recipe.label());
+            assert!(peak <= estimate, "{case}");
+            assert!(estimate <= 2 * peak + tensor_bytes / 4, "{case}");
+        }
+    }
+}
