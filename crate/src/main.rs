@@ -365,8 +365,12 @@ Per-tensor error is only a proxy: check any recipe on the model's own task befor
                     report_doc = report_doc.with_smoothing(study);
                 }
                 let mut outputs = Vec::new();
-                if let Some(path) = out {
-                    let values = analysis.dequantized(&tensor).map_err(Failure::at(&file))?;
+                // Made once for both outputs that need it (a plain recipe's is made again here).
+                let reconstruction = match out.is_some() || packed.is_some() {
+                    true => Some(analysis.dequantized(&tensor).map_err(Failure::at(&file))?),
+                    false => None,
+                };
+                if let (Some(path), Some(values)) = (out, &reconstruction) {
                     outputs.push((path, npy::write_f32(values.as_slice().expect("row-major"), &tensor.shape)));
                 }
                 if let Some(path) = markdown {
@@ -375,8 +379,8 @@ Per-tensor error is only a proxy: check any recipe on the model's own task befor
                 if let Some(path) = groups_csv {
                     outputs.push((path, report_doc.groups_csv().into_bytes()));
                 }
-                if let Some(path) = packed {
-                    let bytes = bitloupe::packed::pack(&analysis, &tensor).map_err(Failure::at(&path))?;
+                if let (Some(path), Some(values)) = (packed, &reconstruction) {
+                    let bytes = bitloupe::packed::pack_reconstruction(&analysis, &tensor.shape, values).map_err(Failure::at(&path))?;
                     outputs.push((path, bytes));
                 }
                 // Standard output gets the report or the summary once every file is in place.

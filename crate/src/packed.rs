@@ -184,9 +184,14 @@ fn kept_positions(columns: &[usize], elements: &[usize], rows: usize, cols: usiz
 
 /// The packed `.safetensors` bytes of `analysis`, taken from `tensor`.
 pub fn pack(analysis: &Analysis, tensor: &Tensor) -> Result<Vec<u8>> {
-    let recipe = analysis.recipe;
-    let shape = &tensor.shape;
     let dequantized = analysis.dequantized(tensor)?;
+    pack_reconstruction(analysis, &tensor.shape, &dequantized)
+}
+
+/// [`pack`] from the reconstruction `dequantized` of the analysed tensor (of `shape`), for a
+/// caller that also writes the reconstruction itself and so makes it once.
+pub fn pack_reconstruction(analysis: &Analysis, shape: &[usize], dequantized: &Array2<f32>) -> Result<Vec<u8>> {
+    let recipe = analysis.recipe;
     let (rows, cols) = dequantized.dim();
     let codec = Codec::new(&recipe);
     let width = group_width(recipe.granularity, cols);
