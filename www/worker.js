@@ -50,7 +50,7 @@ function analysisResult(a, view) {
     outputRowErr: a.outputRowErr(),
   };
   const group = shownGroup(arrays.groupMse, view.group);
-  const histogram = tensor.groupHistogram(a, group, view.bins);
+  const histogram = a.groupHistogram(group, view.bins);
   return { value: { summary: a.summary(), group, histogram, ...arrays }, transfer: Object.values(arrays).map((x) => x.buffer) };
 }
 
@@ -219,8 +219,8 @@ const handlers = {
     return { value: { rows, skipped: plan.skipped + failed } };
   },
   histogram({ index, bins }) {
-    if (!tensor || !analysis) throw new Error('no analysis yet');
-    return { value: tensor.groupHistogram(analysis, index, bins) };
+    if (!analysis) throw new Error('no analysis yet');
+    return { value: analysis.groupHistogram(index, bins) };
   },
   reportJson() {
     if (!analysis) throw new Error('no analysis yet');

@@ -600,37 +600,6 @@ impl TensorHandle {
         let (rows, failed) = crate::sweep::run(&self.tensor, calib, &recipes, by, &mut report).map_err(js_error)?;
         to_js(&Swept { rows, failed })
     }
-
-    /// Histogram of the values of group `index` of `analysis`, with the grid points of that
-    /// group: `{lo, hi, counts, grid}`.
-    #[wasm_bindgen(js_name = groupHistogram)]
-    pub fn group_histogram(&self, analysis: &AnalysisHandle, index: usize, bins: usize) -> Result<JsValue, JsError> {
-        #[derive(Serialize)]
-        struct GroupHistogram {
-            scaled: bool,
-            histogram: Histogram,
-            grid: Vec<f32>,
-            rows: [usize; 2],
-            cols: [usize; 2],
-        }
-        let (rows, cols) = analysis.analysis.group_span(index).ok_or_else(|| JsError::new("no such group"))?;
-        let mut values = self.tensor.values.slice(ndarray::s![rows.clone(), cols.clone()]).to_owned();
-        // With column factors the grid applies to W·diag(s); show the values it saw.
-        if let Some(s) = &analysis.analysis.column_factors {
-            for mut row in values.rows_mut() {
-                for (v, f) in row.iter_mut().zip(&s[cols.clone()]) {
-                    *v *= f;
-                }
-            }
-        }
-        to_js(&GroupHistogram {
-            scaled: analysis.analysis.column_factors.is_some(),
-            histogram: Histogram::of(values.iter(), bins),
-            grid: analysis.analysis.grid_points(index),
-            rows: [rows.start, rows.end],
-            cols: [cols.start, cols.end],
-        })
-    }
 }
 
 /// Most values whose reconstruction the page exports: three copies of them in f32 (the tensor, the
@@ -649,6 +618,37 @@ pub struct AnalysisHandle {
 
 #[wasm_bindgen]
 impl AnalysisHandle {
+    /// Histogram of the values of group `index` of the tensor analysed, with the grid points of
+    /// that group: `{lo, hi, counts, grid}`.
+    #[wasm_bindgen(js_name = groupHistogram)]
+    pub fn group_histogram(&self, index: usize, bins: usize) -> Result<JsValue, JsError> {
+        #[derive(Serialize)]
+        struct GroupHistogram {
+            scaled: bool,
+            histogram: Histogram,
+            grid: Vec<f32>,
+            rows: [usize; 2],
+            cols: [usize; 2],
+        }
+        let (rows, cols) = self.analysis.group_span(index).ok_or_else(|| JsError::new("no such group"))?;
+        let mut values = self.tensor.values.slice(ndarray::s![rows.clone(), cols.clone()]).to_owned();
+        // With column factors the grid applies to W·diag(s); show the values it saw.
+        if let Some(s) = &self.analysis.column_factors {
+            for mut row in values.rows_mut() {
+                for (v, f) in row.iter_mut().zip(&s[cols.clone()]) {
+                    *v *= f;
+                }
+            }
+        }
+        to_js(&GroupHistogram {
+            scaled: self.analysis.column_factors.is_some(),
+            histogram: Histogram::of(values.iter(), bins),
+            grid: self.analysis.grid_points(index),
+            rows: [rows.start, rows.end],
+            cols: [cols.start, cols.end],
+        })
+    }
+
     /// Headline figures, bit budget and outlier columns (the JSON report without group lists).
     pub fn summary(&self) -> JsValue {
         self.summary.clone()

@@ -5,7 +5,7 @@ import { pathToFileURL } from 'node:url';
 import { openSync, readSync, writeSync, ftruncateSync, closeSync, mkdtempSync } from 'node:fs';
 import os from 'node:os';
 import path from 'node:path';
-import { launch, openPage, fixture, shot, dropFile, waitForAnalysis, sameOrigin, pageState, reportFigures, assertNothingLost } from './harness.mjs';
+import { launch, openPage, fixture, shot, dropFile, waitForAnalysis, sameOrigin, pageState, reportFigures, assertNothingLost, npyF32 } from './harness.mjs';
 
 let browser;
 before(async () => { browser = await launch(); });
@@ -199,6 +199,14 @@ test('the largest tensor the browser holds is analysed, and a method that needs 
   const after = await pageState(page);
   assert.equal(after.tensor, before.tensor, 'the tensor stays');
   assert.deepEqual(after.figures, before.figures, 'the last result stays on screen');
+  // Calibration adds the output error: the plain recipe takes it one row block at a time, so no
+  // reconstruction is held beside the 2 GiB tensor.
+  const sample = npyF32(16, 4096, (i) => Math.cos(i * 0.11));
+  await page.setInputFiles('#calib-input', { name: 'acts.npy', mimeType: 'application/octet-stream', buffer: sample });
+  await waitForAnalysis(page, await page.textContent('#status'));
+  assert.equal(await page.isVisible('#fig-output-card'), true, 'the output error is shown');
+  assert.equal(await page.isHidden('#recipe-message'), true, 'and nothing was refused');
+  assert.doesNotMatch(await page.textContent('#input-message'), /reloaded|restarted/);
   await context.close();
 });
 
