@@ -1,8 +1,8 @@
 //! The memory estimate of `footprint` against the peak a counting allocator measures, for every
-//! kind of recipe over shapes with a partial row block and a partial group: never below it, and
+//! kind of recipe, with a sample, with per-column statistics or with no calibration, over shapes with a partial row block and a partial group: never below it, and
 //! at most twice it plus a quarter of the tensor's size (the fixed part aside).
 
-use bitloupe::calib::Calibration;
+use bitloupe::calib::{CalibKind, Calibration};
 use bitloupe::footprint::{working_bytes, FIXED_BYTES};
 use bitloupe::formats::Format;
 use bitloupe::recipe::Method;
@@ -96,15 +96,24 @@ fn the_estimate_covers_the_measured_peak_of_every_recipe() {
         for (recipe, _) in recipes().into_iter().filter(|(r, with)| *with && !r.act_order) {
             pool.install(|| analyze_with(&t, &recipe, Some(&warm), &mut |_, _| {})).unwrap();
         }
-        for (recipe, with_sample) in recipes() {
-            let calib = with_sample.then(|| Calibration::from_sample(sample.clone()));
+        // Per-column statistics instead of a sample: the output error is estimated from them.
+        let max_abs = Tensor::from_values("s", DType::F32, Array2::from_elem((1, cols), 0.5));
+        let statistics = [(Recipe::default(), true), (Recipe { granularity: Granularity::Tensor, ..Recipe::default() }, true)];
+        for (index, (recipe, with_calibration)) in recipes().into_iter().chain(statistics).enumerate() {
+            let by_statistics = index >= recipes().len();
+            let calib = match (with_calibration, by_statistics) {
+                (false, _) => None,
+                (true, false) => Some(Calibration::from_sample(sample.clone())),
+                (true, true) => Some(Calibration::from_tensor(&max_abs, CalibKind::MaxAbs, cols).unwrap()),
+            };
+            let with_sample = with_calibration && !by_statistics;
             let before = LIVE.load(Relaxed);
             PEAK.store(before, Relaxed);
             let analysis = pool.install(|| analyze_with(&t, &recipe, calib.as_ref(), &mut |_, _| {})).unwrap();
             let peak = (PEAK.load(Relaxed) - before) as u64;
             drop(analysis);
             let estimate = working_bytes(rows, cols, &recipe, with_sample.then_some(tokens), THREADS) - FIXED_BYTES;
-            let case = format!("{} on {rows} × {cols}, sample {with_sample}: peak {peak}, estimate {estimate}", recipe.label());
+            let case = format!("{} on {rows} × {cols}, sample {with_sample}, statistics {by_statistics}: peak {peak}, estimate {estimate}", recipe.label());
             assert!(peak <= estimate, "{case}");
             assert!(estimate <= 2 * peak + tensor_bytes / 4, "{case}");
         }

@@ -25,9 +25,9 @@ const OUT_OF_MEMORY = /AllocError|memory allocation of \d+ bytes failed|capacity
  * What the user reads of a trap inside the core: out of memory, or `failed` with the panic or
  * engine message `reason`.
  */
-function trapText(reason, failed, withCalibration) {
+function trapText(reason, failed, withSample) {
   const exhausted = reason.match(OUT_OF_MEMORY);
-  const fewer = withCalibration ? ', fewer calibration tokens' : '';
+  const fewer = withSample ? ', fewer calibration tokens' : '';
   return exhausted
     ? `the core ran out of memory (${exhausted[0]}): this run needs more than the 4 GiB of WebAssembly memory a browser gives one page; try a smaller tensor${fewer} or the command-line tool`
     : `${failed} (${reason})`;
@@ -63,7 +63,7 @@ export class CoreBridge {
     const channel = `bitloupe-pool-${Date.now()}-${Math.random()}`;
     if (this.threads) {
       this.pool = new BroadcastChannel(channel);
-      this.pool.onmessage = (event) => this.restart(new Error(`${trapText(event.data, 'a compute pool worker failed', this.remembered.calib !== null)}; the last tensor was reloaded`));
+      this.pool.onmessage = (event) => this.restart(new Error(`${trapText(event.data, 'a compute pool worker failed', this.holdsSample())}; the last tensor was reloaded`));
     }
     try {
       const ready = await this.send('init', { wasm: this.wasm, threads: this.threads, channel });
@@ -88,7 +88,7 @@ export class CoreBridge {
       entry.resolve(message.result);
       return;
     }
-    entry.reject(new Error(message.fatal ? trapText(message.error, 'the computation failed inside the core', this.remembered.calib !== null) : message.error));
+    entry.reject(new Error(message.fatal ? trapText(message.error, 'the computation failed inside the core', this.holdsSample()) : message.error));
     if (message.fatal) this.restart(new Error('the compute worker was restarted and the last tensor reloaded'));
     else if (message.restart) this.restart(new Error(`${message.error}; the last tensor was reloaded`));
   }
@@ -113,6 +113,12 @@ export class CoreBridge {
       if (remember !== 'analyze') this.remembered.analyze = null;
     }
     return result;
+  }
+
+  /** Whether the worker holds an activation sample (the demo's, or a file read as one). */
+  holdsSample() {
+    const calib = this.remembered.calib;
+    return calib !== null && (calib.payload.kind ?? 'sample') === 'sample';
   }
 
   /** Stop replaying a remembered state (after it was cleared in the worker). */

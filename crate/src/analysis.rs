@@ -301,8 +301,8 @@ impl RowObserver for Measure {
 }
 
 /// Takes the output error of a reconstruction one row block at a time as the plain path makes
-/// it: the block's rows are gathered into scratch and multiplied there, so the reconstruction is
-/// never held whole. The figures are those of [`output_error`] on the whole reconstruction, bit
+/// it: with a sample the block's rows are gathered into scratch and multiplied there, with
+/// statistics the estimate is summed as the rows come, so the reconstruction is never held whole. The figures are those of [`output_error`] on the whole reconstruction, bit
 /// for bit (the same blocks, the same sums).
 struct OutputObserver<'a> {
     calib: &'a Calibration,
@@ -310,10 +310,11 @@ struct OutputObserver<'a> {
     reference: Option<&'a Array2<f32>>,
 }
 
-/// One row block's reconstruction, and its sums once complete.
+/// One row block's reconstruction (gathered only with a sample: the diagonal estimate is summed
+/// run by run as the rows come), and its sums.
 struct OutputBlock {
     first_row: usize,
-    x_hat: Array2<f32>,
+    x_hat: Option<Array2<f32>>,
     sums: RowSums,
 }
 
@@ -322,25 +323,31 @@ impl RowObserver for OutputObserver<'_> {
     type Total = RowSums;
 
     fn start(&self, first_row: usize, rows: usize) -> OutputBlock {
-        OutputBlock { first_row, x_hat: Array2::zeros((rows, self.weight.ncols())), sums: RowSums::default() }
+        match self.calib.sample {
+            Some(_) => OutputBlock { first_row, x_hat: Some(Array2::zeros((rows, self.weight.ncols()))), sums: RowSums::default() },
+            None => OutputBlock { first_row, x_hat: None, sums: RowSums::zeros(rows) },
+        }
     }
 
-    fn groups(&self, block: &mut OutputBlock, r: usize, first_col: usize, _: &[f32], x_hat: &[f32]) {
-        let mut row = block.x_hat.row_mut(r - block.first_row);
-        row.slice_mut(s![first_col..first_col + x_hat.len()]).assign(&ArrayView1::from(x_hat));
+    fn groups(&self, block: &mut OutputBlock, r: usize, first_col: usize, x: &[f32], x_hat: &[f32]) {
+        let row = r - block.first_row;
+        match &mut block.x_hat {
+            Some(gathered) => gathered.row_mut(row).slice_mut(s![first_col..first_col + x_hat.len()]).assign(&ArrayView1::from(x_hat)),
+            None => block.sums.add_estimated_run(self.calib, row, first_col, ArrayView1::from(x), ArrayView1::from(x_hat)),
+        }
     }
 
     fn end_row(&self, _: &mut OutputBlock, _: usize) {}
 
     fn end_block(&self, block: &mut OutputBlock) {
-        let rows = block.first_row..block.first_row + block.x_hat.nrows();
-        let weight = self.weight.slice(s![rows, ..]);
-        block.sums.add_rows(self.calib, weight, block.x_hat.view(), self.reference, block.first_row);
-        block.x_hat = Array2::zeros((0, 0));
+        if let Some(x_hat) = block.x_hat.take() {
+            let weight = self.weight.slice(s![block.first_row..block.first_row + x_hat.nrows(), ..]);
+            block.sums.add_rows(self.calib, weight, x_hat.view(), self.reference, block.first_row);
+        }
     }
 
-    fn empty_total(&self, _: usize) -> RowSums {
-        RowSums::default()
+    fn empty_total(&self, rows: usize) -> RowSums {
+        RowSums::with_capacity(rows)
     }
 
     fn fold(&self, total: &mut RowSums, block: OutputBlock) {
@@ -421,6 +428,11 @@ fn run(
 }
 
 impl Analysis {
+    /// Rows and columns of the analysed tensor's 2-D view.
+    pub fn dim(&self) -> (usize, usize) {
+        self.dim
+    }
+
     /// The reconstruction x̂ in the 2-D view of `tensor`, which must be the tensor analysed: a
     /// plain recipe's is made again from it, and measured again on the way, so that a tensor
     /// whose parameters or whole-tensor figures differ from the result's, bit for bit, is refused;

@@ -2,7 +2,7 @@
 //!
 //! Either an activation sample X of shape [tokens, cols] (the rows are the inputs x that the
 //! layer sees, y = x·Wᵀ), or one statistic per input column: max |x_j| or mean |x_j|. From a
-//! sample the core derives both statistics, the second moments E[x_j²], and the output error
+//! sample the core derives both statistics, the second moments E\[x_j²\], and the output error
 //! ‖X·Ŵᵀ − X·Wᵀ‖_F / ‖X·Wᵀ‖_F of any reconstruction Ŵ. With statistics only, the output
 //! error is estimated from the diagonal: Σ_rj (ŵ_rj − w_rj)²·m_j² / Σ_rj w_rj²·m_j², with m_j
 //! the given statistic (our approximation; it ignores correlations between columns).
@@ -11,7 +11,7 @@ use crate::error::{Error, Result};
 use crate::linalg;
 use crate::rows;
 use crate::tensor::Tensor;
-use ndarray::{s, Array2, ArrayView2};
+use ndarray::{s, Array2, ArrayView1, ArrayView2};
 use serde::{Deserialize, Serialize};
 use std::str::FromStr;
 use std::sync::{Arc, Mutex};
@@ -49,7 +49,7 @@ pub struct Calibration {
     pub max_abs: Vec<f32>,
     /// mean |x_j| per column.
     pub mean_abs: Vec<f32>,
-    /// E[x_j²] per column (from the sample; the square of the given statistic otherwise).
+    /// E\[x_j²\] per column (from the sample; the square of the given statistic otherwise).
     pub mean_sq: Vec<f32>,
     /// Which statistic was given when there is no sample.
     pub kind: CalibKind,
@@ -214,8 +214,18 @@ pub fn output_error(
     sums.output_error(calib)
 }
 
+/// Σ (ŵ_j − w_j)²·E[x_j²] and Σ w_j²·E[x_j²] over columns `first_col..` of one row, added to
+/// `err` and `sig` in column order (the diagonal estimate without a sample).
+fn add_estimated(calib: &Calibration, first_col: usize, w: ArrayView1<f32>, w_hat: ArrayView1<f32>, err: &mut f64, sig: &mut f64) {
+    for ((&a, &b), &m) in w.iter().zip(w_hat.iter()).zip(&calib.mean_sq[first_col..]) {
+        let d = f64::from(b) - f64::from(a);
+        *err += d * d * f64::from(m);
+        *sig += f64::from(a) * f64::from(a) * f64::from(m);
+    }
+}
+
 /// The sums of squares behind an output error, one of each per output row in row order: the
-/// error ‖ŷ_r − y_r‖² and the signal ‖y_r‖² (both weighted by E[x_j²] for the diagonal estimate).
+/// error ‖ŷ_r − y_r‖² and the signal ‖y_r‖² (both weighted by `E[x_j²]` for the diagonal estimate).
 /// Rows are independent, so they can be taken one row block at a time as a reconstruction is made.
 #[derive(Debug, Default)]
 pub(crate) struct RowSums {
@@ -250,16 +260,30 @@ impl RowSums {
             }
             _ => {
                 for (r, (w, h)) in weight.rows().into_iter().zip(reconstruction.rows()).enumerate() {
-                    for ((&a, &b), &m) in w.iter().zip(h.iter()).zip(&calib.mean_sq) {
-                        let d = f64::from(b) - f64::from(a);
-                        err[r] += d * d * f64::from(m);
-                        sig[r] += f64::from(a) * f64::from(a) * f64::from(m);
-                    }
+                    add_estimated(calib, 0, w, h, &mut err[r], &mut sig[r]);
                 }
             }
         }
         self.err.extend(err);
         self.sig.extend(sig);
+    }
+
+    /// No rows yet, with room for `rows`.
+    pub(crate) fn with_capacity(rows: usize) -> Self {
+        RowSums { err: Vec::with_capacity(rows), sig: Vec::with_capacity(rows) }
+    }
+
+    /// `rows` rows of zero sums, for the diagonal estimate taken a run at a time
+    /// ([`RowSums::add_estimated_run`]).
+    pub(crate) fn zeros(rows: usize) -> Self {
+        RowSums { err: vec![0.0; rows], sig: vec![0.0; rows] }
+    }
+
+    /// Add to row `row` of these sums the diagonal estimate over one run of its columns from
+    /// `first_col` on: the same sums, in the same order, as [`RowSums::add_rows`] takes over the
+    /// whole row when the runs come in column order.
+    pub(crate) fn add_estimated_run(&mut self, calib: &Calibration, row: usize, first_col: usize, w: ArrayView1<f32>, w_hat: ArrayView1<f32>) {
+        add_estimated(calib, first_col, w, w_hat, &mut self.err[row], &mut self.sig[row]);
     }
 
     /// Add the rows that follow.

@@ -31,7 +31,7 @@ pub const SCHEMA: &str = "bitloupe.checkpoint/1";
 /// Which tensors a report quantizes.
 #[derive(Debug, Clone, PartialEq, Eq, Serialize)]
 pub struct Selection {
-    /// Names to take, `*` standing for any run of characters ([`matches`]).
+    /// Names to take, `*` standing for any run of characters ([`matches()`]).
     pub pattern: String,
     /// Also take 1-D tensors and scalars (norm scales, biases), which are left as stored by
     /// default, as a model's quantization usually leaves them.

@@ -305,7 +305,9 @@ Per-tensor error is only a proxy: check any recipe on the model's own task befor
         fn load(&self, cols: usize, options: ReadOptions) -> Result<Option<Calibration>, Failure> {
             let Some(path) = &self.calib else { return Ok(None) };
             let kind = self.calib_kind.parse::<CalibKind>()?;
-            // A calibration tensor is held as a weight is under the plain recipe, at most.
+            // Checked as a weight under the plain recipe (about 1.3 copies of it); the calibration
+            // holds its values twice for a moment (the tensor read and the sample kept), which the
+            // check does not count: a sample is small beside the weight it calibrates.
             let data = load(path, self.calib_tensor.as_deref(), options, &[Recipe::default()])?;
             Ok(Some(Calibration::from_tensor(&data, kind, cols).map_err(Failure::at(path))?))
         }
@@ -599,8 +601,7 @@ Per-tensor error is only a proxy: check any recipe on the model's own task befor
     /// allocates anything.
     fn check_room(path: &Path, tensor: &Tensor, recipes: &[Recipe], calibration: Option<&Calibration>) -> Result<(), Failure> {
         let Some(available) = available_memory() else { return Ok(()) };
-        let tokens = calibration.and_then(|c| c.sample.as_ref()).map(|x| x.nrows());
-        footprint::check(&tensor.shape, recipes, tokens, bitloupe::rows::threads(), true, available).map_err(Failure::at(path))
+        footprint::check_read(tensor, recipes, calibration, available).map_err(Failure::at(path))
     }
 
     /// Memory the system can still give this process (Linux's MemAvailable), when it says.

@@ -15,7 +15,7 @@
 //! * `codebook` F16 [groups, 2^b] (codebooks);
 //! * `kept_columns` or `kept_index` U32 and `kept_values` F16 (kept columns: all rows of the
 //!   first kept column, then the next);
-//! * `column_factors` F32 [cols] (smoothing, AWQ): the grid saw W·diag(s), so Ŵ = Q(·)/s_j.
+//! * `column_factors` F32 \[cols\] (smoothing, AWQ): the grid saw W·diag(s), so Ŵ = Q(·)/s_j.
 //!
 //! Metadata: `bitloupe.packed` = "1", `recipe` (JSON), `shape` (JSON of the source shape).
 //!
@@ -29,7 +29,7 @@ use crate::grid::{GroupParams, IntGrid};
 use crate::methods::group_width;
 use crate::recipe::{Granularity, Method, Recipe, ScaleDType};
 use crate::tensor::safetensors::{read_header, read_metadata, write, Outgoing};
-use crate::tensor::{decode_little_endian, read_range, ByteSource, DType, Tensor};
+use crate::tensor::{decode_little_endian, read_range, view_2d, ByteSource, DType, Tensor};
 use half::{bf16, f16};
 use ndarray::Array2;
 use std::collections::BTreeMap;
@@ -191,6 +191,9 @@ pub fn pack(analysis: &Analysis, tensor: &Tensor) -> Result<Vec<u8>> {
 /// [`pack`] from the reconstruction `dequantized` of the analysed tensor (of `shape`), for a
 /// caller that also writes the reconstruction itself and so makes it once.
 pub fn pack_reconstruction(analysis: &Analysis, shape: &[usize], dequantized: &Array2<f32>) -> Result<Vec<u8>> {
+    if dequantized.dim() != analysis.dim() || view_2d(shape)? != analysis.dim() {
+        return Err(Error::NotTheAnalysedTensor { shape: shape.to_vec() });
+    }
     let recipe = analysis.recipe;
     let (rows, cols) = dequantized.dim();
     let codec = Codec::new(&recipe);
@@ -496,6 +499,11 @@ mod tests {
         let t = tensor(3, 64, 1);
         let a = analyze(&t, &Recipe { granularity: Granularity::Group(32), ..Recipe::default() }).unwrap();
         let bytes = pack(&a, &t).unwrap();
+        let x_hat = a.dequantized(&t).unwrap();
+        assert_eq!(pack_reconstruction(&a, &t.shape, &x_hat).unwrap(), bytes, "the same bytes from a reconstruction made once");
+        let other = tensor(3, 32, 1).values;
+        assert!(matches!(pack_reconstruction(&a, &t.shape, &other), Err(Error::NotTheAnalysedTensor { .. })), "a reconstruction of another shape");
+        assert!(matches!(pack_reconstruction(&a, &[3, 32], &x_hat), Err(Error::NotTheAnalysedTensor { .. })), "another shape");
         assert!(unpack(&bytes[..bytes.len() - 5]).is_err());
         let plain = crate::tensor::npy::write_f32(&[1.0, 2.0], &[2]);
         assert!(unpack(&plain[..]).is_err());

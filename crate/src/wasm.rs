@@ -36,7 +36,8 @@ thread_local! {
 /// The wasm build's allocator: the standard one, remembering the size of the last request it
 /// could not meet. Rust aborts after such a failure, and in WebAssembly an abort is a bare trap
 /// (there is no error stream for the usual message), so [`take_panic_message`] gives that message
-/// instead and the page can say that memory ran out.
+/// instead and the page can say that memory ran out. It also counts the bytes it has given out
+/// and not taken back, which [`check_room`] weighs a run's memory estimate against.
 struct RememberingFailures;
 
 /// Bytes of the last allocation that failed, 0 if none since the last [`take_panic_message`]
@@ -88,8 +89,7 @@ const MEMORY_CEILING: u64 = 1 << 32;
 /// worker and read the tensor again.
 fn check_room(tensor: &Tensor, recipes: &[Recipe], calib: Option<&Calibration>) -> Result<(), JsError> {
     let left = MEMORY_CEILING.saturating_sub(LIVE_BYTES.load(Ordering::Relaxed) as u64);
-    let tokens = calib.and_then(|c| c.sample.as_ref()).map(|x| x.nrows());
-    crate::footprint::check(&tensor.shape, recipes, tokens, crate::rows::threads(), true, left)
+    crate::footprint::check_read(tensor, recipes, calib, left)
         .map_err(|e| JsError::new(&format!("{e} of the page's 4 GiB; the command-line tool has no such limit")))
 }
 

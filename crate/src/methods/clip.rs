@@ -1,6 +1,6 @@
 //! Clipping search (common practice): per group, shrink the min/max range by ratios
 //! 1.00, 0.95, …, 0.50 and keep the ratio with the lowest error — the weight MSE, or, when
-//! calibration exists, the output-weighted error Σ_j E[x_j²]·(w_j − ŵ_j)², which is the
+//! calibration exists, the output-weighted error Σ_j E\[x_j²\]·(w_j − ŵ_j)², which is the
 //! diagonal part of the group's contribution to ‖X·(Ŵ − W)ᵀ‖².
 
 use super::keep::Kept;

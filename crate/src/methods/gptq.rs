@@ -74,7 +74,7 @@ pub const PEAK_SQUARE_MATRICES: usize = 2;
 /// allocation itself would end the process (a weight of 200 000 input columns asks for 160 GB
 /// per matrix). Whether they fit the memory at hand is [`crate::footprint`]'s to say, for the
 /// caller who knows that memory.
-pub fn check_width((rows, cols): (usize, usize)) -> Result<()> {
+pub(crate) fn check_width((rows, cols): (usize, usize)) -> Result<()> {
     let matrix = (cols as f64).powi(2) * 4.0;
     if matrix <= isize::MAX as f64 {
         return Ok(());
