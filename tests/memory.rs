@@ -9,52 +9,13 @@ use bitloupe::recipe::Method;
 use bitloupe::tensor::DType;
 use bitloupe::{analyze_with, Granularity, Recipe, Tensor};
 use ndarray::Array2;
-use std::alloc::{GlobalAlloc, Layout, System};
-use std::sync::atomic::{AtomicUsize, Ordering::Relaxed};
+use std::alloc::System;
 
-/// The system allocator, counting the bytes live and their peak.
-struct Counting;
-
-static LIVE: AtomicUsize = AtomicUsize::new(0);
-static PEAK: AtomicUsize = AtomicUsize::new(0);
-
-fn grew(bytes: usize) {
-    let now = LIVE.fetch_add(bytes, Relaxed) + bytes;
-    PEAK.fetch_max(now, Relaxed);
-}
-
-// SAFETY: every call goes to the system allocator unchanged; the counters only observe.
-unsafe impl GlobalAlloc for Counting {
-    unsafe fn alloc(&self, layout: Layout) -> *mut u8 {
-        let p = System.alloc(layout);
-        if !p.is_null() {
-            grew(layout.size());
-        }
-        p
-    }
-    unsafe fn alloc_zeroed(&self, layout: Layout) -> *mut u8 {
-        let p = System.alloc_zeroed(layout);
-        if !p.is_null() {
-            grew(layout.size());
-        }
-        p
-    }
-    unsafe fn dealloc(&self, ptr: *mut u8, layout: Layout) {
-        System.dealloc(ptr, layout);
-        LIVE.fetch_sub(layout.size(), Relaxed);
-    }
-    unsafe fn realloc(&self, ptr: *mut u8, layout: Layout, new_size: usize) -> *mut u8 {
-        let p = System.realloc(ptr, layout, new_size);
-        if !p.is_null() {
-            LIVE.fetch_sub(layout.size(), Relaxed);
-            grew(new_size);
-        }
-        p
-    }
-}
+#[path = "shared/counting_alloc.rs"]
+mod counting_alloc;
 
 #[global_allocator]
-static ALLOCATOR: Counting = Counting;
+static ALLOCATOR: counting_alloc::Counting<System> = counting_alloc::Counting(System);
 
 fn recipes() -> Vec<(Recipe, bool)> {
     let plain = Recipe::default();
@@ -107,10 +68,9 @@ fn the_estimate_covers_the_measured_peak_of_every_recipe() {
                 (true, true) => Some(Calibration::from_tensor(&max_abs, CalibKind::MaxAbs, cols).unwrap()),
             };
             let with_sample = with_calibration && !by_statistics;
-            let before = LIVE.load(Relaxed);
-            PEAK.store(before, Relaxed);
+            let before = counting_alloc::restart_peak();
             let analysis = pool.install(|| analyze_with(&t, &recipe, calib.as_ref(), &mut |_, _| {})).unwrap();
-            let peak = (PEAK.load(Relaxed) - before) as u64;
+            let peak = (counting_alloc::peak() - before) as u64;
             drop(analysis);
             let estimate = working_bytes(rows, cols, &recipe, with_sample.then_some(tokens), THREADS) - FIXED_BYTES;
             let case = format!("{} on {rows} × {cols}, sample {with_sample}, statistics {by_statistics}: peak {peak}, estimate {estimate}", recipe.label());

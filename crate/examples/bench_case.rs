@@ -14,52 +14,12 @@
 //!
 //! Usage: bench_case FILE [REPEATS] [THREADS] [PAUSE_MS]   (THREADS 1 = single-threaded, 0 = all cores)
 
-use std::alloc::{GlobalAlloc, Layout};
-use std::sync::atomic::{AtomicUsize, Ordering::Relaxed};
+#[path = "../../tests/shared/counting_alloc.rs"]
+mod counting_alloc;
 
-/// The command's allocator (see crate/src/main.rs), counting the bytes live and their peak.
-struct Counting;
-
-static LIVE: AtomicUsize = AtomicUsize::new(0);
-static PEAK: AtomicUsize = AtomicUsize::new(0);
-
-fn grew(bytes: usize) {
-    let now = LIVE.fetch_add(bytes, Relaxed) + bytes;
-    PEAK.fetch_max(now, Relaxed);
-}
-
-// SAFETY: every call goes to mimalloc unchanged; the counters only observe.
-unsafe impl GlobalAlloc for Counting {
-    unsafe fn alloc(&self, layout: Layout) -> *mut u8 {
-        let p = mimalloc::MiMalloc.alloc(layout);
-        if !p.is_null() {
-            grew(layout.size());
-        }
-        p
-    }
-    unsafe fn alloc_zeroed(&self, layout: Layout) -> *mut u8 {
-        let p = mimalloc::MiMalloc.alloc_zeroed(layout);
-        if !p.is_null() {
-            grew(layout.size());
-        }
-        p
-    }
-    unsafe fn dealloc(&self, ptr: *mut u8, layout: Layout) {
-        mimalloc::MiMalloc.dealloc(ptr, layout);
-        LIVE.fetch_sub(layout.size(), Relaxed);
-    }
-    unsafe fn realloc(&self, ptr: *mut u8, layout: Layout, new_size: usize) -> *mut u8 {
-        let p = mimalloc::MiMalloc.realloc(ptr, layout, new_size);
-        if !p.is_null() {
-            LIVE.fetch_sub(layout.size(), Relaxed);
-            grew(new_size);
-        }
-        p
-    }
-}
-
+/// The command's allocator (see crate/src/main.rs), counted.
 #[global_allocator]
-static ALLOCATOR: Counting = Counting;
+static ALLOCATOR: counting_alloc::Counting<mimalloc::MiMalloc> = counting_alloc::Counting(mimalloc::MiMalloc);
 
 use bitloupe::tensor::{self, ReadOptions};
 use bitloupe::{analyze, Recipe};
@@ -75,8 +35,7 @@ fn main() -> Result<(), Box<dyn std::error::Error + Send + Sync>> {
     // call it: this thread waits while the pool's threads compute.
     rayon::ThreadPoolBuilder::new().num_threads(threads).build_global()?;
     let baseline = resident_bytes("VmRSS:").unwrap_or(0);
-    let heap_baseline = LIVE.load(Relaxed);
-    PEAK.store(heap_baseline, Relaxed);
+    let heap_baseline = counting_alloc::restart_peak();
     let file = std::fs::File::open(path)?;
     let start = Instant::now();
     let listing = tensor::list(&file, ReadOptions::default())?;
@@ -93,7 +52,7 @@ fn main() -> Result<(), Box<dyn std::error::Error + Send + Sync>> {
         // The peak of one analysis: later repeats may find the allocator still holding the
         // previous run's freed pages, which says nothing about what one analysis needs.
         peak = peak.or_else(|| resident_bytes("VmHWM:"));
-        heap_peak = heap_peak.or_else(|| Some(PEAK.load(Relaxed) - heap_baseline));
+        heap_peak = heap_peak.or_else(|| Some(counting_alloc::peak() - heap_baseline));
     }
     times.sort_by(f64::total_cmp);
     let median_ms = times[times.len() / 2];
