@@ -15,12 +15,12 @@
 //!   do in the model, and a tensor's MSE is not compared across scales); SQNR is its 10·log₁₀
 //!   of the inverse square.
 
-use crate::footprint;
-use crate::rows;
 use crate::analysis::headline;
 use crate::error::{Error, Result};
+use crate::footprint;
 use crate::recipe::{Method, Recipe};
 use crate::report::CAUTION;
+use crate::rows;
 use crate::sizing::matches;
 use crate::tensor::{self, ByteSource, DType, Listing, TensorEntry};
 use serde::Serialize;
