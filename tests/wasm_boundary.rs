@@ -61,7 +61,7 @@ fn the_boundary_runs_a_recipe_and_hands_out_typed_arrays() {
     assert_eq!(analysis.column_max_abs().length(), 300);
     let report: serde_json::Value = serde_json::from_str(&analysis.report_json()).unwrap();
     assert_eq!(report["groups"]["mse"].as_array().unwrap().len(), 37 * 5);
-    let hist = handle.group_histogram(&analysis, 4, 10).unwrap();
+    let hist = analysis.group_histogram(4, 10).unwrap();
     assert_eq!(get(&hist, "grid").dyn_into::<js_sys::Array>().unwrap().length(), 8);
     let counts = get(&get(&hist, "histogram"), "counts").dyn_into::<js_sys::Array>().unwrap();
     let total: f64 = counts.iter().map(|c| c.as_f64().unwrap()).sum();
