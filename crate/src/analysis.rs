@@ -6,8 +6,8 @@
 //! A plain round to nearest does not keep its reconstruction: it is measured row by row while in
 //! cache (with calibration, its output error one row block at a time) and made again only when
 //! asked for (an export), the same values bit for bit, since it is a function of the tensor and
-//! the recipe alone. Keeping it would double the memory of the
-//! most common analysis and add the tensor's size again to its memory traffic.
+//! the recipe alone. Keeping it would double the memory of the most common analysis and add the
+//! tensor's size again to its memory traffic.
 
 use crate::calib::{output_error, Calibration, OutputError, RowSums};
 use crate::cost::BitCost;
@@ -302,8 +302,9 @@ impl RowObserver for Measure {
 
 /// Takes the output error of a reconstruction one row block at a time as the plain path makes
 /// it: with a sample the block's rows are gathered into scratch and multiplied there, with
-/// statistics the estimate is summed as the rows come, so the reconstruction is never held whole. The figures are those of [`output_error`] on the whole reconstruction, bit
-/// for bit (the same blocks, the same sums).
+/// statistics the estimate is summed as the rows come, so the reconstruction is never held
+/// whole. The figures are those of [`output_error`] on the whole reconstruction, bit for bit
+/// (the same blocks, the same sums).
 struct OutputObserver<'a> {
     calib: &'a Calibration,
     weight: ArrayView2<'a, f32>,
@@ -558,8 +559,8 @@ mod tests {
 
     /// The plain path's output error, taken block by block as the rows are made, against
     /// `output_error` on the whole reconstruction made again: the same bits, over row counts of
-    /// one, one whole row block and not a multiple of it, for a sample and for per-column statistics, on
-    /// one thread and four.
+    /// one, one whole row block and not a multiple of it, for a sample and for per-column
+    /// statistics, on one thread and four.
     #[test]
     fn a_plain_output_error_taken_block_by_block_is_the_whole_one() {
         use crate::calib::CalibKind;
