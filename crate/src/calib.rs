@@ -246,7 +246,10 @@ impl RowSums {
         first: usize,
     ) {
         let rows = weight.nrows();
-        let (mut err, mut sig) = (vec![0f64; rows], vec![0f64; rows]);
+        let start = self.err.len();
+        self.err.resize(start + rows, 0.0);
+        self.sig.resize(start + rows, 0.0);
+        let (err, sig) = (&mut self.err[start..], &mut self.sig[start..]);
         match (&calib.sample, reference) {
             (Some(x), Some(y)) => {
                 let y_hat = linalg::matmul_transposed_block(x.view(), reconstruction);
@@ -264,8 +267,6 @@ impl RowSums {
                 }
             }
         }
-        self.err.extend(err);
-        self.sig.extend(sig);
     }
 
     /// No rows yet, with room for `rows`.
