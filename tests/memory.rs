@@ -1,9 +1,13 @@
 //! The memory estimate of `footprint` against the peak a counting allocator measures, for every
-//! kind of recipe, with a sample, with per-column statistics or with no calibration, over shapes with a partial row block and a partial group: never below it, and
-//! at most twice it plus a quarter of the tensor's size (the fixed part aside).
+//! kind of recipe, with a sample, with per-column statistics or with no calibration, over shapes
+//! with a partial row block and a partial group: never below it, and at most twice it plus a
+//! quarter of the tensor's size (the fixed part aside). The same for the estimate of an export of
+//! each result.
 
 use bitloupe::calib::{CalibKind, Calibration};
-use bitloupe::footprint::{working_bytes, FIXED_BYTES};
+use bitloupe::footprint::{export_bytes, working_bytes, FIXED_BYTES};
+use bitloupe::packed::pack;
+use bitloupe::tensor::npy::write_f32;
 use bitloupe::formats::Format;
 use bitloupe::recipe::Method;
 use bitloupe::tensor::DType;
@@ -22,6 +26,7 @@ fn recipes() -> Vec<(Recipe, bool)> {
     vec![
         (plain, false),
         (Recipe { granularity: Granularity::Group(8), ..plain }, false),
+        (Recipe { bits: 8, ..plain }, false),
         (plain, true),
         (Recipe { granularity: Granularity::Row, ..plain }, false),
         (Recipe { granularity: Granularity::Tensor, ..plain }, true),
@@ -71,11 +76,25 @@ fn the_estimate_covers_the_measured_peak_of_every_recipe() {
             let before = counting_alloc::restart_peak();
             let analysis = pool.install(|| analyze_with(&t, &recipe, calib.as_ref(), &mut |_, _| {})).unwrap();
             let peak = (counting_alloc::peak() - before) as u64;
-            drop(analysis);
             let estimate = working_bytes(rows, cols, &recipe, with_sample.then_some(tokens), THREADS) - FIXED_BYTES;
             let case = format!("{} on {rows} × {cols}, sample {with_sample}, statistics {by_statistics}: peak {peak}, estimate {estimate}", recipe.label());
             assert!(peak <= estimate, "{case}");
             assert!(estimate <= 2 * peak + tensor_bytes / 4, "{case}");
+            // The exports of the result: the reconstruction as `.npy`, and the packed file (which
+            // some results cannot give: GPTQ's kept values with smoothing, say).
+            let estimate = export_bytes(&analysis) - FIXED_BYTES;
+            let before = counting_alloc::restart_peak();
+            let npy = write_f32(analysis.dequantized(&t).unwrap().as_slice().unwrap(), &t.shape);
+            let npy_peak = (counting_alloc::peak() - before) as u64;
+            drop(npy);
+            let before = counting_alloc::restart_peak();
+            let packed = pack(&analysis, &t);
+            let packed_peak = (counting_alloc::peak() - before) as u64;
+            drop(packed);
+            let case = format!("export of {case}: .npy peak {npy_peak}, packed peak {packed_peak}, estimate {estimate}");
+            assert!(npy_peak.max(packed_peak) <= estimate, "{case}");
+            assert!(estimate <= 2 * npy_peak.max(packed_peak) + tensor_bytes / 4, "{case}");
+            drop(analysis);
         }
     }
 }

@@ -2,7 +2,7 @@
 //! Errors must arrive as JS errors with the core's message, never as panics.
 #![cfg(target_arch = "wasm32")]
 
-use bitloupe::wasm::{calibration_from_bytes, demo_weight, open_bytes, open_file, parse_text, recipe_defaults, take_panic_message, warm_up};
+use bitloupe::wasm::{calibration_from_bytes, demo_weight, fits_beside_held, open_bytes, open_file, parse_text, recipe_defaults, take_panic_message, warm_up};
 use bitloupe::{analyze, tensor, ReadOptions};
 use wasm_bindgen::prelude::*;
 use wasm_bindgen_test::*;
@@ -178,4 +178,25 @@ fn a_failed_allocation_is_reported_with_its_size() {
     assert!(more.try_reserve_exact(bytes).is_err());
     assert_eq!(take_panic_message(), Some(format!("memory allocation of {bytes} bytes failed")));
     assert_eq!(take_panic_message(), None, "a failure is reported once");
+}
+
+/// The worker asks whether a tensor about to be read fits beside what the page holds, with its
+/// first run: the core's estimate (`footprint`) against what the 4 GiB memory has left.
+#[wasm_bindgen_test]
+fn a_tensor_fits_beside_what_is_held_by_the_estimate_of_its_first_run() {
+    let plain = recipe("{}");
+    let gptq = recipe(r#"{"method": "gptq"}"#);
+    assert!(fits_beside_held(vec![4096, 4096], plain.clone()));
+    // 30000 × 16384 is 1.83 GiB as f32: beside it the plain recipe's groups and sums fit, GPTQ's
+    // two square matrices of 16384² f32 (1 GiB each) do not.
+    assert!(fits_beside_held(vec![30000, 16384], plain));
+    assert!(!fits_beside_held(vec![30000, 16384], gptq));
+    // Holding 2 GiB leaves no room for such a tensor (untouched, the pages cost no resident memory).
+    let mut held = Vec::<u8>::new();
+    held.try_reserve_exact((1 << 31) - (1 << 16)).unwrap();
+    assert!(!fits_beside_held(vec![30000, 16384], recipe("{}")));
+    drop(held);
+    // What cannot be read or run is left to the reading and the run, which say why.
+    assert!(fits_beside_held(vec![1 << 20, 1 << 20], recipe("{}")));
+    assert!(fits_beside_held(vec![30000, 16384], recipe(r#"{"method": "gptq", "granularity": {"group": 0}}"#)));
 }

@@ -7,12 +7,6 @@
 /** Pages of shared memory the threaded core starts with (more than its static data needs). */
 const SHARED_MEMORY_PAGES = 256;
 
-/**
- * Values of two tensors (in f32) beyond which the tensor on screen is freed before another is
- * read: 3 GiB of the page's 4 GiB, which leaves room for the new tensor's first analysis.
- */
-const ROOM_FOR_TWO = 3 * 2 ** 28;
-
 /** A refusal after which the worker no longer holds the tensor on screen: the bridge restarts it. */
 class RestartAfter extends Error {}
 
@@ -64,11 +58,13 @@ function run(t, recipe, progress) {
  * because of NaN or infinite values is refused like a bad file (with the core's count and
  * place), so the tensor on screen, its result and the calibration stay.
  */
-function openAndAnalyze(open, recipe, view, progress, incoming = () => 0) {
-  // Two tensors too large to sit side by side in the page's memory: the one on screen gives way
-  // before the new one is read, and should the new one then be refused, the bridge is asked to
-  // restart the worker, which reopens the old one (its remembered open).
-  const makeRoom = tensor !== null && tensor.info().elements + incoming() > ROOM_FOR_TWO;
+function openAndAnalyze(open, recipe, view, progress, incoming = () => null) {
+  // A new tensor and its first run that cannot fit beside what the page holds (the core weighs
+  // them against its memory): the tensor on screen gives way before the new one is read, and
+  // should the new one then be refused, the bridge is asked to restart the worker, which reopens
+  // the old one (its remembered open).
+  const shape = tensor === null ? null : incoming();
+  const makeRoom = shape !== null && !core.fitsBesideHeld(shape, recipe);
   if (makeRoom) {
     tensor = replace(tensor, null);
     analysis = replace(analysis, null);
@@ -107,14 +103,14 @@ function openAndAnalyze(open, recipe, view, progress, incoming = () => 0) {
   return { value: { info, calibDropped, ...out.value }, transfer: out.transfer };
 }
 
-/** Values of the tensor `name` of `file` (the only one when `name` is null) from its header; 0 when it cannot be listed (opening it will say why). */
-function elementsOf(file, name, bf16) {
+/** The shape of the tensor `name` of `file` (the only one when `name` is null) from its header; null when it cannot be listed (opening it will say why). */
+function shapeOf(file, name, bf16) {
   try {
     const { entries } = core.listFile(file, bf16);
     const entry = name === null || name === undefined ? entries[0] : entries.find((e) => e.name === name);
-    return entry ? entry.shape.reduce((a, b) => a * b, 1) : 0;
+    return entry ? entry.shape : null;
   } catch {
-    return 0;
+    return null;
   }
 }
 
@@ -183,7 +179,7 @@ const handlers = {
     return openAndAnalyze(() => core.demoWeight(), recipe, view, progress);
   },
   openFile({ file, name, bf16, recipe, view }, progress) {
-    return openAndAnalyze(() => core.openFile(file, name ?? undefined, bf16), recipe, view, progress, () => elementsOf(file, name, bf16));
+    return openAndAnalyze(() => core.openFile(file, name ?? undefined, bf16), recipe, view, progress, () => shapeOf(file, name, bf16));
   },
   openText({ text, recipe, view }, progress) {
     return openAndAnalyze(() => core.parseText(text), recipe, view, progress);

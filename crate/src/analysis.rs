@@ -434,6 +434,12 @@ impl Analysis {
         self.dim
     }
 
+    /// Whether the result keeps its reconstruction (every recipe but the plain one), so that an
+    /// export need not make it again.
+    pub fn holds_reconstruction(&self) -> bool {
+        self.kept_reconstruction.is_some()
+    }
+
     /// The reconstruction x̂ in the 2-D view of `tensor`, which must be the tensor analysed: a
     /// plain recipe's is made again from it, and measured again on the way, so that a tensor
     /// whose parameters or whole-tensor figures differ from the result's, bit for bit, is refused;

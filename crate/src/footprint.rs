@@ -1,6 +1,7 @@
 //! The memory one analysis holds at its peak, by recipe, so that a run that cannot fit is refused
 //! with a message before anything is allocated for it: the command asks the system what it can
-//! still give, the page what its WebAssembly memory (4 GiB at most) has left.
+//! still give, the page what its WebAssembly memory (4 GiB at most) has left. The page weighs an
+//! export of a result the same way ([`export_bytes`]).
 //!
 //! An upper estimate built from what each step holds at once, with w the tensor's size as f32
 //! (4 bytes per element):
@@ -33,7 +34,7 @@
 //! a quarter of the tensor's size (the fixed part aside). The same test passes on layers of
 //! 4096 × 2048, 1000 × 4096 and 20000 × 128 in a release build.
 
-use crate::analysis::is_plain;
+use crate::analysis::{is_plain, Analysis};
 use crate::calib::Calibration;
 use crate::error::{Error, Result};
 use crate::formats::Format;
@@ -134,9 +135,32 @@ pub fn check_read(tensor: &Tensor, recipes: &[Recipe], calib: Option<&Calibratio
     check(&tensor.shape, recipes, tokens, rows::threads(), true, available)
 }
 
+/// Bytes an export of `analysis` (its reconstruction as `.npy`, or its packed file) holds at its
+/// peak beside what is already held, with w the tensor's size as f32: the reconstruction, unless
+/// the result keeps it (the plain recipe's is made again), w; then 2w for the larger of the two
+/// files: the `.npy` file is w, and the packed one is checked by reading it back, which holds the
+/// read-back tensor (w) beside the codes (at most a byte a value, with room for their growth:
+/// w/2), the file (w/4) and the codes read from it (w/4); every group's parameters, as written
+/// and as read back ([`BYTES_PER_GROUP`]); the positions of the values kept in 16-bit, which the
+/// packing looks up in a set ([`KEPT_POSITION_BYTES`]); a sixteenth of the tensor for the
+/// allocator's rounding; and [`FIXED_BYTES`].
+pub fn export_bytes(analysis: &Analysis) -> u64 {
+    let (rows, cols) = analysis.dim();
+    let tensor = rows as u128 * cols as u128 * 4;
+    let reconstruction = if analysis.holds_reconstruction() { 0 } else { tensor };
+    let kept = analysis.kept.columns.len() as u128 * rows as u128 + analysis.kept.elements.len() as u128;
+    let groups = analysis.params.len() as u128 * u128::from(BYTES_PER_GROUP);
+    let total = reconstruction + 2 * tensor + groups + kept * u128::from(KEPT_POSITION_BYTES) + tensor / 16 + u128::from(FIXED_BYTES);
+    u64::try_from(total).unwrap_or(u64::MAX)
+}
+
+/// A value kept in 16-bit, while a result is packed: its position in a list and in a hash set
+/// (with the set's spare room), and the value.
+pub const KEPT_POSITION_BYTES: u64 = 64;
+
 /// Bytes in GiB with two decimals (a need just above what is left must not read the same), or in
 /// MiB below one GiB.
-fn size(bytes: u64) -> String {
+pub fn size(bytes: u64) -> String {
     match bytes >= 1 << 30 {
         true => format!("{:.2} GiB", bytes as f64 / (1u64 << 30) as f64),
         false => format!("{:.1} MiB", bytes as f64 / (1u64 << 20) as f64),

@@ -83,13 +83,17 @@ unsafe impl GlobalAlloc for RememberingFailures {
 /// declares that as its maximum.
 const MEMORY_CEILING: u64 = 1 << 32;
 
+/// Bytes the WebAssembly memory can still give.
+fn memory_left() -> u64 {
+    MEMORY_CEILING.saturating_sub(LIVE_BYTES.load(Ordering::Relaxed) as u64)
+}
+
 /// Refuse to run `recipes` on `tensor` when the largest of their memory estimates
 /// ([`crate::footprint`]) is more than the WebAssembly memory has left, before anything is
 /// allocated: an allocation that fails ends the instance, and the page must then restart its
 /// worker and read the tensor again.
 fn check_room(tensor: &Tensor, recipes: &[Recipe], calib: Option<&Calibration>) -> Result<(), JsError> {
-    let left = MEMORY_CEILING.saturating_sub(LIVE_BYTES.load(Ordering::Relaxed) as u64);
-    crate::footprint::check_read(tensor, recipes, calib, left)
+    crate::footprint::check_read(tensor, recipes, calib, memory_left())
         .map_err(|e| JsError::new(&format!("{e} of the page's 4 GiB; the command-line tool has no such limit")))
 }
 
@@ -330,6 +334,19 @@ pub fn open_file(file: web_sys::Blob, name: Option<String>, raw16_as_bf16: bool)
         tensor.name_after_file(&file_name);
     }
     Ok(TensorHandle::new(tensor))
+}
+
+/// Whether a tensor of `shape`, read and analysed under `recipe`, fits beside everything the page
+/// holds now ([`crate::footprint::check`]): the worker lets the tensor on screen go before it reads
+/// one that does not. A shape that cannot be read at all, or a recipe that is not valid, is left
+/// to the reading or the run, which says what is wrong.
+#[wasm_bindgen(js_name = fitsBesideHeld)]
+pub fn fits_beside_held(shape: Vec<usize>, recipe: JsValue) -> bool {
+    let Ok(recipe) = parse_recipe(recipe) else { return true };
+    if tensor::element_count(&shape).is_err() || tensor::view_2d(&shape).is_err() {
+        return true;
+    }
+    crate::footprint::check(&shape, &[recipe], None, crate::rows::threads(), false, memory_left()).is_ok()
 }
 
 /// Bytes of WebAssembly memory this instance holds. Its memory only grows, so this is also the
@@ -602,11 +619,6 @@ impl TensorHandle {
     }
 }
 
-/// Most values whose reconstruction the page exports: three copies of them in f32 (the tensor, the
-/// reconstruction, the file) take 3 GiB of the 4 GiB, and this was the page's cap for any tensor
-/// while every analysis kept its reconstruction.
-const EXPORT_MAX_ELEMENTS: usize = 1 << 28;
-
 /// The result of one recipe on one tensor.
 #[wasm_bindgen]
 pub struct AnalysisHandle {
@@ -681,17 +693,21 @@ impl AnalysisHandle {
         crate::packed::pack(&self.analysis, &self.tensor).map_err(js_error)
     }
 
-    /// Refuse an export that cannot fit the page's memory, before anything is allocated for it:
-    /// the reconstruction (made again for a plain recipe) and the file's bytes sit beside the
-    /// tensor, about three times its f32 size.
+    /// Refuse an export that cannot fit what the page's memory has left, before anything is
+    /// allocated for it ([`crate::footprint::export_bytes`]): a failed allocation would end the
+    /// instance, and the result on screen with it.
     fn check_export(&self) -> Result<(), JsError> {
-        let count = self.tensor.values.len();
-        if count <= EXPORT_MAX_ELEMENTS {
+        let needed = crate::footprint::export_bytes(&self.analysis);
+        let left = memory_left();
+        if needed <= left {
             return Ok(());
         }
-        let gib = 3.0 * count as f64 * 4.0 / f64::from(1u32 << 30);
+        let size = crate::footprint::size;
         Err(JsError::new(&format!(
-            "exporting the reconstruction of these {count} values needs about {gib:.1} GiB beside the page's other memory, more than the 4 GiB a browser gives one page; the command-line tool writes it (bitloupe quantize FILE --out … or --packed …)"
+            "exporting the reconstruction of these {} values needs about {} of memory beside what the page holds, and {} are available of the page's 4 GiB; the command-line tool writes it (bitloupe quantize FILE --out … or --packed …)",
+            self.tensor.values.len(),
+            size(needed),
+            size(left)
         )))
     }
 
