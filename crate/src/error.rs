@@ -116,6 +116,15 @@ pub enum Error {
         /// The shape of the tensor given.
         shape: Vec<usize>,
     },
+    /// An export of a result that needs more memory than is left.
+    ExportTooLarge {
+        /// Values of the tensor whose reconstruction it writes.
+        elements: usize,
+        /// Bytes the export would hold at its peak ([`crate::footprint::export_bytes`]).
+        needed: u64,
+        /// Bytes left.
+        available: u64,
+    },
     /// A codebook whose levels cannot be stored in the f16 that codebooks keep them in.
     LevelOverflow {
         /// The row whose codebook it is, or `None` for one codebook of the whole tensor.
@@ -175,6 +184,12 @@ impl fmt::Display for Error {
                 write!(f, "line {line}, column {column}: {detail}")
             }
             Error::BadShape { shape, detail } => write!(f, "shape {shape:?} cannot be analysed: {detail}"),
+            Error::ExportTooLarge { elements, needed, available } => write!(
+                f,
+                "exporting the reconstruction of these {elements} values needs about {} of memory beside what is held, and {} are available",
+                crate::footprint::size(*needed),
+                crate::footprint::size(*available)
+            ),
             Error::NotTheAnalysedTensor { shape } => {
                 write!(f, "this result was taken from another tensor, so its reconstruction cannot be made from this one (shape {shape:?})")
             }

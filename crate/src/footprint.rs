@@ -154,6 +154,16 @@ pub fn export_bytes(analysis: &Analysis) -> u64 {
     u64::try_from(total).unwrap_or(u64::MAX)
 }
 
+/// Refuse to export `analysis` when [`export_bytes`], with `more` bytes the caller holds beside
+/// (another file of the same export), is more than the `available` bytes.
+pub fn check_export(analysis: &Analysis, more: u64, available: u64) -> Result<()> {
+    let needed = export_bytes(analysis).saturating_add(more);
+    match needed <= available {
+        true => Ok(()),
+        false => Err(Error::ExportTooLarge { elements: analysis.dim().0 * analysis.dim().1, needed, available }),
+    }
+}
+
 /// A value kept in 16-bit, while a result is packed: its position in a list and in a hash set
 /// (with the set's spare room), and the value.
 pub const KEPT_POSITION_BYTES: u64 = 64;
@@ -209,5 +219,22 @@ mod tests {
         let gptq = Recipe { method: Method::Gptq, ..plain };
         assert!(working_bytes(64, 23168, &gptq, None, 2) < 1 << 30);
         assert!(working_bytes(64, 23168, &gptq, Some(64), 2) > 4 << 30);
+    }
+
+    #[test]
+    fn an_export_that_cannot_fit_is_refused_with_both_sizes() {
+        let mut rng = crate::demo::Rng::new(3);
+        let tensor = Tensor::from_values("w", crate::tensor::DType::F32, ndarray::Array2::from_shape_fn((256, 512), |_| rng.normal() as f32));
+        let plain = crate::analyze(&tensor, &Recipe::default()).unwrap();
+        let hqq = crate::analyze(&tensor, &Recipe { method: Method::Hqq, ..Recipe::default() }).unwrap();
+        // The plain recipe makes its reconstruction again (w beside the 2w of the files); HQQ
+        // keeps its own. w = 512 KiB, 1024 groups of 40 bytes, a sixteenth of w, the fixed part.
+        let w = 256 * 512 * 4;
+        assert_eq!(export_bytes(&plain), 3 * w + 1024 * 40 + w / 16 + FIXED_BYTES);
+        assert_eq!(export_bytes(&hqq), 2 * w + 1024 * 40 + w / 16 + FIXED_BYTES);
+        let needed = export_bytes(&plain);
+        assert!(check_export(&plain, 0, needed).is_ok());
+        let err = check_export(&plain, 1, needed).unwrap_err().to_string();
+        assert_eq!(err, "exporting the reconstruction of these 131072 values needs about 17.6 MiB of memory beside what is held, and 17.6 MiB are available");
     }
 }

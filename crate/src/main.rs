@@ -367,9 +367,17 @@ Per-tensor error is only a proxy: check any recipe on the model's own task befor
                     report_doc = report_doc.with_smoothing(study);
                 }
                 let mut outputs = Vec::new();
-                // Made once for both outputs that need it (a plain recipe's is made again here).
+                // Made once for both outputs that need it (a plain recipe's is made again here),
+                // once the memory left is known to hold them: the `.npy` file is held while the
+                // packed one is made.
                 let reconstruction = match out.is_some() || packed.is_some() {
-                    true => Some(analysis.dequantized(&tensor).map_err(Failure::at(&file))?),
+                    true => {
+                        if let Some(available) = available_memory() {
+                            let npy_beside = if out.is_some() && packed.is_some() { tensor.values.len() as u64 * 4 } else { 0 };
+                            footprint::check_export(&analysis, npy_beside, available).map_err(Failure::at(&file))?;
+                        }
+                        Some(analysis.dequantized(&tensor).map_err(Failure::at(&file))?)
+                    }
                     false => None,
                 };
                 if let (Some(path), Some(values)) = (out, &reconstruction) {

@@ -697,18 +697,9 @@ impl AnalysisHandle {
     /// allocated for it ([`crate::footprint::export_bytes`]): a failed allocation would end the
     /// instance, and the result on screen with it.
     fn check_export(&self) -> Result<(), JsError> {
-        let needed = crate::footprint::export_bytes(&self.analysis);
-        let left = memory_left();
-        if needed <= left {
-            return Ok(());
-        }
-        let size = crate::footprint::size;
-        Err(JsError::new(&format!(
-            "exporting the reconstruction of these {} values needs about {} of memory beside what the page holds, and {} are available of the page's 4 GiB; the command-line tool writes it (bitloupe quantize FILE --out … or --packed …)",
-            self.tensor.values.len(),
-            size(needed),
-            size(left)
-        )))
+        crate::footprint::check_export(&self.analysis, 0, memory_left()).map_err(|e| {
+            JsError::new(&format!("{e} of the page's 4 GiB; the command-line tool writes it (bitloupe quantize FILE --out … or --packed …)"))
+        })
     }
 
     /// MSE of every group, row-major over [groups.rows × groups.per_row].

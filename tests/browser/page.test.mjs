@@ -196,7 +196,7 @@ test('the largest tensor the browser holds is analysed, and a method that needs 
   // allocated, with the way to get it.
   await page.click('#download-npy');
   await page.waitForFunction(() => /Nothing was saved/.test(document.getElementById('export-message').textContent));
-  assert.match(await page.textContent('#export-message'), /exporting the reconstruction of these 536866816 values needs about 6\.\d\d GiB of memory beside what the page holds, and 1\.\d\d GiB are available of the page's 4 GiB; the command-line tool writes it/);
+  assert.match(await page.textContent('#export-message'), /exporting the reconstruction of these 536866816 values needs about 6\.\d\d GiB of memory beside what is held, and 1\.\d\d GiB are available of the page's 4 GiB; the command-line tool writes it/);
   const after = await pageState(page);
   assert.equal(after.tensor, before.tensor, 'the tensor stays');
   assert.deepEqual(after.figures, before.figures, 'the last result stays on screen');
