@@ -6,10 +6,10 @@
 
 use bitloupe::calib::{CalibKind, Calibration};
 use bitloupe::footprint::{export_bytes, working_bytes, FIXED_BYTES};
-use bitloupe::packed::pack;
-use bitloupe::tensor::npy::write_f32;
 use bitloupe::formats::Format;
+use bitloupe::packed::pack;
 use bitloupe::recipe::Method;
+use bitloupe::tensor::npy::write_f32;
 use bitloupe::tensor::DType;
 use bitloupe::{analyze_with, Granularity, Recipe, Tensor};
 use ndarray::Array2;
