@@ -588,8 +588,9 @@ impl TensorHandle {
     }
 
     /// Run a sweep's `recipes` (see `sweepRecipes`) and mark the front against `by` ("sqnr",
-    /// "mse" or "output"): `{rows, failed}`; `progress(done, total, row)` after each recipe,
-    /// `row` undefined for one that failed on this tensor.
+    /// "mse" or "output"): `{rows, failed}`, `failed` counting the recipes that failed on this
+    /// tensor or could not fit the memory left; `progress(done, total, row)` after each recipe
+    /// run, `row` undefined for one that failed.
     pub fn sweep(&self, recipes: JsValue, by: &str, progress: js_sys::Function) -> Result<JsValue, JsError> {
         self.sweep_ref(recipes, by, progress, None)
     }
@@ -613,9 +614,15 @@ impl TensorHandle {
             let row = row.and_then(|r| to_js(r).ok()).unwrap_or(JsValue::UNDEFINED);
             let _ = progress.call3(&JsValue::NULL, &JsValue::from(done as f64), &JsValue::from(total as f64), &row);
         };
-        check_room(&self.tensor, &recipes, calib)?;
-        let (rows, failed) = crate::sweep::run(&self.tensor, calib, &recipes, by, &mut report).map_err(js_error)?;
-        to_js(&Swept { rows, failed })
+        // A recipe that cannot fit the memory left is skipped and counted like one the tensor
+        // cannot take; only when none fits is the sweep refused, naming the most demanding.
+        let (fitting, too_large): (Vec<Recipe>, Vec<Recipe>) =
+            recipes.into_iter().partition(|recipe| check_room(&self.tensor, std::slice::from_ref(recipe), calib).is_ok());
+        if fitting.is_empty() && !too_large.is_empty() {
+            check_room(&self.tensor, &too_large, calib)?;
+        }
+        let (rows, failed) = crate::sweep::run(&self.tensor, calib, &fitting, by, &mut report).map_err(js_error)?;
+        to_js(&Swept { rows, failed: failed + too_large.len() })
     }
 }
 

@@ -200,6 +200,16 @@ test('the largest tensor the browser holds is analysed, and a method that needs 
   const after = await pageState(page);
   assert.equal(after.tensor, before.tensor, 'the tensor stays');
   assert.deepEqual(after.figures, before.figures, 'the last result stays on screen');
+  // A sweep of round to nearest and HQQ: HQQ cannot fit, so it is skipped and counted, and round
+  // to nearest still runs.
+  for (const [name, values] of Object.entries({ 'sweep-format': ['nf4', 'mxfp4'], 'sweep-bits': ['2', '3', '8'], 'sweep-group': ['32', '64', 'row'] })) {
+    for (const value of values) await page.uncheck(`input[name=${name}][value="${value}"]`);
+  }
+  await page.check('input[name=sweep-method][value=hqq]');
+  await page.click('#sweep-run');
+  await page.waitForFunction(() => /recipes? run/.test(document.getElementById('sweep-status').textContent), null, { timeout: 180_000 });
+  assert.match(await page.textContent('#sweep-status'), /^1 recipe run, 1 on the front, 1 combinations skipped/);
+  assert.doesNotMatch(await page.textContent('#input-message'), /reloaded|restarted/);
   // Calibration adds the output error: the plain recipe takes it one row block at a time, so no
   // reconstruction is held beside the 2 GiB tensor.
   const sample = npyF32(16, 4096, (i) => Math.cos(i * 0.11));
