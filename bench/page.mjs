@@ -18,9 +18,11 @@
 // 6. The control for case 4, after the browser has closed: the native `bench_case` example
 //    (BENCH_CASE) on the 4096 × 4096 weight, one thread and all cores, back to back and with the
 //    page's pause before each run, the thread counts taking turns; so the table shows how much of
-//    the pool's figures is the machine rather than the browser.
+//    the pool's figures is the machine rather than the browser. And what the machine's cores give
+//    to independent work: one single-threaded copy of the analysis alone, then one copy per core
+//    at once; the sum of the copies' speeds against the lone copy's.
 import { mkdirSync, writeFileSync, openSync, ftruncateSync, closeSync, writeSync } from 'node:fs';
-import { execFileSync } from 'node:child_process';
+import { execFileSync, spawn } from 'node:child_process';
 import os from 'node:os';
 import path from 'node:path';
 import { launch, URL_UNDER_TEST } from '../tests/browser/harness.mjs';
@@ -302,6 +304,27 @@ if (process.env.BENCH_CASE) {
     }
   }
 }
+/** The median analysis time of a single-threaded `bench_case` run of `repeats` analyses. */
+const singleThreadedCase = (repeats, env = {}) =>
+  new Promise((resolve, reject) => {
+    const child = spawn(process.env.BENCH_CASE, [weightFile, String(repeats), '1', '0'], { env: { ...process.env, MIMALLOC_PURGE_DELAY: '-1', ...env } });
+    let out = '';
+    child.stdout.on('data', (chunk) => (out += chunk));
+    child.on('error', reject);
+    child.on('close', (code) => (code === 0 ? resolve(JSON.parse(out).analyze_ms) : reject(new Error(`bench_case exited with ${code}`))));
+  });
+// Per round: the copies' summed speed over the lone copy's. The copies start their analyses at
+// one moment, after each has opened the file, so they run side by side from the first; each
+// holds its own tensor, so together they move twice the memory a pool does.
+const machineRounds = [];
+if (process.env.BENCH_CASE) {
+  for (let round = 0; round < 4; round++) {
+    const alone = await singleThreadedCase(40);
+    const env = { BENCH_START_AT: String(Date.now() + 2000) };
+    const together = await Promise.all(Array.from({ length: cores[1] }, () => singleThreadedCase(40, env)));
+    machineRounds.push(together.reduce((sum, ms) => sum + alone / ms, 0));
+  }
+}
 if (process.env.BITLOUPE_BIN) {
   for (const method of ['gptq', 'awq']) {
     const start = performance.now();
@@ -334,6 +357,7 @@ if (process.env.BENCH_CASE) {
   const natively = { of: 'thread' };
   poolRow('control: native, 4096×4096 f32, round to nearest, back to back (medians of 20 runs)', pick(nativePool, 'backToBack'), natively);
   poolRow(`control: native, same, after a ${PAUSE_MS} ms pause each (medians of 20 runs)`, pick(nativePool, 'perChange'), natively);
+  console.log(`| control: the machine, ${cores[1]} single-threaded native copies of the same analysis at once against one alone (their summed speed; medians of 40 runs each, ${machineRounds.length} rounds) | ${median(machineRounds).toFixed(2)}× (rounds ${machineRounds.map((x) => x.toFixed(2)).join(', ')}) | ${machineRounds.length} |`);
 }
 console.log(`| 4096×14336 f16 .safetensors, choose file → error map drawn | ${median(wideRuns).toFixed(0)} ms | ${wideRuns.map((x) => x.toFixed(0)).join(', ')} |`);
 for (const method of ['gptq', 'awq']) {

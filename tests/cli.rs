@@ -209,7 +209,10 @@ fn bad_inputs_fail_with_one_clear_line_and_write_nothing() {
         (vec!["quantize", p(&weight), "--method", "gptq", "--awq-clip"], "--awq-clip applies to AWQ (--method awq) only"),
         (vec!["demo", "--out", p(&same), "--activations", p(&same)], "given for two outputs"),
         (vec!["quantize", p(&weight), "--out", p(&a_directory)], "is a directory"),
+        // The rename would put the result in place of the source.
+        (vec!["quantize", p(&weight), "--out", p(&weight)], "is the input"),
     ];
+    let source = std::fs::read(&weight).unwrap();
     for (mut args, needle) in cases {
         assert!(!same.exists(), "an earlier case left {same:?}");
         let deq = dir.path().join("never.npy");
@@ -230,6 +233,7 @@ fn bad_inputs_fail_with_one_clear_line_and_write_nothing() {
         let leftovers: Vec<_> = std::fs::read_dir(dir.path()).unwrap().filter_map(|e| e.ok()).filter(|e| e.file_name().to_string_lossy().contains("partial")).collect();
         assert!(leftovers.is_empty(), "{args:?} left a partial file");
     }
+    assert_eq!(std::fs::read(&weight).unwrap(), source, "the source weight was changed");
 }
 
 /// '-' sends the JSON report to standard output (after any file output is in place), and an

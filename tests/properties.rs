@@ -269,11 +269,10 @@ proptest! {
     ///   happens on symmetric grids with float scales whose unrounded scale is a normal number of
     ///   its type (the scale's rounding error, at most 2⁻⁸ relative, cannot move the largest
     ///   magnitude off the top level); it can fail on asymmetric grids (the zero point is
-    ///   rounded to a whole code, so the top code may go unused), with E8M0 scales (rounded by up
-    ///   to √2) and with scales below their type's normal range. The second fit then anchors a
+    ///   rounded to a whole code, so the top code may go unused), with E8M0 scales (rounded up, by
+    ///   up to 2×) and with scales below their type's normal range. The second fit then anchors a
     ///   narrower grid whose points are not x̂'s, and x̂ moves: for example int2 with E8M0 scales
-    ///   turns [−1, 1.4] into x̂ = [−1, 1] (scale 1, zero 1, top code unused), and [−1, 1] into
-    ///   [−1, 0.5] (scale 0.5). These follow from the stated min/max rule, which the numpy
+    ///   turns [−1, 1.4] into x̂ = [−1, 1] (scale 1, zero 1, top code unused). These follow from the stated min/max rule, which the numpy
     ///   cross-checks fix, so they are not treated as faults;
     /// * NF4 with double quantization is left out: its block constants are re-derived from a new
     ///   mean and new steps on the second pass.

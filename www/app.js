@@ -3,8 +3,8 @@
 
 import { CoreBridge, Cancelled } from './bridge.js';
 import { ErrorMap } from './errormap.js';
-import { SeriesChart, GroupHistogram } from './charts.js';
-import { GRADIENT } from './colors.js';
+import { SeriesChart, GroupHistogram, COMB_ABOVE_LEVELS } from './charts.js';
+import { GRADIENT, STOP_COLOURS } from './colors.js';
 import * as fmt from './format.js';
 import { pictureSvg, seriesSvg } from './svg.js';
 
@@ -49,6 +49,8 @@ const state = {
   selectedColumn: null,
   calib: null,
   study: null,
+  /** The error map's title and colour scale, for its SVG file. */
+  mapFile: null,
 };
 
 // ------------------------------------------------------------------ worker bridge
@@ -210,6 +212,21 @@ function showDependentControls() {
 
 /** The last count of kept columns that was valid, to put back a refused one. */
 let keptColumns = $('keep-cols').value;
+/** The last share of weights kept (in %) that a recipe used, to put back a refused one. */
+let keptShare = $('keep-frac').value;
+
+/**
+ * Settles once the worker has started and the recipe's controls are built from the core's
+ * defaults: an action taken sooner (a click on the demo while the page loads) waits for it
+ * rather than reading controls that are still empty.
+ */
+let pageReady = null;
+
+/** The recipe on screen, once the page is ready. */
+async function readyRecipe() {
+  await pageReady;
+  return readRecipe();
+}
 
 function readRecipe() {
   const g = $('granularity').value;
@@ -252,7 +269,9 @@ function setRecipe(recipe) {
   $('keep').value = recipe.keep_cols > 0 ? 'cols' : recipe.keep_frac > 0 ? 'frac' : 'none';
   if (recipe.keep_cols > 0) $('keep-cols').value = keptColumns = String(recipe.keep_cols);
   // The core holds the fraction in f32: 0.5 % comes back as 0.4999999888 % without the rounding.
-  if (recipe.keep_frac > 0) $('keep-frac').value = String(Number((recipe.keep_frac * 100).toPrecision(6)));
+  // A recipe that keeps no share puts back the last share that was used, not one that was refused.
+  if (recipe.keep_frac > 0) keptShare = String(Number((recipe.keep_frac * 100).toPrecision(6)));
+  $('keep-frac').value = keptShare;
 }
 
 // ------------------------------------------------------------------ opening tensors
@@ -267,7 +286,7 @@ async function open(label, type, payload, what) {
   showMessage('input-message', '');
   const started = performance.now();
   try {
-    const result = await task(label, type, { ...payload, recipe: readRecipe(), view: resultView(true) }, 'open');
+    const result = await task(label, type, { ...payload, recipe: await readyRecipe(), view: resultView(true) }, 'open');
     if (!result) return;
     state.info = result.info;
     showInfo(result.info);
@@ -295,6 +314,8 @@ async function open(label, type, payload, what) {
       showResults(result, { fresh: true });
       recordTiming('open-to-drawn', started);
     }
+    // Pins taken on the tensor before stay, named as such.
+    showCompare();
   } catch (err) {
     showMessage('input-message', `Could not open ${what}: ${err.message}.${stillOpen()}`);
     restoreStatus();
@@ -559,7 +580,7 @@ function restoreShownRecipe() {
 
 function showRecipeError(message) {
   showMessage('recipe-message', state.result ? `${message}. The results below are from the last recipe that worked.` : `${message}.`);
-  $('status').textContent = 'This recipe cannot be applied to this tensor.';
+  $('status').textContent = state.result ? 'That recipe was refused; the last one that worked is shown.' : 'This recipe cannot be applied to this tensor.';
 }
 
 const map = new ErrorMap($('error-map'), { onHover: hoverGroup, onSelect: selectGroup });
@@ -738,10 +759,14 @@ function drawMap(keepView) {
   // A per-row map has no input columns to point at.
   map.setSelectedColumn(metric.perRow ? null : state.selectedColumn);
   const what = metric.perRow ? 'one cell per output row' : g.group_size ? `groups of ${g.group_size} along each row` : g.rows === 1 ? 'the whole tensor as one group' : 'one group per row';
-  $('map-caption').textContent = `${fmt.plural(grid.rows, 'row')} × ${fmt.plural(grid.per_row, 'cell')} (${what}); colour: ${metric.label}, log scale. Scroll or press + and − to zoom, drag to pan, click a cell for its histogram.`;
+  const described = `${fmt.plural(grid.rows, 'row')} × ${fmt.plural(grid.per_row, 'cell')} (${what})`;
+  const click = metric.perRow ? '' : ', click a cell for its histogram';
+  $('map-caption').textContent = `${described}; colour: ${metric.label}, log scale. Scroll or press + and − to zoom, drag to pan${click}.`;
   const { lo, hi } = map.range();
   $('legend-lo').textContent = fmt.sci(lo);
   $('legend-hi').textContent = fmt.sci(hi);
+  // The map's file: its title says what it shows (not how to use the page), its scale is drawn.
+  state.mapFile = { title: `Error map: ${described}`, legend: { lo: fmt.sci(lo), hi: fmt.sci(hi), label: `${metric.label}, log scale`, colours: STOP_COLOURS } };
   $('legend-ramp').style.background = GRADIENT;
 }
 
@@ -817,7 +842,7 @@ function drawHistogram(h) {
   histogram.setData(h);
   const rows = h.rows[1] - h.rows[0] > 1 ? `rows ${h.rows[0]}–${h.rows[1] - 1}` : `row ${h.rows[0]}`;
   const what = h.scaled ? 'Values × their column factors (what the grid saw)' : 'Values';
-  $('hist-caption').textContent = `${what} of the group at ${rows}, columns ${h.cols[0]}–${h.cols[1] - 1}; vertical lines are its ${h.grid.length} grid levels.`;
+  $('hist-caption').textContent = `${what} of the group at ${rows}, columns ${h.cols[0]}–${h.cols[1] - 1}; the orange lines are its ${h.grid.length} grid levels${h.grid.length > COMB_ABOVE_LEVELS ? ' (a comb along the bottom: too many to draw across)' : ''}.`;
 }
 
 function selectColumn(col) {
@@ -886,7 +911,9 @@ function drawBudget(cost, bar = $('budget'), legend = $('budget-legend')) {
 
 // ------------------------------------------------------------------ sweep
 
-const sweep = { rows: [], by: 'sqnr', sortKey: 'bits_per_weight', ascending: true, shown: [] };
+// `frontBy`: the error axis the rows' front was marked against (none for a cancelled sweep's);
+// `skipped`: the combinations a finished sweep skipped (none while one runs or once cancelled).
+const sweep = { rows: [], by: 'sqnr', frontBy: null, skipped: null, running: false, sortKey: 'bits_per_weight', ascending: true, shown: [] };
 const sweepChart = new SeriesChart($('sweep-chart'), { xLabel: 'bits per weight', yLabel: 'error', onSelect: (i) => loadSweepRow(sweep.shown[i]) });
 const SWEEP_FORMATS = ['int', 'nf4', 'e2m1', 'e4m3', 'mxfp4', 'mxint8', 'codebook'];
 const SWEEP_COLOURS = ['--series1', '--part2', '--part3', '--series2', '--accent', '--muted', '--part1'];
@@ -959,10 +986,38 @@ for (const button of document.querySelectorAll('th button[data-sort]')) {
   });
 }
 
-$('sweep-by').addEventListener('change', () => {
-  sweep.by = $('sweep-by').value;
-  if (sweep.rows.length) $('sweep-run').click();
-});
+/**
+ * Mark the front of the rows on screen against the chosen error axis and draw them: each row
+ * holds all three figures, so a new axis needs no run, and a sweep that ran against another axis
+ * (changed while it ran) is brought in line when it ends.
+ */
+async function frontByAxis() {
+  const by = $('sweep-by').value;
+  if (by === 'output' && !state.calib) {
+    $('sweep-status').textContent = 'The output error needs calibration data; choose SQNR or MSE, or add calibration.';
+    return;
+  }
+  if (!sweep.rows.length || sweep.running) return;
+  if (sweep.frontBy !== by) {
+    try {
+      sweep.rows = await bridge.request('sweepFront', { rows: sweep.rows, by });
+      sweep.frontBy = by;
+    } catch (err) {
+      $('sweep-status').textContent = `The front could not be drawn against this axis: ${err.message}`;
+      return;
+    }
+  }
+  sweep.by = by;
+  drawSweep();
+  if (sweep.skipped !== null) showSweepDone();
+}
+
+/** The status of a sweep that ran to its end. */
+function showSweepDone() {
+  $('sweep-status').textContent = `${fmt.plural(sweep.rows.length, 'recipe')} run, ${sweep.rows.filter((r) => r.pareto).length} on the front, ${sweep.skipped} combinations skipped (meaningless, or not possible on this tensor).`;
+}
+
+$('sweep-by').addEventListener('change', frontByAxis);
 
 $('sweep-run').addEventListener('click', async () => {
   const spec = {
@@ -980,6 +1035,9 @@ $('sweep-run').addEventListener('click', async () => {
     return;
   }
   sweep.rows = [];
+  sweep.frontBy = null;
+  sweep.skipped = null;
+  sweep.running = true;
   let drawnAt = 0;
   try {
     const result = await task('Running the sweep', 'sweep', { spec, by: sweep.by }, null, (rows, done, total, elapsed) => {
@@ -999,13 +1057,19 @@ $('sweep-run').addEventListener('click', async () => {
     }
     timings.push({ what: 'sweep-compute', ms: bridge.lastComputeMs });
     sweep.rows = result.rows;
+    sweep.frontBy = sweep.by;
+    sweep.skipped = result.skipped;
+    sweep.running = false;
     drawSweep();
-    $('sweep-status').textContent = `${fmt.plural(result.rows.length, 'recipe')} run, ${result.rows.filter((r) => r.pareto).length} on the front, ${result.skipped} combinations skipped (meaningless, or not possible on this tensor).`;
+    showSweepDone();
     restoreStatus();
+    if ($('sweep-by').value !== sweep.by) await frontByAxis();
   } catch (err) {
     drawSweep();
     $('sweep-status').textContent = `The sweep could not run: ${err.message}`;
     restoreStatus();
+  } finally {
+    sweep.running = false;
   }
 });
 
@@ -1019,17 +1083,24 @@ const mapDiff = new ErrorMap($('map-diff'));
 function pin(which) {
   if (!state.result) return;
   const s = state.result.summary;
-  pins[which] = { summary: s, values: Float32Array.from(state.result.groupRelErr), tensor: `${s.tensor.name}:${s.tensor.shape.join('x')}` };
+  pins[which] = { summary: s, values: Float32Array.from(state.result.groupRelErr), tensor: tensorName(s) };
   showCompare();
 }
 $('pin-a').addEventListener('click', () => pin('a'));
 $('pin-b').addEventListener('click', () => pin('b'));
 
+/** The tensor a result belongs to, as the compare card names it. */
+function tensorName(summary) {
+  return `${summary.tensor.name} (${fmt.shape(summary.tensor.shape)})`;
+}
+
 function showCompare() {
   const { a, b } = pins;
+  const open = state.result ? tensorName(state.result.summary) : null;
   $('compare-hint').textContent = !a ? 'Pin the current result as A, change the recipe, then pin the new result as B.'
     : !b ? `A is ${a.summary.label}. Change the recipe, then pin the new result as B.`
-      : a.tensor !== b.tensor ? 'A and B were pinned on different tensors; pin both on one tensor to compare them.' : '';
+      : a.tensor !== b.tensor ? 'A and B were pinned on different tensors; pin both on one tensor to compare them.'
+        : a.tensor !== open ? `A and B are results on ${a.tensor}, not on the tensor open now; pin new ones to compare recipes on it.` : '';
   const ready = Boolean(a && b && a.tensor === b.tensor);
   $('compare-body').hidden = !ready;
   if (!ready) return;
@@ -1107,7 +1178,7 @@ async function computeModelSize() {
       pattern: $('size-pattern').value || '*',
       only2d: $('size-2d').checked,
       params: Number($('size-params').value) * 1e9,
-      recipe: readRecipe(),
+      recipe: await readyRecipe(),
     });
     const budget = Number($('size-budget').value) * 1e9;
     const scale = Math.max(budget, size.total_bytes) || 1;
@@ -1170,13 +1241,16 @@ for (const [id, [type, suffix, mime]] of Object.entries(EXPORTS)) {
 /** PNG and SVG buttons under each chart. */
 function chartExports() {
   const charts = [
-    ['error-map', 'error map', () => $('error-map'), () => pictureSvg($('map-caption').textContent, $('error-map'))],
+    ['error-map', 'error map', () => $('error-map'), () => pictureSvg(state.mapFile.title, $('error-map'), state.mapFile.legend)],
     ['column-profile', 'column profile', () => profile.chart?.ctx.canvas, () => seriesSvg('Input columns', profile.last.x, profile.last.series, { xLabel: 'input column', yLabel: 'max |w| and error RMS', logY: true })],
     ['histogram', 'group histogram', () => histogram.chart?.ctx.canvas, () => {
       const { histogram: h, grid } = histogram.last;
       const width = (h.hi - h.lo) / h.counts.length || 1;
       const x = Float64Array.from(h.counts, (_, i) => h.lo + (i + 0.5) * width);
-      return seriesSvg($('hist-caption').textContent, x, [{ label: 'count', values: Float64Array.from(h.counts), colour: '--series1', points: true }], { xLabel: 'weight value', yLabel: `count (${grid.length} grid levels)` });
+      // The caption's first part names the group; the rest describes the drawing on screen.
+      const title = $('hist-caption').textContent.split(';')[0];
+      const markReach = grid.length > COMB_ABOVE_LEVELS ? 0.08 : 1;
+      return seriesSvg(title, x, [{ label: 'count', values: Float64Array.from(h.counts), colour: '--series1', bars: true }], { xLabel: 'weight value', yLabel: `count (${grid.length} grid levels)`, marks: Array.from(grid), markReach });
     }],
     ['sweep-chart', 'sweep', () => sweepChart.chart?.ctx.canvas, () => seriesSvg('Sweep: bits per weight against error', sweepChart.last.x, sweepChart.last.series, { xLabel: 'bits per weight', yLabel: sweepChart.yLabel, logY: sweepChart.logY })],
     ['method-curve', 'method curve', () => methodCurve.chart?.ctx.canvas, () => seriesSvg('Output error across α', methodCurve.last.x, methodCurve.last.series, { xLabel: 'α', yLabel: 'output error' })],
@@ -1268,4 +1342,4 @@ async function start() {
   }
 }
 
-start();
+pageReady = start();

@@ -1,6 +1,7 @@
 // Charts drawn with uPlot (vendored from the npm registry). Colours come from the page's CSS
 // variables so light and dark themes both read well.
 /* global uPlot */
+import { logTick } from './format.js';
 
 function themed(name, fallback) {
   return getComputedStyle(document.documentElement).getPropertyValue(name).trim() || fallback;
@@ -20,19 +21,24 @@ function height(el) {
   return Number(el.dataset.height || 220);
 }
 
-function drawVertical(u, x, colour, width = 2) {
+/** A vertical line at `x` over the plot, or only its lowest `reach` (a fraction) of it. */
+function drawVertical(u, x, colour, width = 2, reach = 1) {
   const pos = u.valToPos(x, 'x', true);
   if (pos < u.bbox.left || pos > u.bbox.left + u.bbox.width) return;
   const { ctx } = u;
+  const bottom = u.bbox.top + u.bbox.height;
   ctx.save();
   ctx.strokeStyle = colour;
   ctx.lineWidth = width * devicePixelRatio;
   ctx.beginPath();
-  ctx.moveTo(pos, u.bbox.top);
-  ctx.lineTo(pos, u.bbox.top + u.bbox.height);
+  ctx.moveTo(pos, bottom - u.bbox.height * reach);
+  ctx.lineTo(pos, bottom);
   ctx.stroke();
   ctx.restore();
 }
+
+/** Counts on an axis: 950, 12k, 3M (a full 3,000,000 ran into the axis title). */
+const compactCount = new Intl.NumberFormat('en', { notation: 'compact', maximumFractionDigits: 1 });
 
 /**
  * Lines over a shared x axis, optional marked points, an optional vertical marker, and a click
@@ -66,8 +72,10 @@ export class SeriesChart {
       const base = { label: s.label, stroke: colour, width: s.points ? 0 : 1.25, scale: s.scale || 'y', spanGaps: Boolean(s.spanGaps) };
       return s.points ? { ...base, fill: colour, paths: () => null, points: { show: true, size: 7, stroke: colour, fill: colour } } : base;
     })];
-    const axes = [axis({ label: this.xLabel }), axis({ label: this.yLabel, size: 64 })];
-    if (this.rightLabel) axes.push(axis({ scale: 'right', side: 1, label: this.rightLabel, size: 64, grid: { show: false } }));
+    // uPlot's own labels keep three decimals, so a log axis of small errors read 0, 0, 0.
+    const values = this.logY ? { values: (u, splits) => splits.map(logTick) } : {};
+    const axes = [axis({ label: this.xLabel }), axis({ label: this.yLabel, size: 64, ...values })];
+    if (this.rightLabel) axes.push(axis({ scale: 'right', side: 1, label: this.rightLabel, size: 64, grid: { show: false }, ...values }));
     this.chart = new uPlot({
       width: Math.max(200, this.el.clientWidth),
       height: height(this.el),
@@ -91,6 +99,12 @@ export class SeriesChart {
     this.chart?.redraw(false, false);
   }
 }
+
+/**
+ * More grid levels than this (an 8-bit grid's 256, FP8's 253) would paint the histogram over,
+ * a line every two or three pixels: they are drawn as a comb along its bottom instead.
+ */
+export const COMB_ABOVE_LEVELS = 64;
 
 /** Histogram of one group's values with that group's grid levels drawn over it. */
 export class GroupHistogram {
@@ -125,8 +139,13 @@ export class GroupHistogram {
         { label: 'count', fill: themed('--series1-soft', '#3b6ea555'), stroke: themed('--series1', '#3b6ea5'), width: 1,
           paths: uPlot.paths.bars({ size: [0.95, Infinity], align: 0 }) },
       ],
-      axes: [axis({ label: 'weight value' }), axis({ label: 'count', size: 56 })],
-      hooks: { draw: [(u) => this.grid.forEach((level) => drawVertical(u, level, themed('--accent', '#e4572e'), 0.75))] },
+      axes: [axis({ label: 'weight value' }), axis({ label: 'count', size: 56, values: (u, splits) => splits.map((v) => compactCount.format(v)) })],
+      hooks: {
+        draw: [(u) => {
+          const reach = this.grid.length > COMB_ABOVE_LEVELS ? 0.08 : 1;
+          this.grid.forEach((level) => drawVertical(u, level, themed('--accent', '#e4572e'), 0.75, reach));
+        }],
+      },
     }, [x, Float64Array.from(counts)], this.el);
   }
 }

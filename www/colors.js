@@ -19,8 +19,11 @@ export function css(t) {
   return `rgb(${r} ${g} ${b})`;
 }
 
+/** The scale's stops as CSS colours, low to high. */
+export const STOP_COLOURS = STOPS.map((c) => `rgb(${c.join(', ')})`);
+
 /** CSS gradient of the whole scale, for legends. */
-export const GRADIENT = `linear-gradient(to right, ${STOPS.map((c) => `rgb(${c.join(' ')})`).join(', ')})`;
+export const GRADIENT = `linear-gradient(to right, ${STOP_COLOURS.join(', ')})`;
 
 /** A diverging scale for differences: blue (lower) through a light grey (no change) to red
  * (higher), for the A/B difference map. */

@@ -18,6 +18,13 @@ export function sci(x, digits = 3) {
   return abs >= 1e-2 && abs < 1e4 ? x.toPrecision(digits) : x.toExponential(digits - 1);
 }
 
+/** A tick of a log axis (1, 2 or 5 times a power of ten, mostly): 0.05, 300, 1e-4, 2e+5. */
+export function logTick(x) {
+  if (x === null || x === undefined) return '';
+  const abs = Math.abs(x);
+  return abs >= 1e-2 && abs < 1e4 ? String(Number(x.toPrecision(2))) : x.toExponential(0);
+}
+
 export function count(n) {
   return Number(n).toLocaleString('en-US');
 }

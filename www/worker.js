@@ -214,6 +214,9 @@ const handlers = {
     const { rows, failed } = calib ? tensor.sweepWith(plan.recipes, by, progress, calib) : tensor.sweep(plan.recipes, by, progress);
     return { value: { rows, skipped: plan.skipped + failed } };
   },
+  sweepFront({ rows, by }) {
+    return { value: core.sweepFront(rows, by) };
+  },
   histogram({ index, bins }) {
     if (!analysis) throw new Error('no analysis yet');
     return { value: analysis.groupHistogram(index, bins) };

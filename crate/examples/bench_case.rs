@@ -12,6 +12,11 @@
 //! and on some machines a sleeping thread starts late once woken (DEVELOPERS.md, "Where the time
 //! goes"), which a short run shows.
 //!
+//! With BENCH_START_AT (milliseconds since the Unix epoch) in the environment, the analyses start
+//! at that moment, after the file is open: two copies started together then analyse side by side
+//! from their first run, whatever their open times (`bench/page.mjs` measures that way what the
+//! machine's two cores give to two single-threaded runs at once).
+//!
 //! Usage: bench_case FILE [REPEATS] [THREADS] [PAUSE_MS]   (THREADS 1 = single-threaded, 0 = all cores)
 
 #[path = "../../tests/shared/counting_alloc.rs"]
@@ -41,6 +46,12 @@ fn main() -> Result<(), Box<dyn std::error::Error + Send + Sync>> {
     let listing = tensor::list(&file, ReadOptions::default())?;
     let tensor = tensor::read(&file, listing.choose(None)?)?;
     let open_ms = start.elapsed().as_secs_f64() * 1e3;
+    if let Ok(at) = std::env::var("BENCH_START_AT") {
+        let at = std::time::UNIX_EPOCH + std::time::Duration::from_millis(at.parse()?);
+        if let Ok(wait) = at.duration_since(std::time::SystemTime::now()) {
+            std::thread::sleep(wait);
+        }
+    }
     let recipe = Recipe::default();
     let mut times = Vec::with_capacity(repeats);
     let (mut peak, mut heap_peak) = (None, None);

@@ -85,7 +85,7 @@ impl IntGrid {
         let raw = if self.symmetric { larger(-lo, hi) / self.qmax } else { (hi - lo) / self.qmax };
         // A range wider than f32 (hi − lo overflows) has no scale, whatever the scale type.
         ScaleOverflow::check_reach(raw, raw)?;
-        let scale = if raw == 0.0 { 1.0 } else { self.scale_dtype.round(raw).ok_or(ScaleOverflow::of(raw))? };
+        let scale = if raw == 0.0 { 1.0 } else { self.scale_dtype.round_scale(raw).ok_or(ScaleOverflow::of(raw))? };
         let zero = if self.symmetric { 0.0 } else { smaller(larger((-lo / scale).round_ties_even(), 0.0), self.qmax) };
         // A scale rounded up (to a power of two, say) can put the grid's far end beyond f32.
         ScaleOverflow::check_reach(larger(larger(-self.qmin, self.qmax - zero), zero) * scale, scale)?;
@@ -210,21 +210,37 @@ mod tests {
         assert_eq!(out, [-14.0, 8.0]);
     }
 
+    /// A power-of-two scale still covers the group: int8 symmetric with an E8M0 scale for a
+    /// largest magnitude of 2.494 (2.494/127 ≈ 2^−5.67) gets 2^−5, so −2.494 comes back within
+    /// half a step; the nearest power, 2^−6, would have clipped it to −128 · 2^−6 = −2.
+    #[test]
+    fn power_of_two_scales_cover_the_group() {
+        let g = IntGrid::new(&Recipe { bits: 8, symmetric: true, scale_dtype: ScaleDType::E8M0, ..Recipe::default() });
+        let x = [-2.494f32, 0.7, 1.9];
+        let p = g.fit(&x).unwrap();
+        assert_eq!(p.scale, 2f32.powi(-5));
+        let mut out = [0f32; 3];
+        g.quantize_into(p, &x, &mut out);
+        for (v, q) in x.iter().zip(out) {
+            assert!((v - q).abs() <= p.scale / 2.0, "{v} came back as {q}");
+        }
+    }
+
     #[test]
     fn overflowing_scales_are_reported() {
         let g = IntGrid::new(&Recipe { bits: 2, ..Recipe::default() });
         assert!(g.fit(&[0.0, 1e6]).is_err());
         // f32::MAX is 3.40e38 = (2 − 2⁻²³)·2¹²⁷ (IEEE 754 binary32). A range wider than that
         // has no scale of any type (E8M0's clamp to 2¹²⁷ used to hide it); a symmetric 4-bit
-        // grid for 3e38 gets the E8M0 scale 2¹²⁵ (3e38/7 ≈ 2^125.0), whose code −8 stands for
-        // −2¹²⁸, beyond f32. Both are refused rather than reconstructed as infinities.
+        // grid for 3e38 gets the E8M0 scale 2¹²⁶ (3e38/7 ≈ 2^125.01, rounded up), whose code −8
+        // stands for −2¹²⁹, beyond f32. Both are refused rather than reconstructed as infinities.
         let e8m0 = IntGrid::new(&Recipe { scale_dtype: ScaleDType::E8M0, ..Recipe::default() });
         assert!(e8m0.fit(&[-3e38, 3e38]).is_err());
         let f32_scales = IntGrid::new(&Recipe { scale_dtype: ScaleDType::F32, ..Recipe::default() });
         assert!(f32_scales.fit(&[-3e38, 3e38]).is_err());
         let e8m0_sym = IntGrid::new(&Recipe { scale_dtype: ScaleDType::E8M0, symmetric: true, ..Recipe::default() });
         let beyond = e8m0_sym.fit(&[0.0, 3e38]).unwrap_err();
-        assert_eq!(beyond, ScaleOverflow { scale: 2f32.powi(125), beyond_f32: true });
+        assert_eq!(beyond, ScaleOverflow { scale: 2f32.powi(126), beyond_f32: true });
         let message = beyond.at(ScaleDType::E8M0, 4, 256).to_string();
         assert!(message.contains("row 4, column 256") && message.contains("no scale type helps"), "{message}");
         assert!(!g.fit(&[0.0, 1e6]).unwrap_err().beyond_f32, "a 2-bit f16 scale of 3.3e5 is too large for f16 alone");

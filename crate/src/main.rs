@@ -402,7 +402,7 @@ Per-tensor error is only a proxy: check any recipe on the model's own task befor
                     }
                     None => report_doc.summary(),
                 };
-                write_all_or_nothing(&outputs)?;
+                write_all_or_nothing(&outputs, &inputs(&file, &calib))?;
                 if !printed.is_empty() {
                     println!("{printed}");
                 }
@@ -411,7 +411,7 @@ Per-tensor error is only a proxy: check any recipe on the model's own task befor
             Command::Unpack { file, out } => {
                 let source = std::fs::File::open(&file).map_err(|e| Failure(format!("{}: cannot open: {e}", file.display())))?;
                 let (shape, values) = bitloupe::packed::unpack(&source).map_err(Failure::at(&file))?;
-                write_all_or_nothing(&[(out, npy::write_f32(values.as_slice().expect("row-major"), &shape))])
+                write_all_or_nothing(&[(out, npy::write_f32(values.as_slice().expect("row-major"), &shape))], &[&file])
             }
             Command::Sweep { file, tensor, read, format, bits, group, method, scale_dtype, smooth, keep_frac, pareto_by, calib, csv, json } => {
                 let spec = SweepSpec {
@@ -464,7 +464,7 @@ Per-tensor error is only a proxy: check any recipe on the model's own task befor
                     print!("{}", sweep::to_csv(&rows));
                 }
                 eprintln!("bitloupe: {} recipes run, {} on the Pareto front, {} combinations skipped (meaningless, or not possible on this tensor)", rows.len(), rows.iter().filter(|r| r.pareto).count(), skipped + failed);
-                write_all_or_nothing(&outputs)
+                write_all_or_nothing(&outputs, &inputs(&file, &calib))
             }
             Command::Demo { out, activations } => {
                 let as_npy = |t: &Tensor| npy::write_f32(t.values.as_slice().expect("row-major"), &t.shape);
@@ -472,7 +472,7 @@ Per-tensor error is only a proxy: check any recipe on the model's own task befor
                 if let Some(path) = activations {
                     outputs.push((path, as_npy(&bitloupe::demo::activations())));
                 }
-                write_all_or_nothing(&outputs)
+                write_all_or_nothing(&outputs, &[])
             }
         };
         done.map(|()| ExitCode::SUCCESS)
@@ -518,7 +518,7 @@ Per-tensor error is only a proxy: check any recipe on the model's own task befor
                 None => {}
             }
         }
-        write_all_or_nothing(&outputs)?;
+        write_all_or_nothing(&outputs, &args.files.iter().map(PathBuf::as_path).collect::<Vec<_>>())?;
         print!("{to_stdout}");
         eprint!("{}", report.summary());
         Ok(if report.totals.failed_tensors > 0 { ExitCode::from(SOME_TENSOR_FAILED) } else { ExitCode::SUCCESS })
@@ -634,6 +634,11 @@ Per-tensor error is only a proxy: check any recipe on the model's own task befor
         out
     }
 
+    /// The files a command reads: its tensor file and calibration file.
+    fn inputs<'a>(file: &'a Path, calib: &'a CalibArgs) -> Vec<&'a Path> {
+        std::iter::once(file).chain(calib.calib.as_deref()).collect()
+    }
+
     /// Write every output to a temporary file beside its target, then rename them all, so a
     /// failure never leaves a partial output behind.
     ///
@@ -646,7 +651,10 @@ Per-tensor error is only a proxy: check any recipe on the model's own task befor
     /// content and the link stays. A link into /dev or /proc (/dev/stdout) is written in place,
     /// appending, like a device: it stands for a descriptor the shell opened, not for a file of
     /// the user's to replace.
-    fn write_all_or_nothing(outputs: &[(PathBuf, Vec<u8>)]) -> Result<(), Failure> {
+    ///
+    /// An output that is one of the command's `inputs` (by another name too) is refused: the
+    /// rename would replace the user's source with the result.
+    fn write_all_or_nothing(outputs: &[(PathBuf, Vec<u8>)], inputs: &[&Path]) -> Result<(), Failure> {
         let outputs: Vec<(PathBuf, &[u8], Option<Target>)> = outputs
             .iter()
             .map(|(path, bytes)| match link_target(path) {
@@ -659,6 +667,10 @@ Per-tensor error is only a proxy: check any recipe on the model's own task befor
         for (i, (path, _, _)) in outputs.iter().enumerate() {
             if std::fs::metadata(path).is_ok_and(|m| m.is_dir()) {
                 return Err(Failure(format!("{}: is a directory; give a file name", path.display())));
+            }
+            let same_file = |input: &&&Path| matches!((std::fs::canonicalize(input), std::fs::canonicalize(path)), (Ok(a), Ok(b)) if a == b);
+            if let Some(input) = inputs.iter().find(same_file) {
+                return Err(Failure(format!("{}: is the input {}; give the output another name", path.display(), input.display())));
             }
             let same = |other: &PathBuf| std::path::absolute(other).ok() == std::path::absolute(path).ok();
             if outputs[..i].iter().any(|(earlier, _, _)| same(earlier)) {

@@ -116,6 +116,17 @@ impl ScaleDType {
         }
     }
 
+    /// A group's scale in this type: [`ScaleDType::round`], except that E8M0's power of two is
+    /// rounded up. To the nearest power of two the grid could shrink by up to √2 and clip the
+    /// group's largest values (by up to 29 %); rounded up it still covers the group's range,
+    /// as fixed-point formats give the largest value enough integer bits (common practice).
+    pub fn round_scale(self, scale: f32) -> Option<f32> {
+        match self {
+            ScaleDType::E8M0 => Some(2f64.powi((f64::from(scale).log2().ceil() as i32).clamp(-127, 127)) as f32),
+            _ => self.round(scale),
+        }
+    }
+
     /// Round a positive finite scale to this type (round to nearest, ties to even). A scale that
     /// rounds to zero becomes the type's smallest positive normal; one that overflows is `None`.
     pub fn round(self, scale: f32) -> Option<f32> {
@@ -434,6 +445,13 @@ mod tests {
         assert_eq!(ScaleDType::F16.round(2f32.powi(-20)), Some(2f32.powi(-20)));
         assert_eq!(ScaleDType::BF16.round(1.0 + 2f32.powi(-8)), Some(1.0));
         assert_eq!(ScaleDType::F32.round(0.3), Some(0.3));
+        // A scale's power of two is rounded up, so the grid covers the range it was fitted to;
+        // a stored zero point's goes to the nearest. 2^0.4 ≈ 1.32, 0.3 ≈ 2^−1.74.
+        let scale = 2f32.powf(0.4);
+        assert_eq!((ScaleDType::E8M0.round_scale(scale), ScaleDType::E8M0.round(scale)), (Some(2.0), Some(1.0)));
+        assert_eq!((ScaleDType::E8M0.round_scale(0.3), ScaleDType::E8M0.round(0.3)), (Some(0.5), Some(0.25)));
+        assert_eq!(ScaleDType::E8M0.round_scale(0.25), Some(0.25));
+        assert_eq!(ScaleDType::F16.round_scale(0.3), ScaleDType::F16.round(0.3));
     }
 
     #[test]

@@ -175,6 +175,15 @@ pub fn recipe_defaults() -> Result<JsValue, JsError> {
     })
 }
 
+/// A finished sweep's `rows` with the front marked again against `by` ("sqnr", "mse" or
+/// "output"): the page's error axis changed, and the figures are all in the rows already.
+#[wasm_bindgen(js_name = sweepFront)]
+pub fn sweep_front(rows: JsValue, by: &str) -> Result<JsValue, JsError> {
+    let mut rows: Vec<crate::sweep::SweepRow> = from_json_value(&rows, "sweep rows")?;
+    crate::sweep::mark_front(&mut rows, by.parse().map_err(js_error)?);
+    to_js(&rows)
+}
+
 /// The recipes of a sweep spec `{formats, bits, groups, methods, scale_dtypes}`:
 /// `{recipes, skipped}`.
 #[wasm_bindgen(js_name = sweepRecipes)]

@@ -5,7 +5,7 @@ import { pathToFileURL } from 'node:url';
 import { openSync, readSync, writeSync, ftruncateSync, closeSync, mkdtempSync } from 'node:fs';
 import os from 'node:os';
 import path from 'node:path';
-import { launch, openPage, fixture, shot, dropFile, waitForAnalysis, sameOrigin, pageState, reportFigures, assertNothingLost, npyF32 } from './harness.mjs';
+import { launch, openPage, fixture, shot, dropFile, waitForAnalysis, sameOrigin, pageState, reportFigures, assertNothingLost, npyF32, URL_UNDER_TEST } from './harness.mjs';
 
 let browser;
 before(async () => { browser = await launch(); });
@@ -34,6 +34,34 @@ test('the empty page invites a first step and loads the demo tensor', async () =
   await shot(page, '02-demo');
   assert.deepEqual(errors, []);
   assert.deepEqual(requests.filter((u) => !sameOrigin(u)), [], 'no request left the page origin');
+  await context.close();
+});
+
+test('a click while the page is still starting waits for its controls', async () => {
+  const context = await browser.newContext({ viewport: { width: 1400, height: 1000 } });
+  const page = await context.newPage();
+  // The compute worker answers late, as on a slow machine: the page's buttons work before its
+  // recipe controls are built from the core's defaults.
+  await page.addInitScript(() => {
+    const Real = window.Worker;
+    window.Worker = class extends Real {
+      constructor(...args) {
+        super(...args);
+        window.workerMade = true;
+      }
+
+      postMessage(...args) {
+        setTimeout(() => super.postMessage(...args), 800);
+      }
+    };
+  });
+  await page.goto(URL_UNDER_TEST);
+  await page.waitForFunction(() => window.workerMade === true);
+  assert.notEqual(await page.getAttribute('body', 'data-ready'), 'true');
+  await page.click('#load-demo');
+  const status = await waitForAnalysis(page);
+  assert.match(status, /int4 asym g128 f16 on demo/);
+  assert.equal(await page.isVisible('#recipe-message'), false);
   await context.close();
 });
 
@@ -77,6 +105,16 @@ test('a count of kept columns that is not a whole number of at least 1 is refuse
   await waitForAnalysis(page, kept);
   assert.match(await page.textContent('#status'), /keep 3 col/);
   assert.equal(await page.isHidden('#recipe-message'), true);
+  // A share of weights the core refuses: the field comes back to the last share used.
+  const three = await page.textContent('#status');
+  await page.selectOption('#keep', 'frac');
+  await waitForAnalysis(page, three);
+  const share = await page.inputValue('#keep-frac');
+  await page.fill('#keep-frac', '50');
+  await page.press('#keep-frac', 'Enter');
+  await page.waitForFunction(() => !document.getElementById('recipe-message').hidden);
+  assert.equal(await page.inputValue('#keep-frac'), share);
+  assert.match(await page.textContent('#status'), /refused; the last one that worked is shown/);
   await context.close();
 });
 
@@ -501,6 +539,23 @@ test('a sweep fills the chart, marks the front, and a row loads its recipe', asy
   assert.ok(front >= 2 && front <= run);
   assert.equal(await page.locator('#sweep-rows tr').count(), front);
   await shot(page, '17-sweep');
+  // Another error axis marks the front again from the figures the rows hold: no run.
+  const sweepsRun = () => page.evaluate(() => window.bitloupeTimings.filter((t) => t.what === 'sweep-compute').length);
+  const ran = await sweepsRun();
+  await page.selectOption('#sweep-by', 'mse');
+  // Long enough for this sweep to have run again, had the change started one.
+  await page.waitForTimeout(1500);
+  assert.equal(await sweepsRun(), ran);
+  assert.match(await page.textContent('#sweep-status'), new RegExp(`^${run} recipes run, \\d+ on the front`));
+  assert.equal(await page.locator('#sweep-rows tr').count(), Number((await page.textContent('#sweep-status')).match(/(\d+) on the front/)[1]));
+  await shot(page, '17-sweep-mse');
+  // The log axis's labels (uPlot's own read 0, 0, 0 below a thousandth).
+  const ticks = await page.evaluate(async () => {
+    const { logTick } = await import('./format.js');
+    return [1e-4, 2e-5, 0.05, 300, 2e5].map(logTick);
+  });
+  assert.deepEqual(ticks, ['1e-4', '2e-5', '0.05', '300', '2e+5']);
+  await page.selectOption('#sweep-by', 'sqnr');
   // A click on the scatter loads the recipe under the cursor.
   const plot = await page.locator('#sweep-chart .u-over').boundingBox();
   const beforeClick = await page.textContent('#status');
@@ -595,6 +650,14 @@ test('two pinned recipes compare side by side with their difference', async () =
   assert.ok(rows.some((r) => r.startsWith('bits per weight4.15633.1484−1.0078')), rows.join(' | '));
   assert.equal(await page.isVisible('#diff-figure'), true);
   await shot(page, '18-compare');
+  // Another tensor opened: the pins stay, said to belong to the tensor they were taken on.
+  assert.equal(await page.textContent('#compare-hint'), '');
+  const shown = await page.textContent('#status');
+  await page.click('#paste-box summary');
+  await page.fill('#paste', '0.5 -1 2\n0.25 3 -0.5\n');
+  await page.click('#use-paste');
+  await waitForAnalysis(page, shown);
+  assert.match(await page.textContent('#compare-hint'), /^A and B are results on demo.*\(1024 × 4096\), not on the tensor open now/);
   await context.close();
 });
 

@@ -219,7 +219,7 @@ impl Grid {
             Grid::Int(g) => g.fit_range(lo, hi),
             Grid::Scaled { format, scale_dtype } => {
                 let raw = absmax / Self::unit_max(format);
-                let scale = if raw == 0.0 { 1.0 } else { scale_dtype.round(raw).ok_or(ScaleOverflow::of(raw))? };
+                let scale = if raw == 0.0 { 1.0 } else { scale_dtype.round_scale(raw).ok_or(ScaleOverflow::of(raw))? };
                 // A scale rounded up (to bf16's eight bits, say) can carry the grid's end past f32.
                 ScaleOverflow::check_reach(Self::unit_max(format) * scale, scale)?;
                 Ok(GroupParams { scale, zero: 0.0 })
