@@ -1161,7 +1161,7 @@ $('size-files').addEventListener('change', (e) => {
 $('size-run').addEventListener('click', () => computeModelSize());
 
 async function computeModelSize() {
-  const gb = (bytes) => `${(bytes / 1e9).toFixed(2)} GB`;
+  const gb = fmt.decimalBytes;
   // The parameter count stands in for shards only when none are open.
   const fields = [['size-budget', 'memory budget'], ...(shardFiles.length ? [] : [['size-params', 'parameter count']])];
   for (const [id, what] of fields) {
@@ -1176,7 +1176,7 @@ async function computeModelSize() {
     const size = await bridge.request('modelSize', {
       files: shardFiles,
       pattern: $('size-pattern').value || '*',
-      only2d: $('size-2d').checked,
+      include1d: $('size-1d').checked,
       params: Number($('size-params').value) * 1e9,
       recipe: await readyRecipe(),
     });

@@ -11,6 +11,14 @@ export function bytes(n) {
   return unit === 0 ? `${value} bytes` : `${value.toFixed(value < 10 ? 2 : 1)} ${units[unit]}`;
 }
 
+/** Bytes in decimal units, as model sizes and memory budgets are quoted: 512 bytes, 3.20 kB,
+ * 48.0 MB, 3.64 GB. */
+export function decimalBytes(n) {
+  const value = Number(n);
+  const [unit, size] = [['GB', 1e9], ['MB', 1e6], ['kB', 1e3]].find(([, s]) => value >= s) ?? ['bytes', 1];
+  return size === 1 ? `${value} bytes` : `${(value / size).toFixed(value / size < 100 ? 2 : 1)} ${unit}`;
+}
+
 export function sci(x, digits = 3) {
   if (x === null || x === undefined || Number.isNaN(x)) return '–';
   if (x === 0) return '0';

@@ -163,8 +163,8 @@ const handlers = {
     core.warmUp();
     return { value: null };
   },
-  modelSize({ files, pattern, only2d, params, recipe }) {
-    return { value: core.modelSize(files, pattern, only2d, params, recipe) };
+  modelSize({ files, pattern, include1d, params, recipe }) {
+    return { value: core.modelSize(files, pattern, include1d, params, recipe) };
   },
   recipeFromLink({ text }) {
     return { value: core.recipeFromLink(text) };

@@ -174,7 +174,7 @@ pub struct Progress<'a> {
 const NOT_MATCHING: &str = "name does not match the pattern";
 
 /// Why `entry` is left out, or `None` when the selection takes it.
-fn skip_reason(entry: &TensorEntry, selection: &Selection) -> Option<String> {
+pub(crate) fn skip_reason(entry: &TensorEntry, selection: &Selection) -> Option<String> {
     if !matches(&selection.pattern, &entry.name) {
         return Some(NOT_MATCHING.into());
     }

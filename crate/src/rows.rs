@@ -120,6 +120,20 @@ pub fn map_chunks_mut<T: Send, R: Send>(
     progress: &mut dyn FnMut(usize, usize),
     work: impl Fn(usize, &mut [T]) -> R + Sync + Send,
 ) -> Vec<R> {
+    map_chunks_mut_advancing(out, cols, chunk_rows, progress, |first, chunk, _| work(first, chunk))
+}
+
+/// [`map_chunks_mut`] for work whose chunks take long (GPTQ's 256 rows, seconds on a wide layer):
+/// `work(first_row, rows_of_out, advance)` may call `advance(rows)` as parts of its chunk get
+/// done, so that progress moves within a chunk; what a chunk has not reported when it ends is
+/// added then, and what it over-reports is ignored.
+pub fn map_chunks_mut_advancing<T: Send, R: Send>(
+    out: &mut [T],
+    cols: usize,
+    chunk_rows: usize,
+    progress: &mut dyn FnMut(usize, usize),
+    work: impl Fn(usize, &mut [T], &dyn Fn(usize)) -> R + Sync + Send,
+) -> Vec<R> {
     if out.is_empty() || cols == 0 {
         return Vec::new();
     }
@@ -134,8 +148,14 @@ pub fn map_chunks_mut<T: Send, R: Send>(
             claim_in_order(blocks.len(), |i| {
                 let block = lock(&blocks[i]).take().expect("each block is claimed once");
                 let block_rows = block.len() / cols;
-                let result = work(i * chunk_rows, block);
-                rows_done.fetch_add(block_rows, Ordering::Relaxed);
+                let advanced = std::cell::Cell::new(0);
+                let advance = |n: usize| {
+                    let n = n.min(block_rows - advanced.get());
+                    advanced.set(advanced.get() + n);
+                    rows_done.fetch_add(n, Ordering::Relaxed);
+                };
+                let result = work(i * chunk_rows, block, &advance);
+                rows_done.fetch_add(block_rows - advanced.get(), Ordering::Relaxed);
                 result
             })
         };
@@ -172,9 +192,16 @@ pub fn map_chunks_mut<T: Send, R: Send>(
     #[cfg(all(target_arch = "wasm32", not(target_feature = "atomics")))]
     {
         let mut results = Vec::with_capacity(rows.div_ceil(chunk_rows));
+        let progress = std::cell::RefCell::new(progress);
         for (i, block) in out.chunks_mut(chunk).enumerate() {
-            results.push(work(i * chunk_rows, block));
-            progress((i * chunk_rows + block.len() / cols).min(rows), rows);
+            let (first, block_rows) = (i * chunk_rows, block.len() / cols);
+            let advanced = std::cell::Cell::new(0);
+            let advance = |n: usize| {
+                advanced.set((advanced.get() + n).min(block_rows));
+                (progress.borrow_mut())(first + advanced.get(), rows);
+            };
+            results.push(work(first, block, &advance));
+            (progress.borrow_mut())(first + block_rows, rows);
         }
         results
     }
@@ -325,6 +352,23 @@ mod tests {
             }, |all: &mut Vec<usize>, i| all.push(i))
         });
         assert_eq!(order, (0..block_count(rows)).collect::<Vec<_>>());
+    }
+
+    /// A long chunk's own reports move the progress within it; a report past its rows is cut to
+    /// them, and what it left unreported is added when it ends.
+    #[test]
+    fn a_long_chunk_reports_progress_within_itself() {
+        let mut out = vec![0u8; 10];
+        let mut reported = Vec::new();
+        map_chunks_mut_advancing(&mut out, 1, 10, &mut |done, all| reported.push((done, all)), |_, _, advance| {
+            advance(4);
+            std::thread::sleep(PROGRESS_EVERY * 3);
+            advance(100);
+            std::thread::sleep(PROGRESS_EVERY * 3);
+        });
+        assert!(reported.contains(&(4, 10)), "{reported:?}");
+        assert_eq!(reported.last(), Some(&(10, 10)));
+        assert!(reported.iter().all(|&(done, _)| done <= 10), "{reported:?}");
     }
 
     /// A block that panics reaches the caller as that panic; the caller does not wait forever

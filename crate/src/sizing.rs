@@ -3,6 +3,7 @@
 //! 2-D view); the others stay in their stored type. Activations, caches and runtime overhead are
 //! not counted.
 
+use crate::checkpoint::{skip_reason, Selection};
 use crate::cost::BitCost;
 use crate::recipe::Recipe;
 use crate::tensor::TensorEntry;
@@ -68,8 +69,8 @@ pub fn matches(pattern: &str, name: &str) -> bool {
 }
 
 /// The size of the model whose tensors are `entries` when the recipe is applied to the tensors
-/// whose names match `pattern` (and that are 2-D, when `only_2d`).
-pub fn model_size(entries: &[TensorEntry], pattern: &str, only_2d: bool, recipe: &Recipe) -> ModelSize {
+/// `selection` takes: the ones `bitloupe report` quantizes with it (its memory limit aside).
+pub fn model_size(entries: &[TensorEntry], selection: &Selection, recipe: &Recipe) -> ModelSize {
     let mut size = ModelSize {
         quantized_tensors: 0,
         quantized_params: 0,
@@ -82,7 +83,7 @@ pub fn model_size(entries: &[TensorEntry], pattern: &str, only_2d: bool, recipe:
     };
     for e in entries {
         let count: u64 = e.shape.iter().map(|&d| d as u64).product();
-        let selected = matches(pattern, &e.name) && (!only_2d || e.shape.len() == 2) && e.element.is_some() && count > 0;
+        let selected = skip_reason(e, selection).is_none();
         match (selected, e.shape.split_first()) {
             // The 2-D view of `tensor`, in 64-bit arithmetic: no tensor is loaded here.
             (true, Some((&rows, rest))) => {
@@ -140,7 +141,8 @@ mod tests {
             entry("block.0.norm.weight", &[4096], DType::F32),
             entry("embed.weight", &[1000, 4096], DType::BF16),
         ];
-        let size = model_size(&entries, "block.*.weight", true, &Recipe::default());
+        let selection = Selection { pattern: "block.*.weight".into(), include_1d: false, available_memory: None };
+        let size = model_size(&entries, &selection, &Recipe::default());
         assert_eq!((size.quantized_tensors, size.other_tensors), (2, 2));
         // int4 asym g128 f16: 4.15625 bits per weight exactly for 4096 columns.
         assert_eq!(size.quantized_bytes, 2 * 4096 * 4096 * 415625 / 800000);

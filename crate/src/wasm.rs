@@ -199,10 +199,11 @@ pub fn sweep_recipes(spec: JsValue) -> Result<JsValue, JsError> {
 }
 
 /// The size of a model under `recipe`: from the headers of the `.safetensors` shards in `files`
-/// (tensors whose names match `pattern`, and 2-D when `only_2d`), or, with no files, from
-/// `params` weights costed as 4096-column rows of 16-bit sources.
+/// (the tensors the command's checkpoint report would quantize: names matching `pattern`,
+/// floating-point, 1-D ones only with `include_1d`), or, with no files, from `params` weights
+/// costed as 4096-column rows of 16-bit sources.
 #[wasm_bindgen(js_name = modelSize)]
-pub fn model_size(files: js_sys::Array, pattern: &str, only_2d: bool, params: f64, recipe: JsValue) -> Result<JsValue, JsError> {
+pub fn model_size(files: js_sys::Array, pattern: &str, include_1d: bool, params: f64, recipe: JsValue) -> Result<JsValue, JsError> {
     let recipe = parse_recipe(recipe)?;
     recipe.validate().map_err(js_error)?;
     let mut entries = Vec::new();
@@ -214,7 +215,8 @@ pub fn model_size(files: js_sys::Array, pattern: &str, only_2d: bool, params: f6
     if entries.is_empty() {
         return to_js(&crate::sizing::model_size_from_count(params.max(0.0) as u64, &recipe));
     }
-    to_js(&crate::sizing::model_size(&entries, pattern, only_2d, &recipe))
+    let selection = crate::checkpoint::Selection { pattern: pattern.into(), include_1d, available_memory: None };
+    to_js(&crate::sizing::model_size(&entries, &selection, &recipe))
 }
 
 /// The recipe a page link holds (its JSON text, missing fields at their defaults), checked as

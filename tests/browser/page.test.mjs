@@ -627,11 +627,16 @@ test('the model size sums the chosen tensors of the dropped shards under the rec
   assert.match(await page.textContent('#size-figures'), /total 3\.64 GB, which fits in 8\.00 GB/);
   await page.setInputFiles('#size-files', [{ name: 'multi.safetensors', mimeType: 'application/octet-stream', buffer: fixture('multi.safetensors') }]);
   await page.waitForFunction(() => /1 shard:/.test(document.getElementById('size-figures').textContent));
-  // Six 2-D tensors of eight; the 1-D and 3-D ones stay as stored.
-  assert.match(await page.textContent('#size-figures'), /6 tensors quantized .* 2 tensors kept as stored/);
-  await page.fill('#size-pattern', 'block.0.*');
+  // The tensors `bitloupe report` quantizes on this file: three floating-point matrices of
+  // eight; the integer ones and the 1-D norm scale stay as stored (tests/cli.rs).
+  assert.match(await page.textContent('#size-figures'), /3 tensors quantized \(78 weights, 216 bytes → .*\), 5 tensors kept as stored \(124 bytes\)/);
+  await page.fill('#size-pattern', '*attn*');
   await page.click('#size-run');
-  await page.waitForFunction(() => /3 tensors quantized/.test(document.getElementById('size-figures').textContent));
+  await page.waitForFunction(() => /2 tensors quantized/.test(document.getElementById('size-figures').textContent));
+  await page.check('#size-1d');
+  await page.fill('#size-pattern', '*');
+  await page.click('#size-run');
+  await page.waitForFunction(() => /4 tensors quantized/.test(document.getElementById('size-figures').textContent));
   await context.close();
 });
 

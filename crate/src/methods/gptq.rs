@@ -190,7 +190,7 @@ pub fn quantize(
     // Rows evolve independently once U is known, so chunks of rows are swept in parallel; each
     // chunk is a fresh copy, so the matrix products see the same shapes and alignment however
     // many threads there are, and the result is the same bit for bit.
-    let chunks = rows::map_chunks_mut(out.as_slice_mut().expect("fresh array"), cols, CHUNK_ROWS, progress, |first, out_chunk| {
+    let chunks = rows::map_chunks_mut_advancing(out.as_slice_mut().expect("fresh array"), cols, CHUNK_ROWS, progress, |first, out_chunk, advance| {
         let chunk_rows = out_chunk.len() / cols;
         let mut work = work.slice(s![first..first + chunk_rows, ..]).to_owned();
         let mut chunk_params = if dynamic_groups { vec![GroupParams { scale: 1.0, zero: 0.0 }; chunk_rows * per_row] } else { Vec::new() };
@@ -240,6 +240,8 @@ pub fn quantize(
             if i2 < cols {
                 linalg::subtract_product(work.slice_mut(s![.., i2..]), err1.view(), u.slice(s![i1..i2, i2..]));
             }
+            // The chunk's rows count as done in proportion to the columns swept.
+            advance(chunk_rows * i2 / cols - chunk_rows * i1 / cols);
             i1 = i2;
         }
         Ok::<_, Error>((row_losses, chunk_params))

@@ -152,7 +152,9 @@ impl HeaderFields {
             c if c.starts_with('O') => return Err(unsupported("object arrays hold Python objects, not numbers")),
             c if c.starts_with('U') || c.starts_with('S') => return Err(unsupported("text arrays hold no numbers")),
             c if c.starts_with('c') => return Err(unsupported("complex numbers cannot be quantized as real weights")),
-            _ => return Err(unsupported(&format!("supported types are {}", DType::SUPPORTED))),
+            // NumPy's codes count bytes: i8 is int64, not int8.
+            "i8" | "u8" => return Err(unsupported("64-bit integers (int64, uint64) are not read; convert the array to float32 first")),
+            _ => return Err(unsupported("the NumPy types read are f2, f4, f8 (float16, float32, float64) and i1, u1, i2, u2, i4, u4 (int8 to uint32)")),
         };
         Ok(Some(Element { dtype, big_endian }))
     }
@@ -360,6 +362,17 @@ mod tests {
     }
 
     /// A header that lies about the size: its shape needs more bytes than the file holds.
+    /// NumPy's type codes count bytes (the NumPy manual, "Data type objects"): '<i8' is int64,
+    /// and the message must not read as if int8 were refused.
+    #[test]
+    fn sixty_four_bit_integers_are_named_as_such() {
+        let header = |descr: &str| npy_v2(&format!("{{'descr': '{descr}', 'fortran_order': False, 'shape': (2, 2), }}"));
+        let message = read_header(&header("<i8")[..], ReadOptions::default()).unwrap_err().to_string();
+        assert!(message.contains("64-bit integers (int64, uint64)"), "{message}");
+        let message = read_header(&header("<m8")[..], ReadOptions::default()).unwrap_err().to_string();
+        assert!(message.contains("i1, u1, i2, u2, i4, u4 (int8 to uint32)"), "{message}");
+    }
+
     #[test]
     fn shapes_larger_than_the_data_are_refused() {
         let file = npy_v2("{'descr': '<f4', 'fortran_order': False, 'shape': (1000, 1000), }");
