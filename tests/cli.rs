@@ -86,6 +86,12 @@ fn text_matrices_and_the_demo_weight_are_accepted() {
     let out = bitloupe(&["demo", "--out", path_str(&demo)]);
     assert!(out.status.success(), "{}", text(&out.stderr));
     assert_eq!(std::fs::metadata(&demo).unwrap().len(), 128 + 4 * 1024 * 4096);
+    // 4 + (16 + 4)/128 = 4.15625 bits per weight, a tie at four places: shown as the page
+    // shows it (JavaScript's toFixed rounds a tie up), in the summary and the Markdown alike.
+    let markdown = dir.path().join("demo.md");
+    let out = bitloupe(&["quantize", path_str(&demo), "--markdown", path_str(&markdown)]);
+    assert!(text(&out.stdout).contains("4.1563 bits/weight"), "{}", text(&out.stdout));
+    assert!(std::fs::read_to_string(&markdown).unwrap().contains("| bits per weight | 4.1563 |"));
 }
 
 /// A `.safetensors` file: the header's length (u64 little-endian), the header, then `data`

@@ -1089,6 +1089,9 @@ function pin(which) {
 $('pin-a').addEventListener('click', () => pin('a'));
 $('pin-b').addEventListener('click', () => pin('b'));
 
+/** A difference of two percentages, in percentage points (3.60 % − 2.10 % is 1.50 pp, not %). */
+const percentagePoints = (x) => `${(100 * x).toPrecision(3)} pp`;
+
 /** The tensor a result belongs to, as the compare card names it. */
 function tensorName(summary) {
   return `${summary.tensor.name} (${fmt.shape(summary.tensor.shape)})`;
@@ -1110,19 +1113,19 @@ function showCompare() {
     ['bits per weight', (s) => s.bits_per_weight, (v) => v.toFixed(4)],
     ['size', (s) => s.bytes, (v) => fmt.bytes(Math.abs(v)), true],
     ['SQNR (dB)', (s) => s.sqnr_db, (v) => v.toFixed(2)],
-    ['relative error', (s) => s.rel_fro_err, (v) => fmt.percent(v)],
+    ['relative error', (s) => s.rel_fro_err, (v) => fmt.percent(v), false, percentagePoints],
     ['max error', (s) => s.max_abs_err, (v) => fmt.sci(v)],
-    ['output error', (s) => s.output_rel_err, (v) => fmt.percent(v)],
+    ['output error', (s) => s.output_rel_err, (v) => fmt.percent(v), false, percentagePoints],
   ];
   const body = $('compare-rows');
   body.replaceChildren();
-  for (const [name, get, show, unsigned] of figures) {
+  for (const [name, get, show, unsigned, showDiff = show] of figures) {
     const [va, vb] = [get(a.summary), get(b.summary)];
     if (va === null || vb === null || va === undefined || vb === undefined) continue;
     const diff = vb - va;
     const tr = document.createElement('tr');
     const sign = diff > 0 ? '+' : diff < 0 ? '−' : '';
-    for (const text of [name, show(va), show(vb), `${sign}${unsigned ? show(diff) : show(Math.abs(diff))}`]) {
+    for (const text of [name, show(va), show(vb), `${sign}${unsigned ? showDiff(diff) : showDiff(Math.abs(diff))}`]) {
       const td = document.createElement('td');
       td.textContent = text;
       tr.append(td);
@@ -1263,6 +1266,10 @@ function chartExports() {
   for (const [id, name, canvas, svg] of charts) {
     const row = document.createElement('div');
     row.className = 'chart-files';
+    // Said beside the buttons, where the eye is, not in the export card far below.
+    const note = document.createElement('span');
+    note.className = 'hint';
+    note.setAttribute('role', 'status');
     for (const kind of ['PNG', 'SVG']) {
       const button = document.createElement('button');
       button.type = 'button';
@@ -1273,15 +1280,16 @@ function chartExports() {
         const file = `${baseName()}.${id}.${kind.toLowerCase()}`;
         const source = canvas();
         if (!source || source.closest('[hidden]')) {
-          $('export-message').textContent = `Nothing to save yet: the ${name} has not been drawn.`;
+          note.textContent = `Nothing to save yet: the ${name} has not been drawn.`;
           return;
         }
-        $('export-message').textContent = '';
+        note.textContent = '';
         if (kind === 'SVG') download(file, svg(), 'image/svg+xml');
         else source.toBlob((blob) => blob && download(file, blob, 'image/png'));
       });
       row.append(button);
     }
+    row.prepend(note);
     $(id).after(row);
   }
 }

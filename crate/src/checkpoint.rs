@@ -451,8 +451,9 @@ impl CheckpointReport {
         if let (Some(bpw), Some(rel), Some(mse)) = (t.bits_per_weight, t.rel_fro_err, t.mse) {
             let sqnr = t.sqnr_db.map_or("exact".to_string(), |db| format!("{db:.2} dB"));
             out.push_str(&format!(
-                "{} weights at {bpw:.4} bits per weight; whole-model relative error {rel:.4e} (SQNR {sqnr}), MSE {mse:.4e}\n",
-                t.params
+                "{} weights at {} bits per weight; whole-model relative error {rel:.4e} (SQNR {sqnr}), MSE {mse:.4e}\n",
+                t.params,
+                crate::report::four_places(bpw)
             ));
         }
         let mut reasons: Vec<(&str, usize)> = Vec::new();

@@ -195,7 +195,7 @@ impl<'a> Report<'a> {
             "tensor     {name}  {}  {:?}\n\
              recipe     {}\n\
              {method}\
-             size       {:.4} bits/weight, {} bytes ({:.2}x smaller than {}, {:.2}x smaller than 16-bit)\n\
+             size       {} bits/weight, {} bytes ({:.2}x smaller than {}, {:.2}x smaller than 16-bit)\n\
              budget     payload {} + scales {} + zero points {} + kept {} + column factors {} = {} bits\n\
              error      SQNR {sqnr}, relative {:.4e}, MSE {:.4e}, max {:.4e}\n\
              {output}\
@@ -205,7 +205,7 @@ impl<'a> Report<'a> {
             self.tensor.dtype,
             self.tensor.shape,
             self.label,
-            c.bits_per_weight,
+            four_places(c.bits_per_weight),
             c.bytes,
             c.ratio_to_source,
             self.tensor.dtype,
@@ -235,7 +235,7 @@ impl Report<'_> {
         let name = if self.tensor.name.is_empty() { "(unnamed)" } else { self.tensor.name };
         let mut out = format!("### Quantizing `{name}` ({} {:?}) with {}\n\n", self.tensor.dtype, self.tensor.shape, self.label);
         out.push_str("| figure | value |\n| --- | --- |\n");
-        out.push_str(&format!("| bits per weight | {:.4} |\n", c.bits_per_weight));
+        out.push_str(&format!("| bits per weight | {} |\n", four_places(c.bits_per_weight)));
         out.push_str(&format!(
             "| size | {} bytes ({:.2}× smaller than {}, {:.2}× smaller than 16-bit) |\n",
             c.bytes, c.ratio_to_source, self.tensor.dtype, c.ratio_to_16bit
@@ -251,10 +251,10 @@ impl Report<'_> {
         let n = c.elements.max(1) as f64;
         for (part, bits) in [("codes", c.payload_bits), ("scales or levels", c.scale_bits), ("zero points", c.zero_point_bits), ("kept values and indices", c.kept_bits), ("per-column factors", c.column_factor_bits)] {
             if bits > 0 || part == "codes" {
-                out.push_str(&format!("| {part} | {bits} | {:.4} |\n", bits as f64 / n));
+                out.push_str(&format!("| {part} | {bits} | {} |\n", four_places(bits as f64 / n)));
             }
         }
-        out.push_str(&format!("| total | {} | {:.4} |\n\n", c.total_bits, c.bits_per_weight));
+        out.push_str(&format!("| total | {} | {} |\n\n", c.total_bits, four_places(c.bits_per_weight)));
         out.push_str(&format!("Recipe (JSON): `{}`\n\n> {}\n", serde_json::to_string(&self.recipe).expect("plain data"), self.caution));
         out
     }
@@ -293,4 +293,10 @@ fn method_line(method: &MethodFigures) -> String {
         ),
         MethodFigures::Awq(a) => format!("method     AWQ, chosen alpha {:.2}{}\n", a.alpha, if a.clip { " with clipping search" } else { "" }),
     }
+}
+
+/// Bits per weight to four places, a tie rounded up as the page rounds it (JavaScript's
+/// `toFixed`): 4 + 20/128 = 4.15625 reads 4.1563 in both, where Rust's `{:.4}` gives 4.1562.
+pub(crate) fn four_places(x: f64) -> String {
+    format!("{:.4}", (x * 1e4).round() / 1e4)
 }
