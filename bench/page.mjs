@@ -206,7 +206,10 @@ const PAUSE_MS = 300;
  * its time from the pool on two cores (2–8 ms of compiling in one change in three, in a trace).
  */
 const WARM_UP_CHANGES = 12;
-const PAIRS = { rtn: 30, sweep: 3, hqq: 2, rtnWide: 6 };
+// Pairs of runs per case. Two HQQ runs and three sweeps per pool size were too few for this
+// machine, whose speed changes by a third within a minute: one slow two-worker run of two moved
+// the median ratio from 1.86× to 1.55× between two benchmarks of the same code.
+const PAIRS = { rtn: 30, sweep: 5, hqq: 4, rtnWide: 6 };
 const poolTimes = Object.fromEntries(cores.map((threads) => [threads, { rtn: [], sweep: [], hqq: [], rtnWide: [] }]));
 
 /** The compute time of one recipe change in `pool.page`: 3-bit and 4-bit in turn. */

@@ -294,13 +294,14 @@ async function open(label, type, payload, what) {
     sweep.rows = [];
     drawSweep();
     $('sweep-status').textContent = '';
+    // A note about calibration (one asked for before any tensor was open, say) is out of date.
+    showMessage('calib-message', '');
     if (result.calibDropped) {
+      // Said where the user acted, at the top of the page: the calibration card may be out of view.
+      const cols = state.calib?.info.cols;
       setCalibration(null);
       bridge.forget('calib');
-      showMessage('calib-message', 'The calibration was removed: it does not match the new tensor\'s input width.');
-    } else {
-      // A note about calibration (one asked for before any tensor was open, say) is out of date.
-      showMessage('calib-message', '');
+      showMessage('input-message', `The calibration${cols ? ` (${fmt.plural(cols, 'column')})` : ''} was removed: this tensor has ${fmt.plural(result.info.cols, 'input column')}. Add calibration of that width to measure the output error.`);
     }
     if (result.recipeError) {
       // The new tensor has replaced the old one and its results in the worker: none stand now.

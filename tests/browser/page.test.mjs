@@ -455,6 +455,20 @@ test('AWQ shows its alpha curve and smoothing runs the W8A8 study', async () => 
   await context.close();
 });
 
+test('a tensor of another width removes the calibration, and says so at the top', async () => {
+  const { page, context } = await withDemo();
+  await page.click('#calib-demo');
+  await page.waitForFunction(() => !/^None/.test(document.getElementById('calib-info').textContent));
+  const shown = await page.textContent('#status');
+  await page.click('#paste-box summary');
+  await page.fill('#paste', '0.5 -1 2\n0.25 3 -0.5\n');
+  await page.click('#use-paste');
+  await waitForAnalysis(page, shown);
+  assert.equal(await page.textContent('#input-message'), 'The calibration (4,096 columns) was removed: this tensor has 3 input columns. Add calibration of that width to measure the output error.');
+  assert.match(await page.textContent('#calib-info'), /^None/);
+  await context.close();
+});
+
 test('calibration of the wrong width is refused and the weight-only view goes on', async () => {
   const { page, context } = await withDemo();
   const before = await pageState(page);
