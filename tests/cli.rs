@@ -86,6 +86,15 @@ fn text_matrices_and_the_demo_weight_are_accepted() {
     let out = bitloupe(&["demo", "--out", path_str(&demo)]);
     assert!(out.status.success(), "{}", text(&out.stderr));
     assert_eq!(std::fs::metadata(&demo).unwrap().len(), 128 + 4 * 1024 * 4096);
+    // Raw 2-byte values read as bfloat16 with --bf16: 0x3F80 is 1.0 and 0xC000 is −2.0 (the
+    // bfloat16 layout: the top half of an IEEE 754 binary32).
+    let raw = dir.path().join("raw.npy");
+    let mut bytes = npy_bytes("{'descr': '<u2', 'fortran_order': False, 'shape': (1, 2), }\n");
+    bytes.extend_from_slice(&[0x80, 0x3F, 0x00, 0xC0]);
+    std::fs::write(&raw, bytes).unwrap();
+    let out = bitloupe(&["quantize", path_str(&raw), "--bf16", "--group", "row"]);
+    assert!(out.status.success(), "{}", text(&out.stderr));
+    assert!(text(&out.stdout).contains("bf16  [1, 2]"), "{}", text(&out.stdout));
     // 4 + (16 + 4)/128 = 4.15625 bits per weight, a tie at four places: shown as the page
     // shows it (JavaScript's toFixed rounds a tie up), in the summary and the Markdown alike.
     let markdown = dir.path().join("demo.md");
@@ -217,6 +226,7 @@ fn bad_inputs_fail_with_one_clear_line_and_write_nothing() {
         (vec!["quantize", p(&weight), "--out", p(&a_directory)], "is a directory"),
         // The rename would put the result in place of the source.
         (vec!["quantize", p(&weight), "--out", p(&weight)], "is the input"),
+        (vec!["quantize", p(&weight), "--bf16"], "--bf16 reads raw 2-byte .npy values as bfloat16, and the files read hold f32; leave it out"),
     ];
     let source = std::fs::read(&weight).unwrap();
     for (mut args, needle) in cases {

@@ -378,6 +378,10 @@ function renderListing() {
       tr.classList.add('current');
       open(`Reading ${entry.name}`, 'openFile', { file: state.file, name: entry.name, bf16: $('bf16').checked }, `${entry.name} of ${state.file.name}`);
     });
+    // The whole row answers a click; the button keeps it reachable from the keyboard.
+    tr.addEventListener('click', (event) => {
+      if (!button.contains(event.target)) button.click();
+    });
     const cells = [button, entry.dtype_label, fmt.shape(entry.shape), fmt.bytes(entry.bytes)];
     for (const content of cells) {
       const td = document.createElement('td');

@@ -19,7 +19,7 @@ static ALLOCATOR: mimalloc::MiMalloc = mimalloc::MiMalloc;
 #[cfg(not(target_arch = "wasm32"))]
 mod cli {
     use bitloupe::report::Report;
-    use bitloupe::tensor::{self, npy, text, Listing};
+    use bitloupe::tensor::{self, npy, text, DType, Listing};
     use bitloupe::calib::{CalibKind, Calibration};
     use bitloupe::methods::smooth::{self, ActQuant, DEFAULT_SMOOTHING};
     use bitloupe::formats::Format;
@@ -302,14 +302,28 @@ Per-tensor error is only a proxy: check any recipe on the model's own task befor
 
     impl CalibArgs {
         /// The calibration for a weight with `cols` input columns, when a file was given.
-        fn load(&self, cols: usize, options: ReadOptions) -> Result<Option<Calibration>, Failure> {
+        /// The calibration for a weight with `cols` input columns, when a file was given, and the
+        /// element type its file held.
+        fn load(&self, cols: usize, options: ReadOptions) -> Result<Option<(Calibration, DType)>, Failure> {
             let Some(path) = &self.calib else { return Ok(None) };
             let kind = self.calib_kind.parse::<CalibKind>()?;
             // Checked as a weight under the plain recipe (about 1.3 copies of it); the calibration
             // holds its values twice for a moment (the tensor read and the sample kept), which the
             // check does not count: a sample is small beside the weight it calibrates.
             let data = load(path, self.calib_tensor.as_deref(), options, &[Recipe::default()])?;
-            Ok(Some(Calibration::from_tensor(&data, kind, cols).map_err(Failure::at(path))?))
+            Ok(Some((Calibration::from_tensor(&data, kind, cols).map_err(Failure::at(path))?, data.dtype)))
+        }
+    }
+
+    impl ReadArgs {
+        /// `--bf16` with no file of raw 2-byte values to read as bfloat16 is refused, not
+        /// dropped, as other flags the command would not use are.
+        fn check_used(&self, read: &[DType]) -> Result<(), Failure> {
+            if !self.bf16 || read.contains(&DType::BF16) {
+                return Ok(());
+            }
+            let held: Vec<String> = read.iter().map(|d| d.to_string()).collect();
+            Err(Failure(format!("--bf16 reads raw 2-byte .npy values as bfloat16, and the files read hold {}; leave it out", held.join(" and "))))
         }
     }
 
@@ -352,7 +366,8 @@ Per-tensor error is only a proxy: check any recipe on the model's own task befor
                 let recipe = recipe.recipe()?;
                 let w8a8 = w8a8.as_deref().map(str::parse::<ActQuant>).transpose()?;
                 let tensor = load(&file, tensor.as_deref(), read.options(), &[recipe])?;
-                let calibration = calib.load(tensor.cols(), read.options())?;
+                let (calibration, calib_dtype) = calib.load(tensor.cols(), read.options())?.unzip();
+                read.check_used(&[Some(tensor.dtype), calib_dtype].into_iter().flatten().collect::<Vec<_>>())?;
                 check_room(&file, &tensor, &[recipe], calibration.as_ref())?;
                 let analysis = analyze_with(&tensor, &recipe, calibration.as_ref(), &mut |_, _| {}).map_err(Failure::at(&file))?;
                 let study = match (w8a8, &calibration) {
@@ -434,7 +449,8 @@ Per-tensor error is only a proxy: check any recipe on the model's own task befor
                 };
                 let (recipes, skipped) = sweep::recipes(&spec)?;
                 let tensor = load(&file, tensor.as_deref(), read.options(), &recipes)?;
-                let calibration = calib.load(tensor.cols(), read.options())?;
+                let (calibration, calib_dtype) = calib.load(tensor.cols(), read.options())?.unzip();
+                read.check_used(&[Some(tensor.dtype), calib_dtype].into_iter().flatten().collect::<Vec<_>>())?;
                 check_room(&file, &tensor, &recipes, calibration.as_ref())?;
                 let by = match pareto_by {
                     Some(by) => by.parse::<ParetoBy>()?,

@@ -147,6 +147,11 @@ test('a dropped safetensors file lists its tensors and opens the chosen one', as
   await page.selectOption('#granularity', 'tensor');
   await page.waitForFunction(() => document.getElementById('status').textContent.includes('per-tensor'));
   await shot(page, '05-safetensors');
+  // A click anywhere on a row opens its tensor, not only on the name.
+  const shown = await page.textContent('#status');
+  await page.click('#tensor-rows tr:has-text("block.0.attn.q.weight") td:nth-child(3)');
+  await waitForAnalysis(page, shown);
+  assert.match(await page.textContent('#status'), /on block\.0\.attn\.q\.weight/);
   await context.close();
 });
 
