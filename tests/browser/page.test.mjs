@@ -147,11 +147,10 @@ test('a dropped safetensors file lists its tensors and opens the chosen one', as
   await page.selectOption('#granularity', 'tensor');
   await page.waitForFunction(() => document.getElementById('status').textContent.includes('per-tensor'));
   await shot(page, '05-safetensors');
-  // A click anywhere on a row opens its tensor, not only on the name.
-  const shown = await page.textContent('#status');
+  // A click anywhere on a row opens its tensor, not only on the name. (The wait is on the status
+  // itself: the per-tensor result above was drawn without `waitForAnalysis` counting it.)
   await page.click('#tensor-rows tr:has-text("block.0.attn.q.weight") td:nth-child(3)');
-  await waitForAnalysis(page, shown);
-  assert.match(await page.textContent('#status'), /on block\.0\.attn\.q\.weight/);
+  await page.waitForFunction(() => /on block\.0\.attn\.q\.weight · analysed/.test(document.getElementById('status').textContent));
   await context.close();
 });
 
@@ -462,9 +461,10 @@ test('AWQ shows its alpha curve and smoothing runs the W8A8 study', async () => 
 
 test('a tensor of another width removes the calibration, and says so at the top', async () => {
   const { page, context } = await withDemo();
+  const weightOnly = await page.textContent('#status');
   await page.click('#calib-demo');
-  await page.waitForFunction(() => !/^None/.test(document.getElementById('calib-info').textContent));
-  const shown = await page.textContent('#status');
+  const shown = await waitForAnalysis(page, weightOnly);
+  assert.doesNotMatch(await page.textContent('#calib-info'), /^None/);
   await page.click('#paste-box summary');
   await page.fill('#paste', '0.5 -1 2\n0.25 3 -0.5\n');
   await page.click('#use-paste');
