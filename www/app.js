@@ -3,7 +3,7 @@
 
 import { CoreBridge, Cancelled } from './bridge.js';
 import { ErrorMap } from './errormap.js';
-import { SeriesChart, GroupHistogram, COMB_ABOVE_LEVELS } from './charts.js';
+import { SeriesChart, GroupHistogram, COMB_ABOVE_LEVELS, levelReach } from './charts.js';
 import { GRADIENT, STOP_COLOURS } from './colors.js';
 import * as fmt from './format.js';
 import { pictureSvg, seriesSvg } from './svg.js';
@@ -1104,11 +1104,11 @@ function tensorName(summary) {
 
 function showCompare() {
   const { a, b } = pins;
-  const open = state.result ? tensorName(state.result.summary) : null;
+  const current = state.result ? tensorName(state.result.summary) : null;
   $('compare-hint').textContent = !a ? 'Pin the current result as A, change the recipe, then pin the new result as B.'
     : !b ? `A is ${a.summary.label}. Change the recipe, then pin the new result as B.`
       : a.tensor !== b.tensor ? 'A and B were pinned on different tensors; pin both on one tensor to compare them.'
-        : a.tensor !== open ? `A and B are results on ${a.tensor}, not on the tensor open now; pin new ones to compare recipes on it.` : '';
+        : a.tensor !== current ? `A and B are results on ${a.tensor}, not on the tensor open now; pin new ones to compare recipes on it.` : '';
   const ready = Boolean(a && b && a.tensor === b.tensor);
   $('compare-body').hidden = !ready;
   if (!ready) return;
@@ -1169,7 +1169,6 @@ $('size-files').addEventListener('change', (e) => {
 $('size-run').addEventListener('click', () => computeModelSize());
 
 async function computeModelSize() {
-  const gb = fmt.decimalBytes;
   // The parameter count stands in for shards only when none are open.
   const fields = [['size-budget', 'memory budget'], ...(shardFiles.length ? [] : [['size-params', 'parameter count']])];
   for (const [id, what] of fields) {
@@ -1197,12 +1196,12 @@ async function computeModelSize() {
       const seg = document.createElement('div');
       seg.style.width = `${(100 * bytes) / scale}%`;
       seg.style.background = `var(${colour})`;
-      seg.title = `${title}: ${gb(bytes)}`;
+      seg.title = `${title}: ${fmt.decimalBytes(bytes)}`;
       bar.append(seg);
     }
     const source = shardFiles.length ? `${fmt.plural(shardFiles.length, 'shard')}` : `${$('size-params').value} billion parameters (as 4096-wide bf16 rows)`;
-    const fits = size.total_bytes <= budget ? `fits in ${gb(budget)} with ${gb(budget - size.total_bytes)} to spare` : `exceeds ${gb(budget)} by ${gb(size.total_bytes - budget)}`;
-    $('size-figures').textContent = `${source}: ${fmt.plural(size.quantized_tensors, 'tensor')} quantized (${fmt.count(size.quantized_params)} weights, ${gb(size.quantized_source_bytes)} → ${gb(size.quantized_bytes)}), ${fmt.plural(size.other_tensors, 'tensor')} kept as stored (${gb(size.other_bytes)}); total ${gb(size.total_bytes)}, which ${fits}.`;
+    const fits = size.total_bytes <= budget ? `fits in ${fmt.decimalBytes(budget)} with ${fmt.decimalBytes(budget - size.total_bytes)} to spare` : `exceeds ${fmt.decimalBytes(budget)} by ${fmt.decimalBytes(size.total_bytes - budget)}`;
+    $('size-figures').textContent = `${source}: ${fmt.plural(size.quantized_tensors, 'tensor')} quantized (${fmt.count(size.quantized_params)} weights, ${fmt.decimalBytes(size.quantized_source_bytes)} → ${fmt.decimalBytes(size.quantized_bytes)}), ${fmt.plural(size.other_tensors, 'tensor')} kept as stored (${fmt.decimalBytes(size.other_bytes)}); total ${fmt.decimalBytes(size.total_bytes)}, which ${fits}.`;
   } catch (err) {
     $('size-figures').textContent = `No size: ${err.message}`;
   }
@@ -1257,8 +1256,7 @@ function chartExports() {
       const x = Float64Array.from(h.counts, (_, i) => h.lo + (i + 0.5) * width);
       // The caption's first part names the group; the rest describes the drawing on screen.
       const title = $('hist-caption').textContent.split(';')[0];
-      const markReach = grid.length > COMB_ABOVE_LEVELS ? 0.08 : 1;
-      return seriesSvg(title, x, [{ label: 'count', values: Float64Array.from(h.counts), colour: '--series1', bars: true }], { xLabel: 'weight value', yLabel: `count (${grid.length} grid levels)`, marks: Array.from(grid), markReach });
+      return seriesSvg(title, x, [{ label: 'count', values: Float64Array.from(h.counts), colour: '--series1', bars: true }], { xLabel: 'weight value', yLabel: `count (${grid.length} grid levels)`, marks: Array.from(grid), markReach: levelReach(grid.length) });
     }],
     ['sweep-chart', 'sweep', () => sweepChart.chart?.ctx.canvas, () => seriesSvg('Sweep: bits per weight against error', sweepChart.last.x, sweepChart.last.series, { xLabel: 'bits per weight', yLabel: sweepChart.yLabel, logY: sweepChart.logY })],
     ['method-curve', 'method curve', () => methodCurve.chart?.ctx.canvas, () => seriesSvg('Output error across α', methodCurve.last.x, methodCurve.last.series, { xLabel: 'α', yLabel: 'output error' })],

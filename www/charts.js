@@ -106,6 +106,11 @@ export class SeriesChart {
  */
 export const COMB_ABOVE_LEVELS = 64;
 
+/** How far up the plot a group's grid levels are drawn: all the way, or a comb (above). */
+export function levelReach(levels) {
+  return levels > COMB_ABOVE_LEVELS ? 0.08 : 1;
+}
+
 /** Histogram of one group's values with that group's grid levels drawn over it. */
 export class GroupHistogram {
   constructor(el) {
@@ -142,7 +147,7 @@ export class GroupHistogram {
       axes: [axis({ label: 'weight value' }), axis({ label: 'count', size: 56, values: (u, splits) => splits.map((v) => compactCount.format(v)) })],
       hooks: {
         draw: [(u) => {
-          const reach = this.grid.length > COMB_ABOVE_LEVELS ? 0.08 : 1;
+          const reach = levelReach(this.grid.length);
           this.grid.forEach((level) => drawVertical(u, level, themed('--accent', '#e4572e'), 0.75, reach));
         }],
       },
