@@ -311,6 +311,13 @@ fn sweep_rows_equal_single_analyses_and_mark_the_front() {
     let doc: Value = serde_json::from_str(&std::fs::read_to_string(&json).unwrap()).unwrap();
     assert_eq!(doc["pareto_by"], "output");
     assert!(doc["skipped"].as_u64().unwrap() > 0, "mxfp4 with groups other than 32 is skipped");
+    // Why, by reason: MXFP4 in groups of 64 and per row, each with three methods (clipping and
+    // GPTQ run on MXFP4's block of 32).
+    let why = doc["skipped_why"].as_array().unwrap();
+    assert_eq!(why.iter().map(|r| r["count"].as_u64().unwrap()).sum::<u64>(), doc["skipped"].as_u64().unwrap());
+    let mx = why.iter().find(|r| r["why"].as_str().unwrap().starts_with("mxfp4 shares one scale per block of 32")).expect("the mxfp4 reason");
+    assert_eq!(mx["count"], 6, "{why:?}");
+    assert!(text(&out.stderr).contains("combinations skipped: mxfp4 shares one scale per block of 32"), "{}", text(&out.stderr));
     // Every sweep row against its own single analysis.
     for row in &rows {
         let report = dir.path().join("one.json");

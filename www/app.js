@@ -917,7 +917,7 @@ function drawBudget(cost, bar = $('budget'), legend = $('budget-legend')) {
 // ------------------------------------------------------------------ sweep
 
 // `frontBy`: the error axis the rows' front was marked against (none for a cancelled sweep's);
-// `skipped`: the combinations a finished sweep skipped (none while one runs or once cancelled).
+// `skipped`: what a finished sweep skipped and why, in words (none while one runs or once cancelled).
 const sweep = { rows: [], by: 'sqnr', frontBy: null, skipped: null, running: false, sortKey: 'bits_per_weight', ascending: true, shown: [] };
 const sweepChart = new SeriesChart($('sweep-chart'), { xLabel: 'bits per weight', yLabel: 'error', onSelect: (i) => loadSweepRow(sweep.shown[i]) });
 const SWEEP_FORMATS = ['int', 'nf4', 'e2m1', 'e4m3', 'mxfp4', 'mxint8', 'codebook'];
@@ -1019,7 +1019,7 @@ async function frontByAxis() {
 
 /** The status of a sweep that ran to its end. */
 function showSweepDone() {
-  $('sweep-status').textContent = `${fmt.plural(sweep.rows.length, 'recipe')} run, ${sweep.rows.filter((r) => r.pareto).length} on the front, ${sweep.skipped} combinations skipped (meaningless, or not possible on this tensor).`;
+  $('sweep-status').textContent = `${fmt.plural(sweep.rows.length, 'recipe')} run, ${sweep.rows.filter((r) => r.pareto).length} on the front, ${sweep.skipped}.`;
 }
 
 $('sweep-by').addEventListener('change', frontByAxis);

@@ -211,8 +211,7 @@ const handlers = {
   sweep({ spec, by }, progress) {
     if (!tensor) throw new Error('open a tensor first');
     const plan = core.sweepRecipes(spec);
-    const { rows, failed } = calib ? tensor.sweepWith(plan.recipes, by, progress, calib) : tensor.sweep(plan.recipes, by, progress);
-    return { value: { rows, skipped: plan.skipped + failed } };
+    return { value: calib ? tensor.sweepWith(plan, by, progress, calib) : tensor.sweep(plan, by, progress) };
   },
   sweepFront({ rows, by }) {
     return { value: core.sweepFront(rows, by) };

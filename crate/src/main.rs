@@ -468,18 +468,19 @@ Per-tensor error is only a proxy: check any recipe on the model's own task befor
                 if on_terminal {
                     eprintln!();
                 }
+                let skipped = skipped.merged(failed);
                 let mut outputs = Vec::new();
                 if let Some(path) = csv {
                     outputs.push((path, sweep::to_csv(&rows).into_bytes()));
                 }
                 if let Some(path) = json {
-                    let doc = serde_json::json!({ "schema": "bitloupe.sweep/1", "pareto_by": by, "skipped": skipped + failed, "rows": rows });
+                    let doc = serde_json::json!({ "schema": "bitloupe.sweep/1", "pareto_by": by, "skipped": skipped.count(), "skipped_why": skipped, "rows": rows });
                     outputs.push((path, serde_json::to_string_pretty(&doc).expect("plain data").into_bytes()));
                 }
                 if outputs.is_empty() {
                     print!("{}", sweep::to_csv(&rows));
                 }
-                eprintln!("bitloupe: {} recipes run, {} on the Pareto front, {} combinations skipped (meaningless, or not possible on this tensor)", rows.len(), rows.iter().filter(|r| r.pareto).count(), skipped + failed);
+                eprintln!("bitloupe: {} recipes run, {} on the Pareto front, {skipped}", rows.len(), rows.iter().filter(|r| r.pareto).count());
                 write_all_or_nothing(&outputs, &inputs(&file, &calib))
             }
             Command::Demo { out, activations } => {

@@ -107,11 +107,74 @@ impl SweepRow {
     }
 }
 
-/// The recipes of a spec, and how many combinations were skipped as meaningless; an error naming
-/// the first combination's fault when none makes sense.
-pub fn recipes(spec: &SweepSpec) -> Result<(Vec<Recipe>, usize)> {
+/// Combinations a sweep did not run, counted by why, in the order the reasons were first met, so
+/// that the user learns which choice left them out (MXFP4 with groups other than 32, say), not
+/// only how many.
+#[derive(Debug, Clone, Default, PartialEq, Serialize, Deserialize)]
+#[serde(transparent)]
+pub struct Skipped(Vec<SkipReason>);
+
+/// One reason a sweep skipped combinations, and how many.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct SkipReason {
+    /// What was wrong, as the recipe check or the run put it.
+    pub why: String,
+    /// Combinations skipped for it.
+    pub count: usize,
+}
+
+impl Skipped {
+    /// Count one combination skipped because of `error`.
+    pub fn add(&mut self, error: &Error) {
+        let why = fault(error);
+        match self.0.iter_mut().find(|r| r.why == why) {
+            Some(reason) => reason.count += 1,
+            None => self.0.push(SkipReason { why, count: 1 }),
+        }
+    }
+
+    /// Every combination skipped by `self` or `other`.
+    pub fn merged(mut self, other: Skipped) -> Skipped {
+        for reason in other.0 {
+            match self.0.iter_mut().find(|r| r.why == reason.why) {
+                Some(known) => known.count += reason.count,
+                None => self.0.push(reason),
+            }
+        }
+        self
+    }
+
+    /// Combinations skipped in all.
+    pub fn count(&self) -> usize {
+        self.0.iter().map(|r| r.count).sum()
+    }
+
+    /// The reasons, in the order first met.
+    pub fn reasons(&self) -> &[SkipReason] {
+        &self.0
+    }
+}
+
+/// "3 combinations skipped: why (2); why (1)", or "no combination skipped".
+impl std::fmt::Display for Skipped {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        match self.count() {
+            0 => return write!(f, "no combination skipped"),
+            1 => write!(f, "1 combination skipped: ")?,
+            n => write!(f, "{n} combinations skipped: ")?,
+        }
+        for (i, reason) in self.0.iter().enumerate() {
+            write!(f, "{}{} ({})", if i > 0 { "; " } else { "" }, reason.why, reason.count)?;
+        }
+        Ok(())
+    }
+}
+
+/// The recipes of a spec, and the combinations skipped as meaningless; an error naming the first
+/// combination's fault when none makes sense.
+pub fn recipes(spec: &SweepSpec) -> Result<(Vec<Recipe>, Skipped)> {
     let mut out: Vec<Recipe> = Vec::new();
-    let mut skipped = 0;
+    let mut skipped = Skipped::default();
     let mut first_fault = None;
     for &format in &spec.formats {
         let base = Recipe::for_format(format);
@@ -125,7 +188,7 @@ pub fn recipes(spec: &SweepSpec) -> Result<(Vec<Recipe>, usize)> {
                             for &keep_frac in &spec.keep_fracs {
                                 let recipe = Recipe { bits: b, granularity, method, scale_dtype, smooth, keep_frac, ..base };
                                 if let Err(e) = recipe.validate() {
-                                    skipped += 1;
+                                    skipped.add(&e);
                                     first_fault.get_or_insert(e);
                                 } else if !out.contains(&recipe) {
                                     out.push(recipe);
@@ -160,21 +223,21 @@ const SIDE_BY_SIDE: usize = 8;
 
 /// Run every recipe; `progress(done, total, row)` after each, in order, with its row unless it
 /// failed. Recipes that fail on this tensor (a method that needs calibration, say) are skipped
-/// and counted too.
+/// and counted by why too.
 pub fn run(
     tensor: &Tensor,
     calib: Option<&Calibration>,
     recipes: &[Recipe],
     by: ParetoBy,
     progress: &mut dyn FnMut(usize, usize, Option<&SweepRow>),
-) -> Result<(Vec<SweepRow>, usize)> {
+) -> Result<(Vec<SweepRow>, Skipped)> {
     if by == ParetoBy::Output && calib.is_none() {
         return Err(Error::BadRecipe { detail: "a front by output error needs calibration data".into() });
     }
     let one = |recipe: &Recipe| headline(tensor, recipe, calib, &mut |_, _| {}).map(|h| SweepRow::of(&h));
     let light = |recipe: &Recipe| calib.is_none() && is_plain(recipe);
     let mut rows = Vec::with_capacity(recipes.len());
-    let mut failed = 0;
+    let mut failed = Skipped::default();
     let mut first_failure = None;
     let mut done = 0;
     while done < recipes.len() {
@@ -194,7 +257,7 @@ pub fn run(
                 // A non-finite tensor fails every recipe: that is the user's error, not a skip.
                 Err(e @ Error::NonFinite { .. }) => return Err(e),
                 Err(e) => {
-                    failed += 1;
+                    failed.add(&e);
                     first_failure.get_or_insert(e);
                     progress(done, recipes.len(), None);
                 }
@@ -313,7 +376,29 @@ mod tests {
         // int: 2 bits × 2 groups × 2 methods = 8; mxfp4: group 32 only, rtn only = 1;
         // nf4: 2 groups, rtn only = 2. Skipped: mxfp4 row (2) + mxfp4 hqq (1) + nf4 hqq (2).
         assert_eq!(recipes.len(), 11);
-        assert_eq!(skipped, 5);
+        assert_eq!(skipped.count(), 5);
+        // The reasons, by the first check each combination fails, in the order met: HQQ on the
+        // zero point (MXFP4 in blocks of 32, NF4 in both groupings), MXFP4 per row on its block
+        // (with either method).
+        let counts: Vec<(bool, usize)> = skipped.reasons().iter().map(|r| (r.why.contains("mxfp4"), r.count)).collect();
+        assert_eq!(counts, [(false, 3), (true, 2)], "{skipped}");
+        assert!(skipped.to_string().starts_with("5 combinations skipped: HQQ fits a zero point"), "{skipped}");
+        assert!(skipped.to_string().ends_with("; mxfp4 shares one scale per block of 32 (the MX specification); use groups of 32 (2)"), "{skipped}");
+    }
+
+    #[test]
+    fn skipped_reasons_merge_by_their_words() {
+        let bad = |detail: &str| Error::BadRecipe { detail: detail.into() };
+        let mut first = Skipped::default();
+        first.add(&bad("a"));
+        first.add(&bad("a"));
+        let mut second = Skipped::default();
+        second.add(&bad("b"));
+        second.add(&bad("a"));
+        let all = first.merged(second);
+        assert_eq!(all.count(), 4);
+        assert_eq!(all.to_string(), "4 combinations skipped: a (3); b (1)");
+        assert_eq!(Skipped::default().to_string(), "no combination skipped");
     }
 
     /// A sweep with nothing to run is an error naming why, not an empty result.
@@ -364,7 +449,7 @@ mod tests {
             (swept, seen)
         };
         let ((rows, failed), seen) = on(3);
-        assert!(failed > 0, "GPTQ without calibration fails and is counted");
+        assert!(failed.count() > 0 && failed.to_string().contains("GPTQ"), "GPTQ without calibration fails and is counted: {failed}");
         assert_eq!(seen.iter().map(|s| s.0).collect::<Vec<_>>(), (1..=plan.len()).collect::<Vec<_>>());
         assert_eq!(seen.iter().filter(|s| s.2).count(), rows.len());
         let mut alone: Vec<SweepRow> = plan.iter().filter_map(|r| headline(&weight, r, None, &mut |_, _| {}).ok().map(|h| SweepRow::of(&h))).collect();

@@ -12,8 +12,9 @@ use crate::metrics::Histogram;
 use crate::error::Error;
 use crate::recipe::Recipe;
 use crate::report::Report;
+use crate::sweep::Skipped;
 use crate::tensor::{self, ByteSource, ReadOptions, Tensor, ValueScan};
-use serde::Serialize;
+use serde::{Deserialize, Serialize};
 use std::alloc::{GlobalAlloc, Layout, System};
 use std::rc::Rc;
 use std::sync::atomic::{AtomicUsize, Ordering};
@@ -185,7 +186,8 @@ pub fn sweep_front(rows: JsValue, by: &str) -> Result<JsValue, JsError> {
 }
 
 /// The recipes of a sweep spec `{formats, bits, groups, methods, scale_dtypes}`:
-/// `{recipes, skipped}`.
+/// `{recipes, skipped}`, `skipped` the combinations left out, `[{why, count}]` (pass it on to
+/// `sweep`).
 #[wasm_bindgen(js_name = sweepRecipes)]
 pub fn sweep_recipes(spec: JsValue) -> Result<JsValue, JsError> {
     let spec: crate::sweep::SweepSpec = from_json_value(&spec, "sweep")?;
@@ -193,7 +195,7 @@ pub fn sweep_recipes(spec: JsValue) -> Result<JsValue, JsError> {
     #[derive(Serialize)]
     struct Plan {
         recipes: Vec<Recipe>,
-        skipped: usize,
+        skipped: Skipped,
     }
     to_js(&Plan { recipes, skipped })
 }
@@ -598,27 +600,33 @@ impl TensorHandle {
         Ok(AnalysisHandle { analysis, summary, tensor: Rc::clone(&self.tensor) })
     }
 
-    /// Run a sweep's `recipes` (see `sweepRecipes`) and mark the front against `by` ("sqnr",
-    /// "mse" or "output"): `{rows, failed}`, `failed` counting the recipes that failed on this
-    /// tensor or could not fit the memory left; `progress(done, total, row)` after each recipe
-    /// run, `row` undefined for one that failed.
-    pub fn sweep(&self, recipes: JsValue, by: &str, progress: js_sys::Function) -> Result<JsValue, JsError> {
-        self.sweep_ref(recipes, by, progress, None)
+    /// Run a sweep's plan (`sweepRecipes`: its recipes and the combinations it skipped) and mark
+    /// the front against `by` ("sqnr", "mse" or "output"): `{rows, skipped}`, `skipped` saying in
+    /// words what was not run and why, the plan's combinations with the recipes that failed on
+    /// this tensor or could not fit the memory left; `progress(done, total, row)` after each
+    /// recipe run, `row` undefined for one that failed.
+    pub fn sweep(&self, plan: JsValue, by: &str, progress: js_sys::Function) -> Result<JsValue, JsError> {
+        self.sweep_ref(plan, by, progress, None)
     }
 
     /// `sweep` with calibration.
     #[wasm_bindgen(js_name = sweepWith)]
-    pub fn sweep_with(&self, recipes: JsValue, by: &str, progress: js_sys::Function, calibration: &CalibrationHandle) -> Result<JsValue, JsError> {
-        self.sweep_ref(recipes, by, progress, Some(calibration))
+    pub fn sweep_with(&self, plan: JsValue, by: &str, progress: js_sys::Function, calibration: &CalibrationHandle) -> Result<JsValue, JsError> {
+        self.sweep_ref(plan, by, progress, Some(calibration))
     }
 
-    fn sweep_ref(&self, recipes: JsValue, by: &str, progress: js_sys::Function, calibration: Option<&CalibrationHandle>) -> Result<JsValue, JsError> {
+    fn sweep_ref(&self, plan: JsValue, by: &str, progress: js_sys::Function, calibration: Option<&CalibrationHandle>) -> Result<JsValue, JsError> {
+        #[derive(Deserialize)]
+        struct Plan {
+            recipes: Vec<Recipe>,
+            skipped: Skipped,
+        }
         #[derive(Serialize)]
         struct Swept {
             rows: Vec<crate::sweep::SweepRow>,
-            failed: usize,
+            skipped: String,
         }
-        let recipes: Vec<Recipe> = from_json_value(&recipes, "sweep recipes")?;
+        let Plan { recipes, skipped } = from_json_value(&plan, "sweep plan")?;
         let by = by.parse().map_err(js_error)?;
         let calib = calibration.map(|c| &c.calib);
         let mut report = |done: usize, total: usize, row: Option<&crate::sweep::SweepRow>| {
@@ -632,8 +640,13 @@ impl TensorHandle {
         if fitting.is_empty() && !too_large.is_empty() {
             check_room(&self.tensor, &too_large, calib)?;
         }
+        let mut skipped = skipped;
+        for recipe in &too_large {
+            let detail = format!("{} needs more memory than the page has left (the command-line tool has no such limit)", recipe.method.name());
+            skipped.add(&Error::BadRecipe { detail });
+        }
         let (rows, failed) = crate::sweep::run(&self.tensor, calib, &fitting, by, &mut report).map_err(js_error)?;
-        to_js(&Swept { rows, failed: failed + too_large.len() })
+        to_js(&Swept { rows, skipped: skipped.merged(failed).to_string() })
     }
 }
 
