@@ -367,52 +367,37 @@ fn run(
     let measure = Measure::new(recipe, cols, detail);
     let reference = calib.and_then(|c| c.reference_output(tensor.values.view()));
     let cost = BitCost::of(recipe, rows, cols, tensor.dtype.bits());
-    if is_plain(recipe) {
-        // The hot path: each row is measured while it is still in cache, and with calibration
-        // its output error is taken one row block at a time; the reconstruction is not kept.
+    // The hot path keeps no reconstruction (its result holds an empty one, dropped below): each
+    // row is measured while it is still in cache, and with calibration its output error is taken
+    // one row block at a time.
+    let plain = is_plain(recipe);
+    let (observed, output, q) = if plain {
         let view = tensor.values.view();
         let discard = Reconstruction::Discard;
-        let (params, observed, double_quant, output) = match calib {
+        let plain = |params, double_quant| methods::Quantized { double_quant, ..methods::Quantized::plain(Array2::zeros((0, 0)), params) };
+        match calib {
             None => {
                 let (grouped, double_quant) = methods::round_to_nearest(view, recipe, &Kept::default(), &measure, discard, progress)?;
-                (grouped.params, grouped.observed, double_quant, None)
+                (grouped.observed, None, plain(grouped.params, double_quant))
             }
             Some(calib) => {
                 let outputs = OutputObserver { calib, weight: view, reference: reference.as_deref() };
                 let (grouped, double_quant) = methods::round_to_nearest(view, recipe, &Kept::default(), &(&measure, &outputs), discard, progress)?;
                 let (observed, sums) = grouped.observed;
-                (grouped.params, observed, double_quant, Some(sums.output_error(calib)))
+                (observed, Some(sums.output_error(calib)), plain(grouped.params, double_quant))
             }
-        };
-        let (totals, groups, columns) = measure.finish(observed);
-        return Ok(Analysis {
-            recipe: *recipe,
-            kept_reconstruction: None,
-            dim: (rows, cols),
-            params,
-            totals,
-            groups,
-            columns,
-            cost,
-            method: MethodFigures::Rtn,
-            output,
-            column_factors: None,
-            codebooks: Vec::new(),
-            double_quant,
-            kept: Kept::default(),
-        });
-    }
-    let q = methods::run(tensor.values.view(), recipe, calib, reference.as_deref(), progress)?;
-    let observed = measure.rows(tensor.values.view(), q.dequantized.view());
-    let methods::Quantized { dequantized, params, figures: method, output: measured, column_factors, codebooks, double_quant, kept } = q;
-    let output = match measured {
-        Some(known) => Some(known),
-        None => calib.map(|c| output_error(c, tensor.values.view(), dequantized.view(), reference.as_deref())),
+        }
+    } else {
+        let mut q = methods::run(tensor.values.view(), recipe, calib, reference.as_deref(), progress)?;
+        let observed = measure.rows(tensor.values.view(), q.dequantized.view());
+        let output = q.output.take().or_else(|| calib.map(|c| output_error(c, tensor.values.view(), q.dequantized.view(), reference.as_deref())));
+        (observed, output, q)
     };
+    let methods::Quantized { dequantized, params, figures: method, output: _, column_factors, codebooks, double_quant, kept } = q;
     let (totals, groups, columns) = measure.finish(observed);
     Ok(Analysis {
         recipe: *recipe,
-        kept_reconstruction: Some(dequantized),
+        kept_reconstruction: (!plain).then_some(dequantized),
         dim: (rows, cols),
         params,
         totals,
