@@ -81,18 +81,23 @@ fn layer_with_calibration() -> (Tensor, bitloupe::calib::Calibration) {
     (weight, bitloupe::calib::Calibration::from_sample(x))
 }
 
+/// GPTQ on one thread, as its goal is stated (at most 5 s).
 #[divan::bench(sample_count = 2, sample_size = 1)]
 fn gptq_4096x4096_512_tokens_int4_g128(bencher: divan::Bencher) {
-    let (tensor, calib) = layer_with_calibration();
-    let recipe = Recipe { method: bitloupe::recipe::Method::Gptq, ..Recipe::default() };
-    bencher.bench(|| bitloupe::analyze_with(&tensor, &recipe, Some(&calib), &mut |_, _| {}).unwrap());
+    method_with_calibration(bencher, bitloupe::recipe::Method::Gptq);
 }
 
+/// AWQ's search on one thread, to set beside GPTQ's.
 #[divan::bench(sample_count = 2, sample_size = 1)]
 fn awq_4096x4096_512_tokens_int4_g128(bencher: divan::Bencher) {
+    method_with_calibration(bencher, bitloupe::recipe::Method::Awq);
+}
+
+fn method_with_calibration(bencher: divan::Bencher, method: bitloupe::recipe::Method) {
     let (tensor, calib) = layer_with_calibration();
-    let recipe = Recipe { method: bitloupe::recipe::Method::Awq, ..Recipe::default() };
-    bencher.bench(|| bitloupe::analyze_with(&tensor, &recipe, Some(&calib), &mut |_, _| {}).unwrap());
+    let recipe = Recipe { method, ..Recipe::default() };
+    let one = rayon::ThreadPoolBuilder::new().num_threads(1).build().unwrap();
+    bencher.bench(|| one.install(|| bitloupe::analyze_with(&tensor, &recipe, Some(&calib), &mut |_, _| {}).unwrap()));
 }
 
 /// Every format on the 4096 × 4096 tensor with its default recipe, single-threaded (compare with
