@@ -4,9 +4,9 @@
 import { CoreBridge, Cancelled } from './bridge.js';
 import { ErrorMap } from './errormap.js';
 import { SeriesChart, GroupHistogram, COMB_ABOVE_LEVELS, levelReach } from './charts.js';
-import { GRADIENT, STOP_COLOURS } from './colors.js';
+import { DIVERGING_COLOURS, STOP_COLOURS } from './colors.js';
 import * as fmt from './format.js';
-import { pictureSvg, seriesSvg } from './svg.js';
+import { pictureSvg, pngOf, seriesSvg } from './svg.js';
 
 const $ = (id) => document.getElementById(id);
 const TEXT_FILE = /\.(txt|csv|tsv)$/i;
@@ -49,8 +49,8 @@ const state = {
   selectedColumn: null,
   calib: null,
   study: null,
-  /** The error map's title and colour scale, for its SVG file. */
-  mapFile: null,
+  /** Each error map's title and colour scale ({title, legend}) by its canvas's id, for its files. */
+  pictures: {},
 };
 
 // ------------------------------------------------------------------ worker bridge
@@ -650,9 +650,11 @@ async function showSmoothedColumns() {
     if (ticket !== smoothingRequest) return;
     smoothColumns.setData(indices(after.weight.length), [
       { label: 'max |w| before', values: state.result.columnMaxAbs, colour: '--series1' },
-      { label: `max |w| after (α ${alpha.toFixed(2)})`, values: Float32Array.from(after.weight), colour: '--series2' },
+      // Smoothing makes both maxima of a column equal at α 0.5: the weights' line is drawn wide
+      // and the activations' dashed over it, so that neither hides the other.
+      { label: `max |w| after (α ${alpha.toFixed(2)})`, values: Float32Array.from(after.weight), colour: '--series2', width: 3 },
       { label: 'max |x| before', values: state.calib.maxAbs, colour: '--part2' },
-      { label: 'max |x| after', values: Float32Array.from(after.act), colour: '--accent' },
+      { label: 'max |x| after', values: Float32Array.from(after.act), colour: '--accent', width: 1.5, dash: [6, 4] },
     ]);
     smoothCurve.mark(alpha);
   } catch (err) {
@@ -717,7 +719,7 @@ function showResults(result, { fresh }) {
   drawMap(!fresh);
   showColumnProfile(result);
   showOutlierList(s);
-  drawBudget(s.cost);
+  drawBudget(s);
   $('caution').textContent = s.caution;
 
   // A selection stays while its group exists; otherwise the worker chose the worst group, and
@@ -768,11 +770,26 @@ function drawMap(keepView) {
   const click = metric.perRow ? '' : ', click a cell for its histogram';
   $('map-caption').textContent = `${described}; colour: ${metric.label}, log scale. Scroll or press + and − to zoom, drag to pan${click}.`;
   const { lo, hi } = map.range();
-  $('legend-lo').textContent = fmt.sci(lo);
-  $('legend-hi').textContent = fmt.sci(hi);
   // The map's file: its title says what it shows (not how to use the page), its scale is drawn.
-  state.mapFile = { title: `Error map: ${described}`, legend: { lo: fmt.sci(lo), hi: fmt.sci(hi), label: `${metric.label}, log scale`, colours: STOP_COLOURS } };
-  $('legend-ramp').style.background = GRADIENT;
+  showPicture('error-map', `Error map: ${described}`, { lo: fmt.sci(lo), hi: fmt.sci(hi), label: `${metric.label}, log scale`, colours: STOP_COLOURS });
+}
+
+/**
+ * An error map's colour scale under it on the page (its low end, colours and high end; the caption
+ * beside the map says what they measure), kept with the map's title for its files.
+ * legend: { lo, hi, label, colours }, as `pictureSvg` draws it.
+ */
+function showPicture(id, title, legend) {
+  state.pictures[id] = { title, legend };
+  const end = (text, which) => {
+    const span = document.createElement('span');
+    span.className = which;
+    span.textContent = text;
+    return span;
+  };
+  const ramp = end('', 'ramp');
+  ramp.style.background = `linear-gradient(to right, ${legend.colours.join(', ')})`;
+  document.querySelector(`.legend[data-for="${id}"]`).replaceChildren(end(legend.lo, 'lo'), ramp, end(legend.hi, 'hi'));
 }
 
 $('map-metric').addEventListener('change', () => {
@@ -883,24 +900,25 @@ function showOutlierList(summary) {
   }
 }
 
-function drawBudget(cost, bar = $('budget'), legend = $('budget-legend')) {
+/** A result's bits by part as a bar whose full width is `full` bits, and the parts listed. */
+function drawBudget(summary, bar = $('budget'), legend = $('budget-legend'), full = summary.cost.total_bits) {
+  const { cost } = summary;
   const parts = [
     ['codes (payload)', cost.payload_bits, '--part1'],
-    [state.result?.summary.recipe.format === 'codebook' ? 'codebook levels' : 'scales', cost.scale_bits, '--part2'],
+    [summary.recipe.format === 'codebook' ? 'codebook levels' : 'scales', cost.scale_bits, '--part2'],
     ['zero points', cost.zero_point_bits, '--part3'],
     [`kept in 16-bit (${fmt.count(cost.kept_values)} values and their indices)`, cost.kept_bits, '--accent'],
     ['per-column factors (free when folded into the previous layer)', cost.column_factor_bits, '--series2'],
   ].filter(([, bits], i) => i < 3 || bits > 0);
   bar.replaceChildren();
-  legend?.replaceChildren();
+  legend.replaceChildren();
   for (const [name, bits, colour] of parts) {
     const share = cost.total_bits ? bits / cost.total_bits : 0;
     const seg = document.createElement('div');
-    seg.style.width = `${100 * share}%`;
+    seg.style.width = `${full ? (100 * bits) / full : 0}%`;
     seg.style.background = `var(${colour})`;
     seg.title = `${name}: ${fmt.count(bits)} bits`;
     bar.append(seg);
-    if (!legend) continue;
     const li = document.createElement('li');
     const swatch = document.createElement('span');
     swatch.className = 'swatch';
@@ -908,9 +926,8 @@ function drawBudget(cost, bar = $('budget'), legend = $('budget-legend')) {
     li.append(swatch, `${name}: ${fmt.count(bits)} bits = ${(bits / cost.elements).toFixed(4)} bits per weight (${(100 * share).toFixed(1)} %)`);
     legend.append(li);
   }
-  if (!legend) return;
   const total = document.createElement('li');
-  total.textContent = `total: ${fmt.count(cost.total_bits)} bits = ${fmt.bytes(cost.bytes)} for ${fmt.plural(cost.elements, 'weight')} in ${fmt.plural(cost.groups, 'group')}`;
+  total.textContent = `total: ${fmt.count(cost.total_bits)} bits = ${(cost.total_bits / cost.elements).toFixed(4)} bits per weight = ${fmt.bytes(cost.bytes)} for ${fmt.plural(cost.elements, 'weight')} in ${fmt.plural(cost.groups, 'group')}`;
   legend.append(total);
 }
 
@@ -1150,12 +1167,29 @@ function showCompare() {
   const data = (p, values, extra = {}) => ({ rows: grid(p).rows, perRow: grid(p).per_row, cols, groupSize: grid(p).group_size, values, log: true, range, ...extra });
   mapA.setData(data(a, a.values));
   mapB.setData(data(b, b.values));
+  const { lo, hi } = mapA.range();
+  const shared = { lo: fmt.sci(lo), hi: fmt.sci(hi), label: `${METRICS.rel.label}, log scale, one scale for A and B`, colours: STOP_COLOURS };
+  showPicture('map-a', `A: ${a.summary.label}`, shared);
+  showPicture('map-b', `B: ${b.summary.label}`, shared);
   const aligned = grid(a).rows === grid(b).rows && grid(a).per_row === grid(b).per_row;
   $('diff-figure').hidden = !aligned;
-  if (aligned) mapDiff.setData(data(b, b.values.map((v, i) => v - a.values[i]), { diverging: true, range: null, log: false }));
-  $('compare-maps-note').textContent = `Colour scale ${fmt.sci(range.floor)} … ${fmt.sci(range.max)} (log) for both.${aligned ? '' : ' The two recipes group the weights differently, so there is no cell-by-cell difference.'}`;
-  drawBudget(a.summary.cost, $('budget-a'), null);
-  drawBudget(b.summary.cost, $('budget-b'), null);
+  if (aligned) {
+    mapDiff.setData(data(b, b.values.map((v, i) => v - a.values[i]), { diverging: true, range: null, log: false }));
+    // Linear and centred on no change: the ends are the largest difference either way.
+    const most = mapDiff.range().hi;
+    showPicture('map-diff', `B − A: ${b.summary.label} against ${a.summary.label}`, {
+      lo: most > 0 ? `−${fmt.sci(most)}` : '0',
+      hi: most > 0 ? `+${fmt.sci(most)}` : '0',
+      label: 'B − A of each group\'s relative error, linear: blue where B is lower, grey equal, red higher',
+      colours: DIVERGING_COLOURS,
+    });
+  }
+  $('compare-maps-note').textContent = aligned ? '' : 'The two recipes group the weights differently, so there is no cell-by-cell difference.';
+  // One scale for both bars, so that the cheaper recipe's bar is the shorter one.
+  const full = Math.max(a.summary.cost.total_bits, b.summary.cost.total_bits);
+  drawBudget(a.summary, $('budget-a'), $('budget-a-legend'), full);
+  drawBudget(b.summary, $('budget-b'), $('budget-b-legend'), full);
+  $('compare-budget-scale').textContent = `Both bars on one scale: the full width is ${(full / a.summary.cost.elements).toFixed(4)} bits per weight; the colours are the parts listed under each bar.`;
 }
 
 // ------------------------------------------------------------------ model size
@@ -1245,11 +1279,15 @@ for (const [id, [type, suffix, mime]] of Object.entries(EXPORTS)) {
 
 // ------------------------------------------------------------------ chart files
 
-/** PNG and SVG buttons under each chart. */
+/**
+ * PNG and SVG buttons under each chart. A chart's PNG is its canvas; an error map's PNG is its SVG
+ * file drawn, since the map's canvas alone has neither its title nor its colour scale.
+ */
 function chartExports() {
+  const picture = (id, name) => [id, name, () => $(id), () => pictureSvg(state.pictures[id].title, $(id), state.pictures[id].legend), true];
   const charts = [
-    ['error-map', 'error map', () => $('error-map'), () => pictureSvg(state.mapFile.title, $('error-map'), state.mapFile.legend)],
-    ['column-profile', 'column profile', () => profile.chart?.ctx.canvas, () => seriesSvg('Input columns', profile.last.x, profile.last.series, { xLabel: 'input column', yLabel: 'max |w| and error RMS', logY: true })],
+    picture('error-map', 'error map'),
+    ['column-profile', 'column profile', () => profile.chart?.ctx.canvas, () => seriesSvg('Input columns', profile.last.x, profile.last.series, { xLabel: 'input column', yLabel: profile.yLabel, rightLabel: profile.rightLabel, logY: true })],
     ['histogram', 'group histogram', () => histogram.chart?.ctx.canvas, () => {
       const { histogram: h, grid } = histogram.last;
       const width = (h.hi - h.lo) / h.counts.length || 1;
@@ -1262,11 +1300,11 @@ function chartExports() {
     ['method-curve', 'method curve', () => methodCurve.chart?.ctx.canvas, () => seriesSvg('Output error across α', methodCurve.last.x, methodCurve.last.series, { xLabel: 'α', yLabel: 'output error' })],
     ['smooth-curve', 'W8A8 curve', () => smoothCurve.chart?.ctx.canvas, () => seriesSvg('W8A8 output error across α', smoothCurve.last.x, smoothCurve.last.series, { xLabel: 'α', yLabel: 'output error', logY: true })],
     ['smooth-columns', 'smoothing ranges', () => smoothColumns.chart?.ctx.canvas, () => seriesSvg('Column ranges before and after smoothing', smoothColumns.last.x, smoothColumns.last.series, { xLabel: 'input column', yLabel: 'max |value|', logY: true })],
-    ['map-a', 'A error map', () => $('map-a'), () => pictureSvg(`A: ${$('label-a').textContent}`, $('map-a'))],
-    ['map-b', 'B error map', () => $('map-b'), () => pictureSvg(`B: ${$('label-b').textContent}`, $('map-b'))],
-    ['map-diff', 'difference map', () => $('map-diff'), () => pictureSvg('B − A', $('map-diff'))],
+    picture('map-a', 'A error map'),
+    picture('map-b', 'B error map'),
+    picture('map-diff', 'difference map'),
   ];
-  for (const [id, name, canvas, svg] of charts) {
+  for (const [id, name, canvas, svg, framed = false] of charts) {
     const row = document.createElement('div');
     row.className = 'chart-files';
     // Said beside the buttons, where the eye is, not in the export card far below.
@@ -1288,12 +1326,14 @@ function chartExports() {
         }
         note.textContent = '';
         if (kind === 'SVG') download(file, svg(), 'image/svg+xml');
+        else if (framed) pngOf(svg()).then((blob) => download(file, blob, 'image/png'), (err) => { note.textContent = `Nothing was saved: ${err.message}`; });
         else source.toBlob((blob) => blob && download(file, blob, 'image/png'));
       });
       row.append(button);
     }
     row.prepend(note);
-    $(id).after(row);
+    // Under the map's colour scale, which belongs right under the map.
+    (document.querySelector(`.legend[data-for="${id}"]`) ?? $(id)).after(row);
   }
 }
 chartExports();

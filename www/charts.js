@@ -44,7 +44,9 @@ const compactCount = new Intl.NumberFormat('en', { notation: 'compact', maximumF
  * Lines over a shared x axis, optional marked points, an optional vertical marker, and a click
  * that reports the x index under the cursor.
  *
- * series: [{label, values, colour: CSS variable, scale?: 'y' | 'right', points?: true}]
+ * series: [{label, values, colour: CSS variable, scale?: 'y' | 'right', points?: true, width?: px,
+ * dash?: [dash, gap] in px}]. Lines that can lie on one another differ in width or dashes, and
+ * the legend shows each line's own stroke.
  */
 export class SeriesChart {
   constructor(el, { xLabel, yLabel, rightLabel = null, logY = false, onSelect = null }) {
@@ -69,7 +71,7 @@ export class SeriesChart {
     const scales = { x: { time: false }, y: { distr }, right: { distr } };
     const uSeries = [{ label: this.xLabel }, ...series.map((s) => {
       const colour = themed(s.colour, '#3b6ea5');
-      const base = { label: s.label, stroke: colour, width: s.points ? 0 : 1.25, scale: s.scale || 'y', spanGaps: Boolean(s.spanGaps) };
+      const base = { label: s.label, stroke: colour, width: s.points ? 0 : s.width ?? 1.25, dash: s.dash, scale: s.scale || 'y', spanGaps: Boolean(s.spanGaps), class: s.points ? 'point-series' : 'line-series' };
       return s.points ? { ...base, fill: colour, paths: () => null, points: { show: true, size: 7, stroke: colour, fill: colour } } : base;
     })];
     // uPlot's own labels keep three decimals, so a log axis of small errors read 0, 0, 0.
@@ -79,7 +81,8 @@ export class SeriesChart {
     this.chart = new uPlot({
       width: Math.max(200, this.el.clientWidth),
       height: height(this.el),
-      legend: { show: true, live: true },
+      // A line's marker is a stretch of the line (style.css), drawn with its width and dashes.
+      legend: { show: true, live: true, markers: { width: (u, i) => u.series[i].width || 2, dash: (u, i) => (u.series[i].dash?.length ? 'dashed' : 'solid') } },
       cursor: { drag: { x: true, y: false }, points: { size: 6 } },
       scales,
       series: uSeries,

@@ -22,17 +22,18 @@ export function css(t) {
 /** The scale's stops as CSS colours, low to high. */
 export const STOP_COLOURS = STOPS.map((c) => `rgb(${c.join(', ')})`);
 
-/** CSS gradient of the whole scale, for legends. */
-export const GRADIENT = `linear-gradient(to right, ${STOP_COLOURS.join(', ')})`;
+/** The ends and middle of the diverging scale for differences: blue (lower), a light grey (no
+ * change), red (higher). */
+const DIVERGING_STOPS = [[49, 104, 176], [236, 236, 236], [200, 60, 45]];
 
-/** A diverging scale for differences: blue (lower) through a light grey (no change) to red
- * (higher), for the A/B difference map. */
+/** The diverging scale as a 256-entry lookup table of [r, g, b], for the A/B difference map. */
 export const DIVERGING = Array.from({ length: 256 }, (_, i) => {
   const t = i / 255;
-  const mid = [236, 236, 236];
-  const end = t < 0.5 ? [49, 104, 176] : [200, 60, 45];
+  const [low, mid, high] = DIVERGING_STOPS;
+  const end = t < 0.5 ? low : high;
   const f = Math.abs(t - 0.5) * 2;
   return mid.map((c, j) => Math.round(c + f * (end[j] - c)));
 });
 
-export const DIVERGING_GRADIENT = 'linear-gradient(to right, rgb(49 104 176), rgb(236 236 236), rgb(200 60 45))';
+/** The diverging scale's stops as CSS colours, low to high. */
+export const DIVERGING_COLOURS = DIVERGING_STOPS.map((c) => `rgb(${c.join(', ')})`);

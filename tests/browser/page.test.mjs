@@ -11,6 +11,25 @@ let browser;
 before(async () => { browser = await launch(); });
 after(async () => { await browser?.close(); });
 
+/** The bytes of the file a click on `selector` downloads. */
+async function downloaded(page, selector) {
+  const [download] = await Promise.all([page.waitForEvent('download'), page.click(selector)]);
+  const chunks = [];
+  for await (const c of await download.createReadStream()) chunks.push(c);
+  return Buffer.concat(chunks);
+}
+
+/** A PNG file's width and height (its IHDR chunk, after the 8-byte signature: PNG specification). */
+const pngSize = (png) => [png.readUInt32BE(16), png.readUInt32BE(20)];
+
+/** The ends and colours of the colour scale drawn under the map `id`. */
+function legendOf(page, id) {
+  return page.evaluate((id) => {
+    const el = document.querySelector(`.legend[data-for="${id}"]`);
+    return { lo: el.querySelector('.lo').textContent, hi: el.querySelector('.hi').textContent, ramp: el.querySelector('.ramp').style.background };
+  }, id);
+}
+
 async function withDemo() {
   const session = await openPage(browser);
   await session.page.click('#load-demo-big');
@@ -459,6 +478,71 @@ test('AWQ shows its alpha curve and smoothing runs the W8A8 study', async () => 
   await context.close();
 });
 
+test('the smoothing plot draws its two "after" lines so that neither hides the other', async () => {
+  const { page, context } = await withDemoCalibration();
+  await page.waitForFunction(() => /max \|x\| after/.test(document.getElementById('smooth-columns').textContent));
+  // At α 0.5 smoothing makes a column's two maxima equal (both become √(max|w|·max|x|)), so
+  // the two lines lie on one another: one is drawn wide and the other dashed over it, and each
+  // legend marker is a stretch of its own line.
+  const markers = Object.fromEntries(await page.$$eval('#smooth-columns .u-legend .u-series', (rows) => rows.slice(1).map((row) => {
+    const style = getComputedStyle(row.querySelector('.u-marker'));
+    return [row.querySelector('.u-label').textContent, { line: style.borderTopStyle, width: parseFloat(style.borderTopWidth), left: parseFloat(style.borderLeftWidth) }];
+  })));
+  const weights = markers['max |w| after (α 0.50)'];
+  const acts = markers['max |x| after'];
+  assert.equal(weights.line, 'solid');
+  assert.equal(acts.line, 'dashed');
+  assert.ok(weights.width > acts.width, JSON.stringify(markers));
+  assert.equal(weights.left + acts.left, 0, 'a line, not a box');
+  const svg = (await downloaded(page, 'button[data-chart="smooth-columns"]:text("SVG")')).toString();
+  assert.match(svg, /<polyline fill="none" stroke="[^"]+" stroke-width="3" points=/);
+  assert.match(svg, /<polyline fill="none" stroke="[^"]+" stroke-width="1\.5" stroke-dasharray="6 4" points=/);
+  await shot(page, '13b-smoothing-lines');
+  await context.close();
+});
+
+/** The choices of the select `id` that its width cuts: all of them when its widest does not fit. */
+function cutChoices(page, id) {
+  return page.evaluate((id) => {
+    const select = document.getElementById(id);
+    // A select as wide as its widest choice, in the same place and style.
+    const natural = select.cloneNode(true);
+    natural.removeAttribute('id');
+    natural.style.cssText = 'position: absolute; width: auto; max-width: none; flex: none;';
+    select.parentElement.append(natural);
+    const needed = natural.getBoundingClientRect().width;
+    natural.remove();
+    return needed > select.getBoundingClientRect().width + 0.5 ? [...select.options].map((o) => o.text) : [];
+  }, id);
+}
+
+/** The headline figures wider than their cards. */
+function overflowingFigures(page) {
+  return page.$$eval('#headline .value', (values) => values.filter((v) => v.scrollWidth > v.clientWidth).map((v) => v.id));
+}
+
+test('the headline figures fit one row at 1400 px with calibration, and nothing is cut in a narrow window', async () => {
+  const { page, context } = await withDemoCalibration();
+  const tops = await page.$$eval('#headline .figure:not([hidden])', (cards) => cards.map((c) => Math.round(c.getBoundingClientRect().top)));
+  assert.equal(tops.length, 6);
+  assert.equal(new Set(tops).size, 1, `one row: ${tops}`);
+  assert.deepEqual(await overflowingFigures(page), []);
+  assert.deepEqual(await cutChoices(page, 'calib-kind'), []);
+  await shot(page, '12b-headline-1400');
+  await context.close();
+  // A phone-sized window: the figures wrap, and still no value, choice or card is cut.
+  const narrow = await openPage(browser, { viewport: { width: 375, height: 800 } });
+  await narrow.page.click('#load-demo-big');
+  const status = await waitForAnalysis(narrow.page);
+  await narrow.page.click('#calib-demo');
+  await waitForAnalysis(narrow.page, status);
+  assert.deepEqual(await cutChoices(narrow.page, 'calib-kind'), []);
+  assert.deepEqual(await overflowingFigures(narrow.page), []);
+  assert.ok(await narrow.page.evaluate(() => document.documentElement.scrollWidth <= innerWidth), 'no sideways scrolling');
+  await shot(narrow.page, '12c-narrow-375');
+  await narrow.context.close();
+});
+
 test('a tensor of another width removes the calibration, and says so at the top', async () => {
   const { page, context } = await withDemo();
   const weightOnly = await page.textContent('#status');
@@ -675,6 +759,40 @@ test('two pinned recipes compare side by side with their difference', async () =
   const rows = await page.locator('#compare-rows tr').allTextContents();
   assert.ok(rows.some((r) => r.startsWith('bits per weight4.15633.1484−1.0078')), rows.join(' | '));
   assert.equal(await page.isVisible('#diff-figure'), true);
+  // A and B share one colour scale; the difference has its own, linear and centred on no change,
+  // so its ends are the largest difference either way.
+  const [legendA, legendB, legendDiff] = [await legendOf(page, 'map-a'), await legendOf(page, 'map-b'), await legendOf(page, 'map-diff')];
+  assert.deepEqual(legendA, legendB);
+  assert.ok(Number(legendA.lo) > 0 && Number(legendA.hi) > Number(legendA.lo), JSON.stringify(legendA));
+  assert.match(legendDiff.lo, /^−\d/);
+  assert.equal(legendDiff.hi, legendDiff.lo.replace('−', '+'));
+  const { diverging, sequential } = await page.evaluate(async () => {
+    const colours = await import('./colors.js');
+    return { diverging: colours.DIVERGING_COLOURS, sequential: colours.STOP_COLOURS };
+  });
+  assert.equal(legendDiff.ramp, `linear-gradient(to right, ${diverging.join(', ')})`);
+  assert.equal(legendA.ramp, `linear-gradient(to right, ${sequential.join(', ')})`);
+  // The bits of each recipe, listed by part, and both bars on one scale: B's parts fill
+  // 3.1484 / 4.1563 of its bar (4 + (16 + 4)/128 bits per weight for A, as above for B).
+  assert.match(await page.textContent('#budget-a-legend'), /codes \(payload\): [\d,]+ bits = 4\.0000 bits per weight[\s\S]*total: [\d,]+ bits = 4\.1563 bits per weight/);
+  assert.match(await page.textContent('#budget-b-legend'), /codes \(payload\): [\d,]+ bits = 3\.0000 bits per weight[\s\S]*total: [\d,]+ bits = 3\.1484 bits per weight/);
+  const filled = (id) => page.evaluate((id) => {
+    const bar = document.getElementById(id);
+    return [...bar.children].reduce((sum, part) => sum + part.getBoundingClientRect().width, 0) / bar.clientWidth;
+  }, id);
+  assert.ok(Math.abs((await filled('budget-a')) - 1) < 0.01);
+  assert.ok(Math.abs((await filled('budget-b')) - 3.1484 / 4.1563) < 0.01, `B's bar is ${await filled('budget-b')} full`);
+  assert.match(await page.textContent('#compare-budget-scale'), /full width is 4\.1563 bits per weight/);
+  // The difference map's files carry its title and colour scale; its PNG is that frame drawn
+  // at twice the SVG's 720 × 360 (svg.js).
+  const svg = (await downloaded(page, 'button[data-chart="map-diff"]:text("SVG")')).toString();
+  assert.match(svg, /B − A: int3 asym g128 f16 against int4 asym g128 f16/);
+  for (const colour of diverging) assert.ok(svg.includes(`stop-color="${colour}"`), colour);
+  assert.ok(svg.includes(`>${legendDiff.lo}</text>`) && svg.includes(`>${legendDiff.hi}</text>`));
+  assert.match(svg, /blue where B is lower, grey equal, red higher/);
+  assert.deepEqual(pngSize(await downloaded(page, 'button[data-chart="map-diff"]:text("PNG")')), [1440, 720]);
+  const svgA = (await downloaded(page, 'button[data-chart="map-a"]:text("SVG")')).toString();
+  assert.ok(svgA.includes(`>${legendA.lo}</text>`) && svgA.includes(`>${legendA.hi}</text>`) && svgA.includes('one scale for A and B'));
   await shot(page, '18-compare');
   // Another tensor opened: the pins stay, said to belong to the tensor they were taken on.
   assert.equal(await page.textContent('#compare-hint'), '');
@@ -690,17 +808,30 @@ test('two pinned recipes compare side by side with their difference', async () =
 test('every chart downloads as PNG and as SVG', async () => {
   const { page, context } = await withDemo();
   await page.waitForFunction(() => /grid levels/.test(document.getElementById('hist-caption').textContent));
-  const grab = async (selector) => {
-    const [download] = await Promise.all([page.waitForEvent('download'), page.click(selector)]);
-    const chunks = [];
-    for await (const c of await download.createReadStream()) chunks.push(c);
-    return Buffer.concat(chunks);
-  };
+  const svgs = {};
   for (const chart of ['error-map', 'column-profile', 'histogram']) {
-    const png = await grab(`button[data-chart="${chart}"]:text("PNG")`);
+    const png = await downloaded(page, `button[data-chart="${chart}"]:text("PNG")`);
     assert.equal(png.subarray(1, 4).toString(), 'PNG', `${chart} PNG`);
-    const svg = (await grab(`button[data-chart="${chart}"]:text("SVG")`)).toString();
+    const svg = (await downloaded(page, `button[data-chart="${chart}"]:text("SVG")`)).toString();
     assert.match(svg, /^<\?xml[\s\S]*<svg xmlns="http:\/\/www\.w3\.org\/2000\/svg"[\s\S]*<\/svg>\s*$/, `${chart} SVG`);
+    svgs[chart] = svg;
   }
+  // The column profile keeps the page's two y axes, each with its title and its own ticks: max |w|
+  // on the left (the demo's columns reach 0.1 to several hundred) and the error RMS on the right
+  // (below 0.1 in every column of the demo at int4: this session's page, not a published figure).
+  const axis = (side) => {
+    const group = svgs['column-profile'].match(new RegExp(`<g class="y-axis ${side}">([\\s\\S]*?)</g>`));
+    assert.ok(group, `a ${side} y axis`);
+    return { title: group[1].match(/rotate\([-\d]+\)" text-anchor="middle">([^<]*)</)[1], ticks: [...group[1].matchAll(/>([-\d.e+]+)<\/text>/g)].map((m) => Number(m[1])) };
+  };
+  const [left, right] = [axis('left'), axis('right')];
+  assert.equal(left.title, 'max |w| (log)');
+  assert.equal(right.title, 'error RMS (log)');
+  assert.ok(left.ticks.length >= 2 && right.ticks.length >= 2, JSON.stringify({ left, right }));
+  assert.ok(Math.max(...left.ticks) >= 1 && Math.max(...right.ticks) < 0.1, JSON.stringify({ left, right }));
+  // The error map's PNG is its SVG frame drawn, with the title and colour scale (svg.js: 720 × 360, twice).
+  assert.deepEqual(pngSize(await downloaded(page, 'button[data-chart="error-map"]:text("PNG")')), [1440, 720]);
+  const { lo, hi } = await legendOf(page, 'error-map');
+  assert.ok(svgs['error-map'].includes(`>${lo}</text>`) && svgs['error-map'].includes(`>${hi}</text>`));
   await context.close();
 });
