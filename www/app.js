@@ -153,7 +153,7 @@ function buildControls(defaults) {
   for (let b = defaults.bits[0]; b <= defaults.bits[1]; b++) bits.add(new Option(`${b}`, `${b}`));
   const granularity = $('granularity');
   granularity.add(new Option('the whole tensor', 'tensor'));
-  granularity.add(new Option('each row (output channel)', 'row'));
+  granularity.add(new Option('each output row', 'row'));
   for (const g of GROUP_CHOICES.filter((g) => g >= defaults.group_sizes[0] && g <= defaults.group_sizes[1])) {
     granularity.add(new Option(`groups of ${g}`, `${g}`));
   }
@@ -968,6 +968,8 @@ function drawSweep() {
   sweepChart.logY = sweep.by !== 'sqnr';
   $('sweep-chart').hidden = rows.length === 0;
   if (rows.length) sweepChart.setData(x, series);
+  // The error axis drawn, for whoever waits on a change of axis (its front comes from the worker).
+  $('sweep-chart').dataset.by = sweep.by;
   drawSweepTable();
 }
 

@@ -626,7 +626,7 @@ impl TensorHandle {
             rows: Vec<crate::sweep::SweepRow>,
             skipped: String,
         }
-        let Plan { recipes, skipped } = from_json_value(&plan, "sweep plan")?;
+        let Plan { recipes, mut skipped } = from_json_value(&plan, "sweep plan")?;
         let by = by.parse().map_err(js_error)?;
         let calib = calibration.map(|c| &c.calib);
         let mut report = |done: usize, total: usize, row: Option<&crate::sweep::SweepRow>| {
@@ -640,7 +640,6 @@ impl TensorHandle {
         if fitting.is_empty() && !too_large.is_empty() {
             check_room(&self.tensor, &too_large, calib)?;
         }
-        let mut skipped = skipped;
         for recipe in &too_large {
             let detail = format!("{} needs more memory than the page has left (the command-line tool has no such limit)", recipe.method.name());
             skipped.add(&Error::BadRecipe { detail });

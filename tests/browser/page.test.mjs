@@ -516,6 +516,16 @@ function cutChoices(page, id) {
   }, id);
 }
 
+/** The side bar's selects (calibration and recipe) whose width cuts their widest choice, by id. */
+async function cutSideChoices(page) {
+  const cut = {};
+  for (const id of await page.$$eval('.side select', (selects) => selects.map((s) => s.id))) {
+    const choices = await cutChoices(page, id);
+    if (choices.length) cut[id] = choices;
+  }
+  return cut;
+}
+
 /** The headline figures wider than their cards. */
 function overflowingFigures(page) {
   return page.$$eval('#headline .value', (values) => values.filter((v) => v.scrollWidth > v.clientWidth).map((v) => v.id));
@@ -527,7 +537,7 @@ test('the headline figures fit one row at 1400 px with calibration, and nothing 
   assert.equal(tops.length, 6);
   assert.equal(new Set(tops).size, 1, `one row: ${tops}`);
   assert.deepEqual(await overflowingFigures(page), []);
-  assert.deepEqual(await cutChoices(page, 'calib-kind'), []);
+  assert.deepEqual(await cutSideChoices(page), {});
   await shot(page, '12b-headline-1400');
   await context.close();
   // A phone-sized window: the figures wrap, and still no value, choice or card is cut.
@@ -536,7 +546,7 @@ test('the headline figures fit one row at 1400 px with calibration, and nothing 
   const status = await waitForAnalysis(narrow.page);
   await narrow.page.click('#calib-demo');
   await waitForAnalysis(narrow.page, status);
-  assert.deepEqual(await cutChoices(narrow.page, 'calib-kind'), []);
+  assert.deepEqual(await cutSideChoices(narrow.page), {});
   assert.deepEqual(await overflowingFigures(narrow.page), []);
   assert.ok(await narrow.page.evaluate(() => document.documentElement.scrollWidth <= innerWidth), 'no sideways scrolling');
   await shot(narrow.page, '12c-narrow-375');
@@ -661,6 +671,8 @@ test('a sweep fills the chart, marks the front, and a row loads its recipe', asy
   });
   assert.deepEqual(ticks, ['1e-4', '2e-5', '0.05', '300', '2e+5']);
   await page.selectOption('#sweep-by', 'sqnr');
+  // The chart is drawn anew once the worker has marked the front against SQNR.
+  await page.waitForSelector('#sweep-chart[data-by=sqnr] .u-over');
   // A click on the scatter loads the recipe under the cursor.
   const plot = await page.locator('#sweep-chart .u-over').boundingBox();
   const beforeClick = await page.textContent('#status');
