@@ -14,11 +14,6 @@ export const TABLE = Array.from({ length: 256 }, (_, i) => {
   return STOPS[k].map((c, j) => Math.round(c + f * (STOPS[k + 1][j] - c)));
 });
 
-export function css(t) {
-  const [r, g, b] = TABLE[Math.max(0, Math.min(255, Math.round(t * 255)))];
-  return `rgb(${r} ${g} ${b})`;
-}
-
 /** The scale's stops as CSS colours, low to high. */
 export const STOP_COLOURS = STOPS.map((c) => `rgb(${c.join(', ')})`);
 

@@ -374,17 +374,17 @@ fn run(
     let (observed, output, q) = if plain {
         let view = tensor.values.view();
         let discard = Reconstruction::Discard;
-        let plain = |params, double_quant| methods::Quantized { double_quant, ..methods::Quantized::plain(Array2::zeros((0, 0)), params) };
+        let no_reconstruction = |params, double_quant| methods::Quantized { double_quant, ..methods::Quantized::plain(Array2::zeros((0, 0)), params) };
         match calib {
             None => {
                 let (grouped, double_quant) = methods::round_to_nearest(view, recipe, &Kept::default(), &measure, discard, progress)?;
-                (grouped.observed, None, plain(grouped.params, double_quant))
+                (grouped.observed, None, no_reconstruction(grouped.params, double_quant))
             }
             Some(calib) => {
                 let outputs = OutputObserver { calib, weight: view, reference: reference.as_deref() };
                 let (grouped, double_quant) = methods::round_to_nearest(view, recipe, &Kept::default(), &(&measure, &outputs), discard, progress)?;
                 let (observed, sums) = grouped.observed;
-                (observed, Some(sums.output_error(calib)), plain(grouped.params, double_quant))
+                (observed, Some(sums.output_error(calib)), no_reconstruction(grouped.params, double_quant))
             }
         }
     } else {

@@ -126,22 +126,21 @@ pub struct SkipReason {
 impl Skipped {
     /// Count one combination skipped because of `error`.
     pub fn add(&mut self, error: &Error) {
-        let why = fault(error);
-        match self.0.iter_mut().find(|r| r.why == why) {
-            Some(reason) => reason.count += 1,
-            None => self.0.push(SkipReason { why, count: 1 }),
-        }
+        self.count_for(SkipReason { why: fault(error), count: 1 });
     }
 
     /// Every combination skipped by `self` or `other`.
     pub fn merged(mut self, other: Skipped) -> Skipped {
-        for reason in other.0 {
-            match self.0.iter_mut().find(|r| r.why == reason.why) {
-                Some(known) => known.count += reason.count,
-                None => self.0.push(reason),
-            }
-        }
+        other.0.into_iter().for_each(|reason| self.count_for(reason));
         self
+    }
+
+    /// Add `reason`'s count to the reason of the same words, or list it after the others.
+    fn count_for(&mut self, reason: SkipReason) {
+        match self.0.iter_mut().find(|r| r.why == reason.why) {
+            Some(known) => known.count += reason.count,
+            None => self.0.push(reason),
+        }
     }
 
     /// Combinations skipped in all.

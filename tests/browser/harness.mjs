@@ -115,12 +115,22 @@ export async function pageState(page) {
   });
 }
 
-/** The downloaded JSON report, parsed. */
-export async function downloadReport(page) {
-  const [download] = await Promise.all([page.waitForEvent('download'), page.click('#download-report')]);
+/** The file a click on `selector` downloads: its suggested name and its bytes. */
+export async function downloadOf(page, selector) {
+  const [download] = await Promise.all([page.waitForEvent('download'), page.click(selector)]);
   const chunks = [];
   for await (const chunk of await download.createReadStream()) chunks.push(chunk);
-  return JSON.parse(Buffer.concat(chunks).toString());
+  return { name: download.suggestedFilename(), bytes: Buffer.concat(chunks) };
+}
+
+/** The bytes of the file a click on `selector` downloads. */
+export async function downloaded(page, selector) {
+  return (await downloadOf(page, selector)).bytes;
+}
+
+/** The downloaded JSON report, parsed. */
+export async function downloadReport(page) {
+  return JSON.parse((await downloaded(page, '#download-report')).toString());
 }
 
 /** The identity and figures of the downloaded JSON report: what the compute worker holds. */

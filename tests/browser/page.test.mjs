@@ -5,19 +5,11 @@ import { pathToFileURL } from 'node:url';
 import { openSync, readSync, writeSync, ftruncateSync, closeSync, mkdtempSync } from 'node:fs';
 import os from 'node:os';
 import path from 'node:path';
-import { launch, openPage, fixture, shot, dropFile, waitForAnalysis, sameOrigin, pageState, reportFigures, assertNothingLost, npyF32, URL_UNDER_TEST } from './harness.mjs';
+import { launch, openPage, fixture, shot, dropFile, waitForAnalysis, sameOrigin, pageState, reportFigures, assertNothingLost, npyF32, downloadOf, downloaded, URL_UNDER_TEST } from './harness.mjs';
 
 let browser;
 before(async () => { browser = await launch(); });
 after(async () => { await browser?.close(); });
-
-/** The bytes of the file a click on `selector` downloads. */
-async function downloaded(page, selector) {
-  const [download] = await Promise.all([page.waitForEvent('download'), page.click(selector)]);
-  const chunks = [];
-  for await (const c of await download.createReadStream()) chunks.push(c);
-  return Buffer.concat(chunks);
-}
 
 /** A PNG file's width and height (its IHDR chunk, after the 8-byte signature: PNG specification). */
 const pngSize = (png) => [png.readUInt32BE(16), png.readUInt32BE(20)];
@@ -698,13 +690,7 @@ test('exports land and parse, and a link restores the recipe in a fresh page', a
   const { page, context } = await withDemo();
   await page.selectOption('#format', 'nf4');
   await page.waitForFunction(() => document.getElementById('status').textContent.includes('nf4 g64'));
-  const grab = async (id) => {
-    const [download] = await Promise.all([page.waitForEvent('download'), page.click(id)]);
-    const stream = await download.createReadStream();
-    const chunks = [];
-    for await (const c of stream) chunks.push(c);
-    return { name: download.suggestedFilename(), bytes: Buffer.concat(chunks) };
-  };
+  const grab = (id) => downloadOf(page, id);
   const report = await grab('#download-report');
   const json = JSON.parse(report.bytes.toString());
   assert.equal(json.schema, 'bitloupe.report/1');
